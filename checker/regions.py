@@ -1,0 +1,171 @@
+"""The shared picture of a CT volume: field of view, body, patient table, air.
+
+Computed once per volume (:func:`find_regions`) and handed to every analysis, so that
+all of them agree on where the air is. Boolean volumes are (z, y, x); the field of view
+is one (y, x) mask shared by all slices, as a scanner reconstructs every slice on the
+same circle.
+
+Method (common practice, no source): the field of view is what the scanner did not mark
+as padding (PixelPaddingValue, values below ``padding_below_hu``, or one constant value
+connected to the image border on every slice); the body is the largest 3-D component
+above ``body_threshold_hu`` (about -500 HU) with holes filled slice by slice; the table
+is any other component that lies posterior to the body, spans most slices and keeps its
+cross-section along z; the air is the field of view outside the body and table dilated
+by ``margin_mm``.
+"""
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+
+import numpy as np
+from scipy import ndimage
+
+from .volume import Volume
+
+_INPLANE = np.zeros((3, 3, 3), dtype=bool)
+_INPLANE[1] = ndimage.generate_binary_structure(2, 1)
+
+
+@dataclass
+class Regions:
+    """Masks and simple facts shared by every analysis."""
+
+    fov: np.ndarray  # bool (y, x)
+    body: np.ndarray  # bool (z, y, x)
+    table: np.ndarray  # bool (z, y, x)
+    air: np.ndarray  # bool (z, y, x)
+    fov_center_yx_vox: tuple[float, float]
+    fov_radius_vox: float
+    fov_is_circle: bool
+    body_centroid_zyx_vox: tuple[float, float, float] | None
+    notes: list[str] = field(default_factory=list)
+
+    @property
+    def has_body(self) -> bool:
+        return self.body_centroid_zyx_vox is not None
+
+    def facts(self) -> dict:
+        """JSON-ready summary (for results and the report)."""
+        return {
+            "fov_center_yx_vox": [round(v, 2) for v in self.fov_center_yx_vox],
+            "fov_radius_vox": round(self.fov_radius_vox, 2),
+            "fov_is_circle": self.fov_is_circle,
+            "body_centroid_zyx_vox": None
+            if self.body_centroid_zyx_vox is None
+            else [round(v, 2) for v in self.body_centroid_zyx_vox],
+            "body_voxels": int(self.body.sum()),
+            "table_voxels": int(self.table.sum()),
+            "air_voxels": int(self.air.sum()),
+        }
+
+
+def find_fov(volume: Volume, padding_below_hu: float = -1500.0) -> tuple[np.ndarray, bool]:
+    """The (y, x) mask of pixels inside the reconstruction field of view.
+
+    Returns the mask and whether anything outside it was found (a circle was detected).
+    """
+    hu = volume.hu
+    outside = np.zeros(hu.shape[1:], dtype=bool)
+    if volume.padding_mask is not None:
+        outside |= volume.padding_mask
+    outside |= (hu < padding_below_hu).all(axis=0)
+    border = np.concatenate([hu[:, 0, :], hu[:, -1, :], hu[:, :, 0], hu[:, :, -1]], axis=1)
+    values, counts = np.unique(border[0], return_counts=True)
+    mode = values[np.argmax(counts)]
+    if counts.max() > 0.25 * border.shape[1]:
+        constant = (hu == mode).all(axis=0)
+        lab, _ = ndimage.label(constant)
+        edge_labels = np.unique(np.concatenate([lab[0], lab[-1], lab[:, 0], lab[:, -1]]))
+        outside |= np.isin(lab, edge_labels[edge_labels > 0])
+    if not outside.any():
+        return np.ones(hu.shape[1:], dtype=bool), False
+    fov = ndimage.binary_fill_holes(~outside)
+    lab, n = ndimage.label(fov)
+    if n > 1:
+        sizes = ndimage.sum(fov, lab, index=np.arange(1, n + 1))
+        fov = lab == (1 + int(np.argmax(sizes)))
+    return fov, True
+
+
+def _circle_of(mask2d: np.ndarray) -> tuple[tuple[float, float], float]:
+    ys, xs = np.nonzero(mask2d)
+    if ys.size == 0:
+        return (mask2d.shape[0] / 2.0, mask2d.shape[1] / 2.0), 0.0
+    return (float(ys.mean()), float(xs.mean())), float(np.sqrt(ys.size / np.pi))
+
+
+def _components(mask: np.ndarray) -> tuple[np.ndarray, int, np.ndarray]:
+    lab, n = ndimage.label(mask)
+    sizes = np.bincount(lab.ravel(), minlength=n + 1)
+    sizes[0] = 0
+    return lab, n, sizes
+
+
+def _is_table(comp_slices: tuple[slice, ...], comp: np.ndarray, body_bbox: tuple[slice, ...], nz: int) -> bool:
+    """A flat, posterior structure whose cross-section barely changes along z."""
+    zs, ys, xs = comp_slices
+    if (zs.stop - zs.start) < max(1, int(0.8 * nz)):
+        return False
+    height = ys.stop - ys.start
+    width = xs.stop - xs.start
+    body_y = body_bbox[1]
+    centre_y = 0.5 * (ys.start + ys.stop)
+    posterior = centre_y > body_y.start + 0.75 * (body_y.stop - body_y.start)
+    areas = comp.sum(axis=(1, 2))
+    areas = areas[areas > 0]
+    steady = areas.size > 0 and areas.std() <= 0.2 * areas.mean()
+    return bool(posterior and width > height and steady)
+
+
+def find_regions(
+    volume: Volume,
+    *,
+    body_threshold_hu: float = -500.0,
+    margin_mm: float = 4.0,
+    padding_below_hu: float = -1500.0,
+) -> Regions:
+    """Field of view, body, table and air of ``volume``; see the module docstring."""
+    hu = volume.hu
+    nz = hu.shape[0]
+    fov2d, is_circle = find_fov(volume, padding_below_hu)
+    centre, radius = _circle_of(fov2d)
+    notes: list[str] = []
+
+    dense = (hu > body_threshold_hu) & fov2d[None]
+    lab, n, sizes = _components(dense)
+    body = np.zeros(hu.shape, dtype=bool)
+    table = np.zeros(hu.shape, dtype=bool)
+    centroid = None
+    if n:
+        body_label = int(np.argmax(sizes))
+        body = lab == body_label
+        body = ndimage.binary_fill_holes(body, structure=_INPLANE)
+        objects = ndimage.find_objects(lab)
+        body_bbox = objects[body_label - 1]
+        for i, sl in enumerate(objects, start=1):
+            if i == body_label or sl is None or sizes[i] < 20:
+                continue
+            comp = lab[sl] == i
+            if _is_table(sl, comp, body_bbox, nz):
+                table[sl] |= comp
+        centroid = tuple(float(c) for c in ndimage.center_of_mass(body))
+    else:
+        notes.append("no body found: nothing above %.0f HU inside the field of view" % body_threshold_hu)
+
+    margin_px = max(1, int(round(margin_mm / min(volume.spacing_mm[1:]))))
+    solid = (body | table).view(np.uint8)
+    grown = ndimage.maximum_filter(solid, size=(1, 2 * margin_px + 1, 2 * margin_px + 1)).astype(bool)
+    air = fov2d[None] & ~grown
+    if volume.padding_mask is not None:
+        air &= ~volume.padding_mask[None]
+    return Regions(
+        fov=fov2d,
+        body=body,
+        table=table,
+        air=air,
+        fov_center_yx_vox=centre,
+        fov_radius_vox=radius,
+        fov_is_circle=is_circle,
+        body_centroid_zyx_vox=centroid,
+        notes=notes,
+    )

@@ -1,0 +1,148 @@
+"""Result records shared by every analysis, and their JSON encoding.
+
+Each analysis returns an :class:`AnalysisResult`: a JSON-ready ``record`` (the keys its
+issue defines), ``findings`` and viewer-neutral ``overlays``. The checker turns records
+into results.json, the report draws the overlays into thumbnails and the plugin turns
+them into napari layers, so the geometry of a flag is computed once.
+"""
+from __future__ import annotations
+
+import enum
+import json
+import math
+from dataclasses import dataclass, field
+from typing import Any
+
+import numpy as np
+
+SCHEMA = "reconaudit.results/1"
+
+
+class Severity(str, enum.Enum):
+    """How much a finding matters; the verdict of a series is its worst finding."""
+
+    INFO = "info"
+    REVIEW = "review"
+    FAIL = "fail"
+
+    @property
+    def rank(self) -> int:
+        return {"info": 0, "review": 1, "fail": 2}[self.value]
+
+
+class Verdict(str, enum.Enum):
+    PASS = "pass"
+    REVIEW = "review"
+    FAIL = "fail"
+
+
+@dataclass
+class Finding:
+    analysis: str
+    severity: Severity
+    message: str
+
+    def to_json(self) -> dict[str, str]:
+        return {"analysis": self.analysis, "severity": Severity(self.severity).value, "message": self.message}
+
+
+@dataclass
+class Segment:
+    """A line segment in voxel coordinates (z, y, x); ``value`` is its strength."""
+
+    start_zyx_vox: tuple[float, float, float]
+    end_zyx_vox: tuple[float, float, float]
+    label: str = ""
+    value: float = 0.0
+
+
+@dataclass
+class Point:
+    zyx_vox: tuple[float, float, float]
+    label: str = ""
+    value: float = 0.0
+
+
+@dataclass
+class Roi:
+    """An axis-aligned rectangle on slices ``z0..z1`` (inclusive), rows y0:y1, cols x0:x1."""
+
+    z0: int
+    z1: int
+    y0: int
+    x0: int
+    y1: int
+    x1: int
+    label: str = ""
+
+    def to_json(self) -> dict[str, Any]:
+        return {"slices": [self.z0, self.z1], "yx0_vox": [self.y0, self.x0], "yx1_vox": [self.y1, self.x1], "label": self.label}
+
+
+@dataclass
+class Overlays:
+    """Viewer-neutral geometry of what an analysis flagged or measured."""
+
+    labels: np.ndarray | None = None  # int32 (z, y, x), 0 = background
+    segments: list[Segment] = field(default_factory=list)
+    points: list[Point] = field(default_factory=list)
+    rois: list[Roi] = field(default_factory=list)
+    maps: dict[str, np.ndarray] = field(default_factory=dict)  # float32 (z, y, x)
+
+
+@dataclass
+class AnalysisResult:
+    """What one analysis found on one volume."""
+
+    analysis: str
+    record: dict[str, Any]
+    findings: list[Finding] = field(default_factory=list)
+    overlays: Overlays = field(default_factory=Overlays)
+
+    @property
+    def applicable(self) -> bool:
+        return bool(self.record.get("applicable", True))
+
+    @property
+    def flagged(self) -> bool:
+        return bool(self.record.get("flagged", False))
+
+    @classmethod
+    def not_applicable(cls, analysis: str, reason: str) -> "AnalysisResult":
+        return cls(
+            analysis=analysis,
+            record={"applicable": False, "reason": reason},
+            findings=[Finding(analysis, Severity.INFO, f"not applicable: {reason}")],
+        )
+
+
+def worst_verdict(findings: list[Finding]) -> Verdict:
+    rank = max((Severity(f.severity).rank for f in findings), default=0)
+    return [Verdict.PASS, Verdict.REVIEW, Verdict.FAIL][rank]
+
+
+def to_jsonable(obj: Any) -> Any:
+    """Convert numpy scalars/arrays, enums, tuples and non-finite floats for JSON.
+
+    NaN and infinities become ``None`` so the output is strict JSON.
+    """
+    if isinstance(obj, dict):
+        return {str(k): to_jsonable(v) for k, v in obj.items()}
+    if isinstance(obj, (list, tuple)):
+        return [to_jsonable(v) for v in obj]
+    if isinstance(obj, np.ndarray):
+        return to_jsonable(obj.tolist())
+    if isinstance(obj, enum.Enum):
+        return obj.value
+    if isinstance(obj, (np.bool_, bool)):
+        return bool(obj)
+    if isinstance(obj, (np.integer,)):
+        return int(obj)
+    if isinstance(obj, (float, np.floating)):
+        f = float(obj)
+        return f if math.isfinite(f) else None
+    return obj
+
+
+def dumps(obj: Any) -> str:
+    return json.dumps(to_jsonable(obj), indent=2, allow_nan=False)
