@@ -1,0 +1,195 @@
+"""One ``check`` run: discover, decide what to check, dispatch, record, write outputs.
+
+Outputs in ``--out`` (every file written atomically):
+
+* ``series/<id>.json`` — one complete record per series, written by the worker;
+* ``results.json`` — the run's document (schema ``reconaudit.results/1``);
+* ``results.csv`` — one row per series with the headline numbers;
+* ``report.html`` and ``figures/`` — the report.
+
+``results.json`` is rewritten after every finished series, so whatever was measured
+before a crash or a full disk is on disk. A rerun with the same ``--out`` reuses the
+complete per-series records (same content hash and profile) instead of re-checking.
+"""
+from __future__ import annotations
+
+import json
+import logging
+import time
+import uuid
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any, Callable
+
+from . import __version__
+from .batch import (SeriesTask, default_workers, error_record, previous_record, results_document, run_dask,
+                    run_local, series_id_for)
+from .baseline import BaselineStore
+from .errors import ReconauditError
+from .fsutil import atomic_write_text, file_fingerprint, safe_name, short_hash
+from .profile import Profile, load_profile
+from .results import dumps
+
+log = logging.getLogger(__name__)
+
+
+@dataclass
+class CheckOptions:
+    inputs: list[Path]
+    out_dir: Path
+    profile_path: str | None = None
+    workers: int | None = None
+    scheduler: str | None = None
+    db_path: Path | None = None
+    baselines_path: Path | None = None
+    force: bool = False
+    include_identifiers: bool = False
+    figures: bool = True
+
+
+@dataclass
+class CheckOutcome:
+    document: dict[str, Any]
+    skipped: list[dict[str, Any]] = field(default_factory=list)
+    run_id: str = ""
+
+
+def _problem_record(problem) -> dict[str, Any]:
+    path = str(problem.path)
+    sid = f"{safe_name(Path(path).name, max_length=40, fallback='file')}-{short_hash(path)}"
+    return error_record(sid, path, "", problem.error)
+
+
+def _unique_ids(sources) -> dict[str, str]:
+    """series key -> id; ids are unique even when descriptions repeat."""
+    ids: dict[str, str] = {}
+    seen: set[str] = set()
+    for src in sources:
+        base = series_id_for(src.description or Path(str(src.source)).name, src.key)
+        sid, n = base, 2
+        while sid in seen:
+            sid, n = f"{base}-{n}", n + 1
+        seen.add(sid)
+        ids[src.key] = sid
+    return ids
+
+
+def _run_id(out_dir: Path) -> str:
+    """Reuse the run id of an unfinished run in the same folder (a resume)."""
+    state = out_dir / "run.json"
+    try:
+        doc = json.loads(state.read_text())
+        if not doc.get("finished"):
+            return str(doc["run_id"])
+    except (OSError, ValueError, KeyError):
+        pass
+    return uuid.uuid4().hex[:16]
+
+
+def _write_run_state(out_dir: Path, run_id: str, finished: bool) -> None:
+    atomic_write_text(out_dir / "run.json", json.dumps({"run_id": run_id, "finished": finished,
+                                                        "tool_version": __version__, "time": time.time()}))
+
+
+def _write_outputs(out_dir: Path, doc: dict[str, Any], *, final: bool, include_identifiers: bool,
+                   trends: dict[str, str] | None = None) -> None:
+    from .cli import _headline_rows
+
+    atomic_write_text(out_dir / "results.json", dumps(doc))
+    if not final:
+        return
+    atomic_write_text(out_dir / "results.csv", _headline_rows(doc["series"]))
+    from .report import write_report
+
+    figures = {r["id"]: r.get("figures") or {} for r in doc["series"]}
+    write_report(doc, out_dir, figures=figures, trends=trends, include_identifiers=include_identifiers)
+
+
+def _trend_figures(history, records: list[dict[str, Any]], out_dir: Path) -> dict[str, str]:
+    """One trend chart per protocol seen in this run (its noise, else its first metric)."""
+    trends: dict[str, str] = {}
+    for proto in sorted({r.get("protocol_key") for r in records if r.get("protocol_key")}):
+        metrics = history.metrics(proto)
+        if not metrics or len(history.trend(proto, metrics[0])) < 2:
+            continue
+        metric = "nps.noise_hu" if "nps.noise_hu" in metrics else metrics[0]
+        rel = Path("figures") / "trends" / f"{safe_name(proto)}__{safe_name(metric)}.png"
+        try:
+            history.plot_trend(proto, metric, out_dir / rel)
+        except Exception as exc:  # a chart never costs the run
+            log.warning("trend chart for %s not drawn: %s", proto, exc)
+            continue
+        trends[proto] = str(rel)
+    return trends
+
+
+def check(opts: CheckOptions, progress_factory: Callable[[int], Any] | None = None) -> CheckOutcome:
+    """Run one check over ``opts.inputs``; see the module docstring."""
+    from .history import History
+    from .load import discover
+
+    profile: Profile = load_profile(opts.profile_path)
+    out_dir = opts.out_dir
+    out_dir.mkdir(parents=True, exist_ok=True)
+    run_id = _run_id(out_dir)
+    _write_run_state(out_dir, run_id, finished=False)
+
+    for p in opts.inputs:
+        if not p.exists():
+            raise ReconauditError("input not found", source=str(p))
+    found = discover(opts.inputs)
+    baselines = BaselineStore(opts.baselines_path).entries if opts.baselines_path else {}
+    history = History(opts.db_path) if opts.db_path else None
+    if history:
+        history.start_run(run_id, tool_version=__version__, profile_name=profile.name)
+
+    records: dict[str, dict[str, Any]] = {}
+    for prob in found.problems:
+        rec = _problem_record(prob)
+        records[rec["id"]] = rec
+    ids = _unique_ids(found.series)
+    tasks, skipped = [], []
+    digest = profile.digest()
+    for src in found.series:
+        sid = ids[src.key]
+        content = file_fingerprint(list(src.files))
+        previous = previous_record(out_dir, sid, content, digest)
+        if previous is not None and not opts.force:
+            records[sid] = previous  # resume: measured in an earlier, unfinished run
+            continue
+        if history and not opts.force and history.already_checked(content, digest):
+            skipped.append({"id": sid, "source": str(src.source), "content_hash": content})
+            continue
+        tasks.append(SeriesTask(series_id=sid, source=src, content_hash=content, out_dir=str(out_dir),
+                                profile=profile, baselines=baselines, include_identifiers=opts.include_identifiers,
+                                figures=opts.figures))
+
+    progress = progress_factory(len(tasks)) if progress_factory else None
+
+    def on_done(record: dict[str, Any]) -> None:
+        records[record["id"]] = record
+        if history and record.get("content_hash"):
+            history.record_series(run_id, record, record["content_hash"], digest, record.get("protocol_key") or "")
+        _write_outputs(out_dir, _document(records, profile, skipped), final=False,
+                       include_identifiers=opts.include_identifiers)
+        if progress:
+            progress.step(record)
+
+    if opts.scheduler:
+        run_dask(tasks, on_done, address=opts.scheduler)
+    else:
+        run_local(tasks, on_done, workers=opts.workers or default_workers())
+
+    doc = _document(records, profile, skipped)
+    trends = _trend_figures(history, list(records.values()), out_dir) if history else None
+    _write_outputs(out_dir, doc, final=True, include_identifiers=opts.include_identifiers, trends=trends)
+    if history:
+        history.close()
+    _write_run_state(out_dir, run_id, finished=True)
+    return CheckOutcome(document=doc, skipped=skipped, run_id=run_id)
+
+
+def _document(records: dict[str, dict[str, Any]], profile: Profile, skipped: list[dict[str, Any]]) -> dict[str, Any]:
+    doc = results_document(records.values(), profile)
+    doc["skipped"] = list(skipped)
+    return doc
