@@ -156,6 +156,8 @@ def check(opts: CheckOptions, progress_factory: Callable[[int], Any] | None = No
         previous = previous_record(out_dir, sid, content, digest)
         if previous is not None and not opts.force:
             records[sid] = previous  # resume: measured in an earlier, unfinished run
+            if history and not history.already_checked(content, digest):
+                history.record_series(run_id, previous, content, digest, previous.get("protocol_key") or "")
             continue
         if history and not opts.force and history.already_checked(content, digest):
             skipped.append({"id": sid, "source": str(src.source), "content_hash": content})
