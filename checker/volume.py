@@ -123,3 +123,35 @@ def axial_affine(
     a[:3, 2] = (dx, 0.0, 0.0)  # one step in x index (column) -> +x (left)
     a[:3, 3] = origin_mm
     return a
+
+
+def affine_from_sitk(origin, spacing, direction) -> np.ndarray:
+    """(z,y,x,1) -> LPS affine from SimpleITK's origin, spacing (x,y,z) and direction.
+
+    SimpleITK's direction is the row-major 3x3 matrix whose columns are the LPS unit
+    vectors of the image's index axes i (x), j (y), k (z).
+    """
+    d = np.asarray(direction, dtype=float).reshape(3, 3)
+    sx, sy, sz = (float(s) for s in spacing)
+    a = np.eye(4)
+    a[:3, 0] = d[:, 2] * sz
+    a[:3, 1] = d[:, 1] * sy
+    a[:3, 2] = d[:, 0] * sx
+    a[:3, 3] = np.asarray(origin, dtype=float)
+    return a
+
+
+def to_sitk(volume: Volume, array: np.ndarray | None = None):
+    """A SimpleITK image of ``volume`` (or of ``array`` on the volume's grid)."""
+    import SimpleITK as sitk
+
+    arr = volume.hu if array is None else array
+    img = sitk.GetImageFromArray(np.ascontiguousarray(arr))
+    steps = volume.affine[:3, :3]
+    spacing = np.linalg.norm(steps, axis=0)  # z, y, x
+    unit = steps / spacing
+    direction = np.stack([unit[:, 2], unit[:, 1], unit[:, 0]], axis=1)  # columns i, j, k
+    img.SetSpacing((float(spacing[2]), float(spacing[1]), float(spacing[0])))
+    img.SetOrigin(tuple(float(v) for v in volume.affine[:3, 3]))
+    img.SetDirection(tuple(float(v) for v in direction.ravel()))
+    return img
