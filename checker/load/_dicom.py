@@ -1,0 +1,484 @@
+"""Loading one DICOM CT series (classic single-frame or Enhanced CT multi-frame)."""
+from __future__ import annotations
+
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+from pydicom.dataset import Dataset
+from pydicom.uid import UID, ExplicitVRLittleEndian, ImplicitVRLittleEndian
+
+from ..errors import (
+    DecoderMissingError,
+    InconsistentGeometryError,
+    MissingSlicesError,
+    NoPixelDataError,
+    ReconauditError,
+    TooLargeError,
+    UnreadableFileError,
+)
+from ..volume import Volume
+from ._geometry import StackGeometry, orientation_groups, remaining_positions_complete, stack_geometry
+from ._headers import (
+    MULTIFRAME_CT_SOP_CLASSES,
+    as_float,
+    as_floats,
+    check_has_pixels,
+    check_is_ct,
+    check_monochrome,
+    read_dataset,
+)
+from ._types import SeriesSource
+
+#: Packages that bring a decoder, by transfer syntax (pip names).
+DECODER_PACKAGES = {
+    "1.2.840.10008.1.2.4.50": "pylibjpeg and pylibjpeg-libjpeg",
+    "1.2.840.10008.1.2.4.51": "pylibjpeg and pylibjpeg-libjpeg",
+    "1.2.840.10008.1.2.4.57": "pylibjpeg and pylibjpeg-libjpeg",
+    "1.2.840.10008.1.2.4.70": "pylibjpeg and pylibjpeg-libjpeg",
+    "1.2.840.10008.1.2.4.80": "pylibjpeg and pylibjpeg-libjpeg (or pyjpegls)",
+    "1.2.840.10008.1.2.4.81": "pylibjpeg and pylibjpeg-libjpeg (or pyjpegls)",
+    "1.2.840.10008.1.2.4.90": "pylibjpeg and pylibjpeg-openjpeg",
+    "1.2.840.10008.1.2.4.91": "pylibjpeg and pylibjpeg-openjpeg",
+    "1.2.840.10008.1.2.4.201": "pylibjpeg and pylibjpeg-openjpeg",
+    "1.2.840.10008.1.2.4.202": "pylibjpeg and pylibjpeg-openjpeg",
+    "1.2.840.10008.1.2.4.203": "pylibjpeg and pylibjpeg-openjpeg",
+    "1.2.840.10008.1.2.5": "pylibjpeg and pylibjpeg-rle (pydicom's own RLE decoder needs numpy only)",
+}
+NATIVE_SYNTAXES = frozenset({ImplicitVRLittleEndian, ExplicitVRLittleEndian, "1.2.840.10008.1.2.2", "1.2.840.10008.1.2.1.99"})
+
+__all__ = ["load_dicom_series", "check_decoder", "DECODER_PACKAGES"]
+
+
+@dataclass
+class _Frame:
+    """One 2-D image: a classic file, or one frame of a multi-frame file."""
+
+    ds_index: int
+    frame: int
+    name: str
+    position: np.ndarray | None
+    iop: np.ndarray | None
+    pixel_spacing: np.ndarray | None
+    slope: float
+    intercept: float
+    rescale_found: bool
+    thickness: float | None
+
+
+# --------------------------------------------------------------------------- frames
+def _rescale(item: Any) -> tuple[float, float, bool]:
+    slope, intercept = as_float(item.get("RescaleSlope")), as_float(item.get("RescaleIntercept"))
+    if slope is None or intercept is None:
+        return 1.0, 0.0, False
+    return slope, intercept, True
+
+
+def _classic_frame(ds: Dataset, i: int, path: Path) -> _Frame:
+    slope, intercept, found = _rescale(ds)
+    return _Frame(
+        i, 0, path.name,
+        as_floats(ds.get("ImagePositionPatient"), 3),
+        as_floats(ds.get("ImageOrientationPatient"), 6),
+        as_floats(ds.get("PixelSpacing"), 2),
+        slope, intercept, found,
+        as_float(ds.get("SpacingBetweenSlices")) or as_float(ds.get("SliceThickness")),
+    )
+
+
+def _group_item(groups: Any, name: str) -> Any:
+    """First item of functional-group sequence ``name`` in ``groups``, or None."""
+    if groups is None or name not in groups or not groups[name].value:
+        return None
+    return groups[name].value[0]
+
+
+def _find_group(per_frame: Any, shared: Any, name: str) -> Any:
+    item = _group_item(per_frame, name)
+    return item if item is not None else _group_item(shared, name)
+
+
+def _multiframe_frames(ds: Dataset, i: int, path: Path) -> list[_Frame]:
+    n = int(ds.get("NumberOfFrames", 1) or 1)
+    shared_seq = ds.get("SharedFunctionalGroupsSequence")
+    shared = shared_seq[0] if shared_seq else None
+    per_frame_seq = ds.get("PerFrameFunctionalGroupsSequence") or []
+    if len(per_frame_seq) not in (0, n):
+        raise InconsistentGeometryError(
+            f"PerFrameFunctionalGroupsSequence has {len(per_frame_seq)} items, NumberOfFrames is {n}", source=str(path)
+        )
+    frames = []
+    for f in range(n):
+        pf = per_frame_seq[f] if per_frame_seq else None
+        pos = _find_group(pf, shared, "PlanePositionSequence")
+        ori = _find_group(pf, shared, "PlaneOrientationSequence")
+        meas = _find_group(pf, shared, "PixelMeasuresSequence")
+        trans = _find_group(pf, shared, "PixelValueTransformationSequence")
+        slope, intercept, found = _rescale(trans if trans is not None else ds)
+        frames.append(_Frame(
+            i, f, f"{path.name} frame {f + 1}",
+            as_floats(pos.get("ImagePositionPatient"), 3) if pos is not None else None,
+            as_floats(ori.get("ImageOrientationPatient"), 6) if ori is not None else None,
+            as_floats(meas.get("PixelSpacing"), 2) if meas is not None else None,
+            slope, intercept, found,
+            (as_float(meas.get("SpacingBetweenSlices")) or as_float(meas.get("SliceThickness"))) if meas is not None else None,
+        ))
+    return frames
+
+
+def _frames_of(ds: Dataset, i: int, path: Path) -> list[_Frame]:
+    if str(ds.get("SOPClassUID", "")) in MULTIFRAME_CT_SOP_CLASSES or int(ds.get("NumberOfFrames", 1) or 1) > 1:
+        return _multiframe_frames(ds, i, path)
+    return [_classic_frame(ds, i, path)]
+
+
+# --------------------------------------------------------------------------- checks
+def _declared_bytes(ds: Dataset) -> int:
+    rows, cols = int(ds.get("Rows", 0) or 0), int(ds.get("Columns", 0) or 0)
+    frames = int(ds.get("NumberOfFrames", 1) or 1)
+    return rows * cols * frames * 4
+
+
+def _check_size(total: int, where: str, max_bytes: int, what: str) -> None:
+    if total > max_bytes:
+        raise TooLargeError(
+            f"too large: {what} declare(s) {total / 2**30:.2f} GiB as float32 (Rows x Columns x frames x 4), "
+            f"limit {max_bytes / 2**30:.2f} GiB (max_bytes); nothing was allocated",
+            source=where,
+        )
+
+
+def _check_rows_columns(datasets: list[tuple[Path, Dataset]], label: str) -> tuple[int, int]:
+    sizes: dict[tuple[int, int], str] = {}
+    for path, ds in datasets:
+        sizes.setdefault((int(ds.get("Rows", 0) or 0), int(ds.get("Columns", 0) or 0)), path.name)
+    if len(sizes) > 1:
+        found = ", ".join(f"{r}x{c} in {name}" for (r, c), name in sizes.items())
+        raise InconsistentGeometryError(f"inconsistent Rows/Columns: {found}; expected one image size", source=label)
+    (rows, cols), name = next(iter(sizes.items()))
+    if rows < 1 or cols < 1:
+        raise InconsistentGeometryError(f"Rows/Columns {rows}x{cols} in {name}; expected positive sizes", source=label)
+    return rows, cols
+
+
+def _check_orientation(frames: list[_Frame], label: str) -> np.ndarray:
+    missing = [f.name for f in frames if f.iop is None or f.position is None]
+    if missing:
+        if len(frames) == 1:
+            return np.array([1.0, 0, 0, 0, 1, 0])
+        raise InconsistentGeometryError(
+            f"ImagePositionPatient/ImageOrientationPatient missing in {len(missing)} of {len(frames)} slices "
+            f"(e.g. {missing[0]}): cannot order the slices", source=label,
+        )
+    groups = orientation_groups(np.array([f.iop for f in frames]))
+    if len(groups) > 1:
+        found = "; ".join(f"{np.round(frames[g[0]].iop, 4).tolist()} in {len(g)} slice(s) (e.g. {frames[g[0]].name})" for g in groups)
+        raise InconsistentGeometryError(f"mixed orientation: ImageOrientationPatient differs: {found}; expected one", source=label)
+    return frames[0].iop
+
+
+def _check_pixel_spacing(frames: list[_Frame], label: str) -> np.ndarray:
+    missing = [f.name for f in frames if f.pixel_spacing is None]
+    if missing:
+        raise InconsistentGeometryError(f"PixelSpacing missing or malformed in {missing[0]} ({len(missing)} slice(s)); expected 2 positive numbers", source=label)
+    ps = np.array([f.pixel_spacing for f in frames])
+    if np.any(ps <= 0):
+        raise InconsistentGeometryError(f"PixelSpacing must be positive, found {ps[np.any(ps <= 0, axis=1)][0].tolist()}", source=label)
+    if np.max(np.abs(ps - ps[0])) > 1e-4:
+        raise InconsistentGeometryError(
+            f"PixelSpacing differs between slices: {ps.min(axis=0).tolist()} to {ps.max(axis=0).tolist()} mm; expected one", source=label
+        )
+    return ps[0]
+
+
+def check_decoder(transfer_syntax: str, where: str) -> None:
+    """Raise DecoderMissingError when no installed decoder handles ``transfer_syntax``.
+
+    References
+    ----------
+    pydicom documentation, "Pixel data decoding" (``pydicom.pixels.get_decoder``).
+    """
+    ts = UID(transfer_syntax)
+    if ts in NATIVE_SYNTAXES or not ts.is_compressed:
+        return
+    from pydicom.pixels import get_decoder
+
+    try:
+        decoder = get_decoder(ts)
+    except (NotImplementedError, ValueError) as exc:
+        raise DecoderMissingError(
+            f"compressed pixel data in transfer syntax {ts.name} ({ts}): the installed pydicom has no decoder "
+            "for it; a newer pydicom or a decoder plugin is needed", source=where,
+        ) from exc
+    if not decoder.is_available:
+        package = DECODER_PACKAGES.get(str(ts), "a pydicom decoder plugin (pylibjpeg with its plugins, or gdcm)")
+        raise DecoderMissingError(
+            f"compressed pixel data in transfer syntax {ts.name} ({ts}) and no decoder installed: "
+            f"install {package} (pip install {package.split(' (')[0].replace(' and ', ' ')})", source=where,
+        )
+
+
+def _transfer_syntax(ds: Dataset) -> str:
+    meta = getattr(ds, "file_meta", None)
+    ts = meta.get("TransferSyntaxUID") if meta is not None else None
+    return str(ts) if ts else ImplicitVRLittleEndian
+
+
+# --------------------------------------------------------------------------- pixels
+def _stored_frames(ds: Dataset, path: Path) -> np.ndarray:
+    """Stored values (frames, rows, cols) of one file; UnreadableFileError if damaged."""
+    rows, cols = int(ds.Rows), int(ds.Columns)
+    frames = int(ds.get("NumberOfFrames", 1) or 1)
+    try:
+        if _transfer_syntax(ds) in (ImplicitVRLittleEndian, ExplicitVRLittleEndian) and int(ds.BitsAllocated) == 16 \
+                and int(ds.get("BitsStored", 16)) == 16 and "PixelData" in ds:
+            raw = ds.PixelData
+            need = rows * cols * frames
+            if len(raw) < 2 * need:
+                raise UnreadableFileError(f"truncated pixel data: {len(raw)} bytes, expected {2 * need}", source=str(path))
+            dtype = "<i2" if int(ds.get("PixelRepresentation", 0)) else "<u2"
+            return np.frombuffer(raw, dtype=dtype, count=need).reshape(frames, rows, cols)
+        return np.asarray(ds.pixel_array).reshape(frames, rows, cols)
+    except ReconauditError:
+        raise
+    except Exception as exc:
+        raise UnreadableFileError(f"cannot decode pixel data ({type(exc).__name__}: {exc})", source=str(path)) from exc
+
+
+def _padding_range(ds: Dataset) -> tuple[float, float] | None:
+    if "PixelPaddingValue" not in ds:
+        return None
+    value = int(ds.PixelPaddingValue if not isinstance(ds.PixelPaddingValue, bytes) else 0)
+    bits = int(ds.get("BitsAllocated", 16) or 16)
+    if int(ds.get("PixelRepresentation", 0)) and value >= 2 ** (bits - 1):
+        value -= 2**bits  # read as unsigned though the storage is signed
+    limit = ds.get("PixelPaddingRangeLimit")
+    if limit is None:
+        return float(value), float(value)
+    lim = int(limit)
+    if int(ds.get("PixelRepresentation", 0)) and lim >= 2 ** (bits - 1):
+        lim -= 2**bits
+    return float(min(value, lim)), float(max(value, lim))
+
+
+class _PaddingTracker:
+    """Keeps the padding mask while slices are filled; tells whether it is the same everywhere."""
+
+    def __init__(self) -> None:
+        self.mask: np.ndarray | None = None
+        self.same = True
+        self.hu_values: set[float] = set()
+
+    def add(self, stored: np.ndarray, pad: tuple[float, float] | None, slope: float, intercept: float) -> None:
+        mask = np.zeros(stored.shape, bool) if pad is None else (stored >= pad[0]) & (stored <= pad[1])
+        if pad is not None and mask.any():
+            self.hu_values.add(round(pad[0] * slope + intercept, 3))
+        if self.mask is None:
+            self.mask = mask
+        elif self.same and not np.array_equal(mask, self.mask):
+            self.same = False
+
+    def result(self) -> tuple[np.ndarray | None, str | None]:
+        if self.mask is None or not self.hu_values:
+            return None, None
+        hu = ", ".join(f"{v:g}" for v in sorted(self.hu_values))
+        if not self.same:
+            return None, f"PixelPaddingValue marks different pixels on different slices: no common padding mask; padded voxels hold {hu} HU"
+        return self.mask.copy(), f"padding: {int(self.mask.sum())} pixels per slice marked by PixelPaddingValue hold {hu} HU"
+
+
+# --------------------------------------------------------------------------- series
+def _read_all(src: SeriesSource) -> tuple[list[tuple[Path, Dataset]], list[tuple[Path, ReconauditError]]]:
+    good, bad = [], []
+    for path in src.files:
+        try:
+            good.append((Path(path), read_dataset(Path(path))))
+        except ReconauditError as err:
+            bad.append((Path(path), err))
+    return good, bad
+
+
+def _validate_objects(datasets: list[tuple[Path, Dataset]], bad: list, label: str, notes: list[str]) -> list[tuple[Path, Dataset]]:
+    for path, ds in datasets:
+        where = f"{label}, file {path.name}"
+        check_is_ct(ds, where)
+        note = check_monochrome(ds, where)
+        if note and note not in notes:
+            notes.append(note)
+    with_pixels = [(p, ds) for p, ds in datasets if _has_pixels(ds)]
+    if not with_pixels:
+        check_has_pixels(datasets[0][1], f"{label}, file {datasets[0][0].name}")
+    for p, ds in datasets:
+        if not _has_pixels(ds):
+            bad.append((p, NoPixelDataError("no pixel data: the object has no PixelData element", source=str(p))))
+    return with_pixels
+
+
+def _has_pixels(ds: Dataset) -> bool:
+    return any(k in ds for k in ("PixelData", "FloatPixelData", "DoubleFloatPixelData"))
+
+
+def _geometry(frames: list[_Frame], bad: list, label: str) -> StackGeometry:
+    iop = _check_orientation(frames, label)
+    ps = _check_pixel_spacing(frames, label)
+    positions = np.array([f.position if f.position is not None else np.zeros(3) for f in frames])
+    try:
+        return stack_geometry(positions, iop, ps, names=[f.name for f in frames], label=label, single_slice_spacing=frames[0].thickness)
+    except MissingSlicesError as err:
+        if bad:
+            raise UnreadableFileError(
+                f"{len(bad)} file(s) could not be used ({bad[0][0].name}: {bad[0][1]}) and the rest is not complete "
+                f"without them: {err}", source=label,
+            ) from err
+        raise
+
+
+def load_dicom_series(src: SeriesSource, *, include_identifiers: bool = False, max_bytes: int = 4 * 2**30) -> Volume:
+    """Load a DICOM CT series as a HU volume sorted along the slice normal.
+
+    Parameters
+    ----------
+    src : SeriesSource
+        From :func:`~reconaudit.checker.load.discover` (or built by hand).
+    include_identifiers : bool
+        Fill ``Volume.identifiers`` with patient name, ID, birth date and accession number.
+    max_bytes : int
+        Refuse a series whose declared Rows x Columns x frames x 4 bytes exceed this,
+        before anything is allocated.
+
+    Returns
+    -------
+    Volume
+
+    Raises
+    ------
+    NotCTError, NotMonochromeError, NoPixelDataError, InconsistentGeometryError,
+    MissingSlicesError, UnreadableFileError, DecoderMissingError, TooLargeError
+
+    References
+    ----------
+    DICOM PS3.3, A.3 (CT Image IOD), A.38 (Enhanced CT Image IOD), C.7.6.2 (Image Plane),
+    C.7.6.3 (Image Pixel; PixelPaddingValue), C.11.1 (Modality LUT: RescaleSlope and
+    RescaleIntercept give HU).
+    """
+    label = src.label
+    datasets, bad = _read_all(src)
+    if not datasets:
+        raise UnreadableFileError(f"none of the {len(bad)} file(s) could be read; first: {bad[0][1]}" if bad else "no files", source=label)
+    for path, ds in datasets:
+        _check_size(_declared_bytes(ds), f"{label}, file {path.name}", max_bytes, f"Rows {ds.get('Rows')} x Columns {ds.get('Columns')} x {ds.get('NumberOfFrames', 1)} frame(s)")
+    notes = list(src.notes)
+    datasets = _validate_objects(datasets, bad, label, notes)
+    rows, cols = _check_rows_columns(datasets, label)
+    frames = [f for i, (p, ds) in enumerate(datasets) for f in _frames_of(ds, i, p)]
+    _check_size(rows * cols * len(frames) * 4, label, max_bytes, f"{len(frames)} slices of {rows} x {cols}")
+    geometry = _geometry(frames, bad, label)
+    for ts in sorted({_transfer_syntax(ds) for _, ds in datasets}):
+        check_decoder(ts, label)
+    hu, failed, padding = _fill(datasets, frames, geometry, rows, cols)
+    if failed:
+        hu, geometry = _drop_failed(hu, frames, geometry, failed, label)
+        bad.extend(failed.values())
+    notes.extend(_notes(frames, datasets, geometry, bad, padding))
+    first = datasets[frames[geometry.order[0]].ds_index][1]
+    return Volume(
+        hu=hu, spacing_mm=geometry.spacing_mm, affine=geometry.affine, series_uid=src.series_uid,
+        metadata=_metadata(first, frames[geometry.order[0]]), identifiers=_identifiers(first) if include_identifiers else {},
+        padding_mask=padding[0], notes=notes, source=src.source,
+    )
+
+
+def _fill(datasets, frames, geometry, rows, cols):
+    out_index = np.empty(len(frames), dtype=int)
+    out_index[geometry.order] = np.arange(len(frames))
+    by_ds: dict[int, list[int]] = {}
+    for j, f in enumerate(frames):
+        by_ds.setdefault(f.ds_index, []).append(j)
+    hu = np.empty((len(frames), rows, cols), dtype=np.float32)
+    failed: dict[int, tuple[Path, ReconauditError]] = {}
+    pad = _PaddingTracker()
+    for ds_index in sorted(by_ds, key=lambda i: min(out_index[j] for j in by_ds[i])):
+        path, ds = datasets[ds_index]
+        try:
+            stored = _stored_frames(ds, path)
+        except ReconauditError as err:
+            for j in by_ds[ds_index]:
+                failed[int(out_index[j])] = (path, err)
+            continue
+        pad_range = _padding_range(ds)
+        for j in by_ds[ds_index]:
+            f, k = frames[j], int(out_index[j])
+            np.multiply(stored[f.frame], f.slope, out=hu[k], casting="unsafe")
+            hu[k] += np.float32(f.intercept)
+            pad.add(stored[f.frame], pad_range, f.slope, f.intercept)
+    return hu, failed, pad.result()
+
+
+def _drop_failed(hu, frames, geometry, failed, label):
+    keep = np.array([k for k in range(hu.shape[0]) if k not in failed])
+    positions = np.array([frames[j].position for j in geometry.order])
+    iop = frames[0].iop
+    names = ", ".join(sorted({p.name for p, _ in failed.values()}))
+    if keep.size == 0 or not remaining_positions_complete(positions[keep], iop):
+        first = next(iter(failed.values()))
+        raise UnreadableFileError(
+            f"unreadable pixel data in {names} ({first[1]}); the series is not complete without them", source=label
+        )
+    kept_order = geometry.order[keep]
+    new = stack_geometry(
+        positions[keep], iop, [geometry.spacing_mm[1], geometry.spacing_mm[2]],
+        names=[frames[j].name for j in kept_order], label=label, single_slice_spacing=geometry.spacing_mm[0],
+    )
+    new.order = kept_order[new.order]
+    return np.ascontiguousarray(hu[keep]), new
+
+
+def _notes(frames, datasets, geometry, bad, padding) -> list[str]:
+    notes = list(geometry.notes)
+    for path, err in bad:
+        notes.append(f"file {path.name} left out ({err.kind}: {err}); the remaining slices form a complete series")
+    if not all(f.rescale_found for f in frames):
+        n = sum(not f.rescale_found for f in frames)
+        notes.append(f"RescaleSlope/RescaleIntercept missing in {n} slice(s): slope 1, intercept 0 used (stored values taken as HU)")
+    tilt = as_float(datasets[0][1].get("GantryDetectorTilt"), 0.0)
+    if tilt and not any(n.startswith("gantry tilt") for n in notes):
+        notes.append(f"GantryDetectorTilt is {tilt:g} deg in the header; the slice positions show no shear")
+    if padding[1]:
+        notes.append(padding[1])
+    return notes
+
+
+def _text(ds: Dataset, name: str) -> str | None:
+    value = ds.get(name)
+    if value is None or value == "":
+        return None
+    if isinstance(value, (list, tuple)) or type(value).__name__ == "MultiValue":
+        return "\\".join(str(v) for v in value)
+    return str(value)
+
+
+def _metadata(ds: Dataset, frame: _Frame) -> dict[str, Any]:
+    thickness = as_float(ds.get("SliceThickness"))
+    if thickness is None and frame.thickness is not None:
+        thickness = frame.thickness
+    number = as_float(ds.get("SeriesNumber"))
+    return {
+        "modality": _text(ds, "Modality"),
+        "convolution_kernel": _text(ds, "ConvolutionKernel"),
+        "kvp": as_float(ds.get("KVP")),
+        "slice_thickness_mm": thickness,
+        "series_description": _text(ds, "SeriesDescription"),
+        "manufacturer_model_name": _text(ds, "ManufacturerModelName"),
+        "study_date": _text(ds, "StudyDate"),
+        "series_number": int(number) if number is not None else None,
+    }
+
+
+def _identifiers(ds: Dataset) -> dict[str, Any]:
+    return {
+        "patient_name": _text(ds, "PatientName"),
+        "patient_id": _text(ds, "PatientID"),
+        "patient_birth_date": _text(ds, "PatientBirthDate"),
+        "accession_number": _text(ds, "AccessionNumber"),
+    }
