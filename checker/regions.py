@@ -39,6 +39,7 @@ class Regions:
     fov_is_circle: bool
     body_centroid_zyx_vox: tuple[float, float, float] | None
     notes: list[str] = field(default_factory=list)
+    margin_mm: float = 4.0  # the air lies this far from the body and table (in-plane)
 
     @property
     def has_body(self) -> bool:
@@ -168,4 +169,5 @@ def find_regions(
         fov_is_circle=is_circle,
         body_centroid_zyx_vox=centroid,
         notes=notes,
+        margin_mm=float(margin_mm),
     )

@@ -1,0 +1,112 @@
+"""Time and memory of the shared regions and the air analysis on a large series.
+
+Prints, never asserts. The volume is invented: a water torso with arms and a table in
+air, 512 x 512 pixels of 0.7 mm, ``--slices`` slices of 1.25 mm, correlated noise of
+12 HU, and two faint structures in the air. When ``benchmarks/harness.py`` offers
+``read_limit`` the times are also printed as ratios to the time of reading such a
+series; otherwise absolute times only.
+
+Usage: ``python benchmarks/bench_air.py [--slices 400]``
+"""
+from __future__ import annotations
+
+import argparse
+import sys
+import time
+import tracemalloc
+from pathlib import Path
+
+import numpy as np
+from scipy import ndimage
+
+from reconaudit.checker.analyses import air
+from reconaudit.checker.regions import find_regions
+from reconaudit.checker.volume import Volume
+
+
+def _ellipse(n: int, cy: float, cx: float, ay: float, ax: float) -> np.ndarray:
+    y, x = np.mgrid[0:n, 0:n]
+    return ((y - cy) / ay) ** 2 + ((x - cx) / ax) ** 2 <= 1.0
+
+
+def make_volume(nz: int, n: int = 512, seed: int = 3) -> Volume:
+    """Invented torso series; noise is made on a 16-slice slab and tiled (fast)."""
+    img = np.full((n, n), -1000.0, dtype=np.float32)
+    c = n / 2
+    img[_ellipse(n, c - 0.06 * n, c, 0.2 * n, 0.28 * n)] = 0.0
+    for side in (-1, 1):
+        img[_ellipse(n, c - 0.04 * n, c + side * 0.38 * n, 0.06 * n, 0.045 * n)] = 40.0
+    img[int(c + 0.205 * n) : int(c + 0.24 * n), int(c - 0.33 * n) : int(c + 0.33 * n)] = 250.0
+    fov = _ellipse(n, c - 0.5, c - 0.5, 0.49 * n, 0.49 * n)
+    rng = np.random.default_rng(seed)
+    w = rng.standard_normal((16, n, n)).astype(np.float32)
+    slab = ndimage.gaussian_filter(w, (0.6, 0.9, 0.9)) - ndimage.gaussian_filter(w, (0.6, 2.2, 2.2))
+    slab *= 12.0 / slab.std()
+    hu = np.empty((nz, n, n), dtype=np.float32)
+    for z0 in range(0, nz, 16):
+        k = min(16, nz - z0)
+        hu[z0 : z0 + k] = img[None] + np.roll(slab[:k], shift=(z0 * 7) % n, axis=2)
+    zc = nz // 2
+    for (cy, cx, value) in ((0.12 * n, 0.3 * n, -930.0), (0.15 * n, 0.7 * n, -960.0)):
+        zz, yy, xx = np.ogrid[-10:11, -14:15, -14:15]
+        ball = (zz * 1.25) ** 2 + (yy * 0.7) ** 2 + (xx * 0.7) ** 2 <= 100.0
+        sub = hu[zc - 10 : zc + 11, int(cy) - 14 : int(cy) + 15, int(cx) - 14 : int(cx) + 15]
+        sub[ball] += value + 1000.0
+    hu[:, ~fov] = -3024.0
+    return Volume.from_array(hu, spacing_mm=(1.25, 0.7, 0.7), padding_mask=~fov)
+
+
+def _measure(fn, *args):
+    tracemalloc.start()
+    t0 = time.perf_counter()
+    out = fn(*args)
+    dt = time.perf_counter() - t0
+    _, peak = tracemalloc.get_traced_memory()
+    tracemalloc.stop()
+    return out, dt, peak
+
+
+def _read_limit(nz: int):
+    sys.path.insert(0, str(Path(__file__).resolve().parent))
+    try:
+        import harness  # type: ignore[import-not-found]
+    except ImportError:
+        return None
+    fn = getattr(harness, "read_limit", None)
+    if fn is None:
+        return None
+    try:
+        return float(fn(nz) if callable(fn) else fn)
+    except Exception as exc:  # the harness belongs to another part; report and go on
+        print(f"harness.read_limit failed: {exc}")
+        return None
+
+
+def main() -> None:
+    ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    ap.add_argument("--slices", type=int, default=400)
+    args = ap.parse_args()
+    vol = make_volume(args.slices)
+    vol_bytes = vol.hu.nbytes
+    print(f"volume {vol.shape} float32 = {vol_bytes / 2**20:.0f} MiB")
+    regions, t_reg, m_reg = _measure(find_regions, vol)
+    print(f"find_regions: {t_reg:.2f} s, peak extra memory {m_reg / vol_bytes:.2f}x the float32 volume")
+    res, t_air, m_air = _measure(air.analyse, vol, regions)
+    print(f"air.analyse:  {t_air:.2f} s, peak extra memory {m_air / vol_bytes:.2f}x the float32 volume")
+    rec = res.record
+    print(f"air mean {rec.get('mean_hu')} HU, noise {rec.get('noise_hu')} HU, structures:")
+    for st in rec.get("structures", []):
+        print(f"  {st['id']}: {st['kind']}, {st['volume_mm3']:.0f} mm3, mean {st['mean_hu']:.0f} HU, flagged {st['flagged']}")
+    print(
+        "whole-check memory for these two (volume + regions + air peak): "
+        f"{(vol_bytes + m_reg + m_air) / vol_bytes:.2f}x (target 2.5x)"
+    )
+    limit = _read_limit(args.slices)
+    if limit:
+        print(f"read limit {limit:.2f} s; air/read = {t_air / limit:.2f} (target 0.35), regions/read = {t_reg / limit:.2f}")
+    else:
+        print("no read limit available (benchmarks/harness.py absent): absolute times only")
+
+
+if __name__ == "__main__":
+    main()
