@@ -1,0 +1,770 @@
+"""Streak-direction analysis: directional line energy, missing angular wedges, streak maps.
+
+Streaks are long, straight, thin structures that cross air, uniform tissue and the body
+outline; anatomy edges and isotropic noise do not make them. The analysis works in two
+steps.
+
+Screen (every axial slice). The slice is binned to at most ``screen_max_px`` pixels a
+side. A high-pass residual ``r = s - G(s)`` (Gaussian ``highpass_sigma_px``) is taken;
+pixels near strong edges of the smoothed image (a step of ``edge_step_hu`` or more: body
+outline, lungs, bone, metal), the table, the body outline, the border of the field of
+view and invalid (NaN) pixels get zero weight; the residual is clipped at
+``clip_sigma`` robust standard deviations so that the remaining contrast does not
+dominate. Its 2-D power spectrum ``P(k)`` is whitened ring by ring, ``P(k) / m(|k|)``,
+where ``m`` is the mean power of the ring: that is exactly the power an isotropic noise
+of the measured level and spectrum shape would put at that frequency. The whitened
+power averaged over the frequencies of orientation bin ``phi`` inside the band
+``band_cycles_per_px`` is the *angular profile* ``A(phi)``; its mean over the bins is 1.
+Under the Fourier slice theorem a line structure along orientation ``theta`` puts its
+energy on the frequency line perpendicular to it, so each frequency is binned by the
+orientation of the image lines it carries (in the GUIDE convention).
+
+Streak index of a slice (dimensionless, 1 for isotropic texture)::
+
+    index = max( max_phi A(phi),  1 / max(min_phi A3(phi), 1 / n_bins) )
+
+``A3`` is ``A`` smoothed over three bins. The first term measures line energy
+concentrated at some orientations (view aliasing, metal, boundary streaks); the second
+measures orientations with no energy at all (a missing angular wedge removes both the
+object's and the noise's spectrum there). The volume index is the largest slice index.
+A slice, and the series, is flagged when its index exceeds ``tolerance_index``.
+
+Missing wedge: a contiguous run of at least ``wedge_min_deg`` of orientation bins of the
+mean profile below ``wedge_level``; its ends are refined to the half-level crossings.
+Reported as ``{"from_deg", "to_deg", "width_deg"}``: the missing line orientations run
+counter-clockwise from ``from_deg`` to ``to_deg`` (``from_deg > to_deg`` when the range
+wraps past 180), or ``null``.
+
+Dominant directions: the two boundaries of a missing wedge (streaks of a missing wedge
+run along its boundary rays), then the local maxima of the profile above
+``peak_level``, strongest first, at most ``max_directions``.
+
+Localisation (flagged slices only). For each dominant direction the residual's spectrum
+is kept in a Gaussian angular window around it and transformed back: a directional
+component. Its local RMS, divided by the RMS isotropic noise of the measured level would
+give in the same window, is the per-pixel streak strength (1 ~ noise; the map is the
+maximum over the directions, 0 on unflagged slices). Line sums of the directional
+component across offsets (a discrete Radon transform at that angle) give the streak
+lines: offsets whose robust z-score exceeds ``segment_z``; each line's extent is the
+longest run along it where the local mean keeps the line's sign and reaches
+``segment_keep`` of the line's mean amplitude.
+
+References
+----------
+.. [1] A. C. Kak and M. Slaney, *Principles of Computerized Tomographic Imaging*,
+   IEEE Press, 1988 (Fourier slice theorem; view aliasing; limited-angle data).
+.. [2] J. Hsieh, *Computed Tomography: Principles, Design, Artifacts, and Recent
+   Advances*, SPIE Press (streak artefacts from metal and photon starvation).
+"""
+from __future__ import annotations
+
+import functools
+import math
+from dataclasses import dataclass, field
+from typing import Any
+
+import numpy as np
+import scipy.fft as sfft
+from scipy import ndimage
+
+from ..errors import ProfileError
+from ..regions import Regions
+from ..results import AnalysisResult, Finding, Overlays, Segment, Severity
+from ..volume import Volume
+
+NAME = "streaks"
+
+DEFAULTS: dict[str, Any] = {
+    "tolerance_index": 2.0,
+    "severity": "review",
+    "screen_max_px": 256,
+    "min_slice_px": 32,
+    "band_cycles_per_px": [0.08, 0.45],
+    "angle_bin_deg": 2.0,
+    "highpass_sigma_px": 1.5,
+    "edge_step_hu": 300.0,
+    "clip_sigma": 4.0,
+    "border_margin_px": 3,
+    "min_weight_fraction": 0.05,
+    "wedge_level": 0.25,
+    "wedge_min_deg": 16.0,
+    "peak_level": 1.6,
+    "max_directions": 4,
+    "direction_window_deg": 3.0,
+    "segment_z": 6.0,
+    "segment_keep": 0.3,
+    "segment_min_px": 16,
+    "max_segments_per_slice": 6,
+    "max_localised_slices": 64,
+}
+
+SOURCES: dict[str, str] = {
+    "tolerance_index": (
+        "site choice; default set above the largest index measured on full-coverage, "
+        "smoothed and noise-only simulations (tests/reference/test_streaks_reference.py)"
+    ),
+    "severity": "site choice",
+    "wedge_level": "site choice (fraction of the isotropic level, 1)",
+    "wedge_min_deg": "site choice",
+    "peak_level": "site choice",
+    "edge_step_hu": "common practice, no source (soft tissue/bone/air steps exceed it)",
+}
+
+_SEVERITIES = {"info": Severity.INFO, "review": Severity.REVIEW, "fail": Severity.FAIL}
+
+
+# --------------------------------------------------------------------------- settings
+def resolve_settings(settings: dict[str, Any] | None) -> dict[str, Any]:
+    """``DEFAULTS`` overridden key by key; unknown keys raise :class:`ProfileError`."""
+    merged = dict(DEFAULTS)
+    for key, value in (settings or {}).items():
+        if key not in DEFAULTS:
+            raise ProfileError(f"unknown setting {key!r}; known: {', '.join(DEFAULTS)}", source=NAME)
+        merged[key] = value
+    if str(merged["severity"]).lower() not in _SEVERITIES:
+        raise ProfileError(f"severity {merged['severity']!r}; expected one of {', '.join(_SEVERITIES)}", source=NAME)
+    lo, hi = (float(v) for v in merged["band_cycles_per_px"])
+    if not 0.0 < lo < hi <= 0.5:
+        raise ProfileError(f"band_cycles_per_px {[lo, hi]}; expected 0 < low < high <= 0.5", source=NAME)
+    if not 180.0 / float(merged["angle_bin_deg"]) >= 12:
+        raise ProfileError(f"angle_bin_deg {merged['angle_bin_deg']}; expected at most 15", source=NAME)
+    return merged
+
+
+# --------------------------------------------------------------------------- spectra
+@dataclass(frozen=True)
+class SpectralBins:
+    """Which rfft2 samples of a (ny, nx) slice fall in which (ring, orientation) cell."""
+
+    shape: tuple[int, int]
+    n_bins: int
+    n_rings: int
+    sample: np.ndarray  # flat indices into the rfft2 array
+    cell: np.ndarray  # ring * n_bins + orientation bin, per sample
+    ring: np.ndarray  # ring index per sample
+    ring_count: np.ndarray  # samples per ring
+    bin_count: np.ndarray  # samples per orientation bin
+    line_angle_deg: np.ndarray  # orientation of the carried image lines, per rfft2 sample (full array)
+    radius: np.ndarray  # |k| cycles/px, per rfft2 sample (full array)
+
+
+def line_angle_of_frequency(ky: np.ndarray, kx: np.ndarray) -> np.ndarray:
+    """Orientation (deg, [0, 180), GUIDE convention) of the image lines a frequency carries.
+
+    A line along the array direction (dy, dx) has its spectrum on k with
+    ``ky*dy + kx*dx = 0``, i.e. (dy, dx) ~ (kx, -ky); its display angle
+    ``atan2(-dy, dx)`` is therefore ``atan2(kx, ky)`` (mod 180).
+
+    References
+    ----------
+    .. [1] Kak & Slaney (1988), ch. 3 (Fourier slice theorem).
+    """
+    return np.mod(np.degrees(np.arctan2(kx, ky)), 180.0)
+
+
+@functools.lru_cache(maxsize=16)
+def spectral_bins(shape: tuple[int, int], band: tuple[float, float], bin_deg: float) -> SpectralBins:
+    """Precomputed orientation/ring bins of the rfft2 grid of ``shape`` (cached per shape)."""
+    ny, nx = shape
+    ky = sfft.fftfreq(ny).astype(np.float32)[:, None]
+    kx = sfft.rfftfreq(nx).astype(np.float32)[None, :]
+    radius = np.sqrt(ky * ky + kx * kx)
+    angle = line_angle_of_frequency(ky, kx).astype(np.float32)
+    n_bins = int(round(180.0 / bin_deg))
+    ang_bin = np.floor((angle + 0.5 * bin_deg) / bin_deg).astype(np.int64) % n_bins
+    ring_width = 2.0 / min(ny, nx)
+    lo, hi = band
+    in_band = (radius >= lo) & (radius <= hi)
+    sample = np.flatnonzero(in_band.ravel())
+    ring = np.floor((radius.ravel()[sample] - lo) / ring_width).astype(np.int64)
+    n_rings = int(ring.max()) + 1 if ring.size else 1
+    cell = ring * n_bins + ang_bin.ravel()[sample]
+    return SpectralBins(
+        shape=(ny, nx),
+        n_bins=n_bins,
+        n_rings=n_rings,
+        sample=sample,
+        cell=cell,
+        ring=ring,
+        ring_count=np.bincount(ring, minlength=n_rings).astype(np.float64),
+        bin_count=np.bincount(ang_bin.ravel()[sample], minlength=n_bins).astype(np.float64),
+        line_angle_deg=angle,
+        radius=radius,
+    )
+
+
+def angular_profile(spectrum_power: np.ndarray, bins: SpectralBins) -> np.ndarray | None:
+    """Ring-whitened mean power per orientation bin (mean 1 over bins), or None if empty.
+
+    Each sample's power is divided by the mean power of its frequency ring (what an
+    isotropic texture of the same level and spectrum shape gives), then averaged per bin.
+    """
+    flat = spectrum_power.ravel()[bins.sample].astype(np.float64)
+    ring_mean = np.bincount(bins.ring, weights=flat, minlength=bins.n_rings) / np.maximum(bins.ring_count, 1)
+    if not np.all(np.isfinite(ring_mean)) or ring_mean.max() <= 0:
+        return None
+    inv = np.where(ring_mean > 0, 1.0 / np.where(ring_mean > 0, ring_mean, 1.0), 0.0)
+    whitened = flat * inv[bins.ring]
+    per_bin = np.bincount(bins.cell % bins.n_bins, weights=whitened, minlength=bins.n_bins)
+    profile = per_bin / np.maximum(bins.bin_count, 1)
+    mean = profile.mean()
+    return profile / mean if mean > 0 else None
+
+
+def circular_smooth(values: np.ndarray, width: int = 3) -> np.ndarray:
+    """Moving average over ``width`` neighbouring bins, wrapping at 180 deg."""
+    return ndimage.uniform_filter1d(values, size=width, mode="wrap")
+
+
+def streak_index_of_profile(profile: np.ndarray) -> float:
+    """``max(max A, 1 / max(min A3, 1/n))``: 1 for isotropic texture (see module docstring)."""
+    peak = float(profile.max())
+    trough = max(float(circular_smooth(profile).min()), 1.0 / profile.size)
+    return max(peak, 1.0 / trough)
+
+
+# --------------------------------------------------------------------------- residual
+@dataclass
+class SliceTexture:
+    """The weighted, clipped high-pass residual of one (binned) slice and its spectrum."""
+
+    residual: np.ndarray  # float32, weighted and clipped
+    weight: np.ndarray  # bool
+    scale_hu: float  # robust SD of the residual inside the weight
+    spectrum: np.ndarray  # complex64 rfft2 of residual
+
+
+def bin_slice(image: np.ndarray, factor: int) -> np.ndarray:
+    """Mean over ``factor`` x ``factor`` blocks (cropping the remainder)."""
+    if factor == 1:
+        return image
+    ny, nx = (n // factor * factor for n in image.shape)
+    view = image[:ny, :nx].reshape(ny // factor, factor, nx // factor, factor)
+    return view.mean(axis=(1, 3), dtype=np.float32)
+
+
+def bin_mask(mask: np.ndarray, factor: int) -> np.ndarray:
+    """Any-of over ``factor`` x ``factor`` blocks (cropping the remainder)."""
+    if factor == 1:
+        return mask
+    ny, nx = (n // factor * factor for n in mask.shape)
+    return mask[:ny, :nx].reshape(ny // factor, factor, nx // factor, factor).any(axis=(1, 3))
+
+
+def strong_edges(smoothed: np.ndarray, step_hu: float, sigma_px: float) -> np.ndarray:
+    """Pixels whose smoothed gradient is that of a step of at least ``step_hu``.
+
+    A step of height h blurred by a Gaussian of SD sigma has a peak gradient of
+    h / (sigma sqrt(2 pi)) per pixel (analytic).
+    """
+    gy = np.zeros_like(smoothed)
+    gx = np.zeros_like(smoothed)
+    gy[1:-1] = 0.5 * (smoothed[2:] - smoothed[:-2])
+    gx[:, 1:-1] = 0.5 * (smoothed[:, 2:] - smoothed[:, :-2])
+    threshold = step_hu / (max(sigma_px, 0.5) * math.sqrt(2.0 * math.pi))
+    return gy * gy + gx * gx > threshold * threshold
+
+
+def grow(mask: np.ndarray, radius_px: int) -> np.ndarray:
+    """Square dilation of a boolean mask by ``radius_px``."""
+    if radius_px <= 0 or not mask.any():
+        return mask
+    return ndimage.maximum_filter(mask.view(np.uint8), size=2 * radius_px + 1).astype(bool)
+
+
+def slice_texture(image: np.ndarray, allowed: np.ndarray, cfg: dict[str, Any]) -> SliceTexture | None:
+    """Edge-suppressed, clipped high-pass residual of one slice; None if nothing is left.
+
+    ``allowed`` marks pixels that may count (FOV minus border, table and body outline).
+    """
+    finite = np.isfinite(image)
+    valid = allowed & finite
+    if valid.sum() < cfg["min_weight_fraction"] * image.size:
+        return None
+    img = image
+    if not finite.all() or not allowed.all():
+        fill = float(np.median(image[valid]))
+        img = np.where(valid, image, np.float32(fill)).astype(np.float32, copy=False)
+    sigma = float(cfg["highpass_sigma_px"])
+    smoothed = ndimage.gaussian_filter(img, sigma, truncate=3.0)
+    residual = img - smoothed
+    reach = int(math.ceil(2.0 * sigma)) + 1
+    bad = grow(~valid | strong_edges(smoothed, float(cfg["edge_step_hu"]), sigma), reach)
+    weight = ~bad
+    if weight.sum() < cfg["min_weight_fraction"] * image.size:
+        return None
+    inside = residual[weight]
+    scale = 1.4826 * float(np.median(np.abs(inside[:: max(1, inside.size // 20000)])))
+    if not scale > 0 or not math.isfinite(scale):
+        return None
+    limit = np.float32(cfg["clip_sigma"] * scale)
+    clipped = np.clip(residual, -limit, limit)
+    clipped *= weight
+    spectrum = sfft.rfft2(clipped.astype(np.float32, copy=False))
+    return SliceTexture(residual=clipped, weight=weight, scale_hu=scale, spectrum=spectrum)
+
+
+def power(spectrum: np.ndarray) -> np.ndarray:
+    """|F|^2 of a complex spectrum, float32."""
+    return spectrum.real * spectrum.real + spectrum.imag * spectrum.imag
+
+
+# --------------------------------------------------------------------------- directions
+def missing_wedge(profile: np.ndarray, bin_deg: float, level: float, min_deg: float) -> dict[str, float] | None:
+    """The widest contiguous orientation range with (smoothed) profile below ``level``.
+
+    Ends are refined to where the smoothed profile crosses half the isotropic level
+    (0.5), interpolated linearly between bin centres. Returns ``{"from_deg", "to_deg",
+    "width_deg"}`` (counter-clockwise from ``from_deg`` to ``to_deg``) or None.
+    """
+    smooth = circular_smooth(profile)
+    low = smooth < level
+    n = low.size
+    if not low.any() or low.all():
+        return None
+    start = int(np.flatnonzero(~low)[0])  # rotate so index 0 is not low
+    rolled = np.roll(low, -start)
+    best = (0, 0)
+    i = 0
+    while i < n:
+        if rolled[i]:
+            j = i
+            while j < n and rolled[j]:
+                j += 1
+            if j - i > best[1] - best[0]:
+                best = (i, j)
+            i = j
+        else:
+            i += 1
+    first, last = (best[0] + start) % n, (best[1] - 1 + start) % n
+    if (best[1] - best[0]) * bin_deg < min_deg:
+        return None
+    lo_edge = _half_crossing(smooth, first, -1, bin_deg)
+    hi_edge = _half_crossing(smooth, last, +1, bin_deg)
+    width = (hi_edge - lo_edge) % 180.0
+    return {"from_deg": round(lo_edge % 180.0, 2), "to_deg": round(hi_edge % 180.0, 2), "width_deg": round(width, 2)}
+
+
+def _half_crossing(smooth: np.ndarray, index: int, step: int, bin_deg: float) -> float:
+    """Walk from a low bin outward until the profile reaches 0.5; interpolate the angle."""
+    n = smooth.size
+    here = index
+    for _ in range(n):
+        nxt = (here + step) % n
+        if smooth[nxt] >= 0.5:
+            a, b = float(smooth[here]), float(smooth[nxt])
+            frac = (0.5 - a) / (b - a) if b != a else 0.5
+            return (here + step * frac) * bin_deg
+        here = nxt
+    return index * bin_deg
+
+
+def profile_peaks(profile: np.ndarray, bin_deg: float, level: float) -> list[tuple[float, float]]:
+    """Circular local maxima above ``level`` as (angle_deg, height), strongest first.
+
+    The angle is refined by a parabola through the peak bin and its neighbours.
+    """
+    left, right = np.roll(profile, 1), np.roll(profile, -1)
+    is_peak = (profile >= left) & (profile > right) & (profile > level)
+    peaks = []
+    for i in np.flatnonzero(is_peak):
+        a, b, c = float(left[i]), float(profile[i]), float(right[i])
+        denom = a - 2 * b + c
+        shift = 0.5 * (a - c) / denom if denom < 0 else 0.0
+        peaks.append((float((i + shift) * bin_deg % 180.0), b))
+    peaks.sort(key=lambda p: -p[1])
+    return peaks
+
+
+def angle_distance(a: float, b: float) -> float:
+    """Distance between two line orientations in degrees (period 180)."""
+    d = abs(a - b) % 180.0
+    return min(d, 180.0 - d)
+
+
+def dominant_angles(profile: np.ndarray, wedge: dict[str, float] | None, cfg: dict[str, Any]) -> list[float]:
+    """Wedge boundaries first (if any), then profile peaks; strongest first."""
+    bin_deg = float(cfg["angle_bin_deg"])
+    chosen: list[float] = []
+    if wedge is not None:
+        edges = [wedge["from_deg"], wedge["to_deg"]]
+        strength = [_outside_strength(profile, e, bin_deg, wedge) for e in edges]
+        chosen = [e for _, e in sorted(zip(strength, edges), key=lambda p: -p[0])]
+    for angle, _ in profile_peaks(profile, bin_deg, float(cfg["peak_level"])):
+        if all(angle_distance(angle, c) > 2.5 * bin_deg for c in chosen):
+            chosen.append(angle)
+    return [round(a, 1) for a in chosen[: int(cfg["max_directions"])]]
+
+
+def _outside_strength(profile: np.ndarray, edge_deg: float, bin_deg: float, wedge: dict[str, float]) -> float:
+    """Largest profile value within 10 deg outside a wedge boundary."""
+    n = profile.size
+    centre = (wedge["from_deg"] + 0.5 * wedge["width_deg"]) % 180.0
+    outward = 1 if angle_distance(edge_deg + 1.0, centre) > angle_distance(edge_deg, centre) else -1
+    idx = [int(round((edge_deg + outward * d) / bin_deg)) % n for d in np.arange(0.0, 10.0 + 1e-9, bin_deg)]
+    return float(profile[idx].max())
+
+
+# --------------------------------------------------------------------------- localisation
+def directional_component(texture: SliceTexture, bins: SpectralBins, angle_deg: float, window_deg: float) -> tuple[np.ndarray, float]:
+    """Back-transform of the residual's spectrum in a Gaussian angular window at ``angle_deg``.
+
+    Returns the component and its expected variance under isotropic texture of the
+    measured ring levels (Parseval), used to make strengths dimensionless.
+    """
+    d = np.abs(bins.line_angle_deg - np.float32(angle_deg)) % 180.0
+    d = np.minimum(d, 180.0 - d)
+    band = (bins.radius >= bins.radius.ravel()[bins.sample].min()) & (bins.radius <= bins.radius.ravel()[bins.sample].max())
+    window = (np.exp(-0.5 * (d / window_deg) ** 2) * band).astype(np.float32)
+    component = sfft.irfft2(texture.spectrum * window, s=texture.residual.shape)
+    p = power(texture.spectrum).ravel()[bins.sample].astype(np.float64)
+    ring_mean = np.bincount(bins.ring, weights=p, minlength=bins.n_rings) / np.maximum(bins.ring_count, 1)
+    w2 = window.ravel()[bins.sample].astype(np.float64) ** 2
+    ny, nx = texture.residual.shape
+    # rfft2 holds half the plane: every sample except kx = 0 (and Nyquist) counts twice.
+    expected = 2.0 * float(np.sum(ring_mean[bins.ring] * w2)) / (ny * nx) ** 2
+    return component.astype(np.float32), max(expected, 1e-12)
+
+
+@dataclass
+class SliceStreaks:
+    """Localised streaks on one binned slice."""
+
+    strength: np.ndarray  # float32, binned grid
+    lines: list[tuple[float, tuple[float, float], tuple[float, float], float]] = field(default_factory=list)
+    # (angle_deg, start_yx, end_yx, z-score) in binned pixel coordinates
+
+
+def localise_slice(texture: SliceTexture, bins: SpectralBins, angles: list[float], cfg: dict[str, Any]) -> SliceStreaks:
+    """Streak-strength map and line segments of one slice for the given directions."""
+    shape = texture.residual.shape
+    strength = np.zeros(shape, dtype=np.float32)
+    lines = []
+    smooth_px = max(2.0, 2.0 * float(cfg["highpass_sigma_px"]))
+    for angle in angles:
+        comp, expected = directional_component(texture, bins, angle, float(cfg["direction_window_deg"]))
+        local = np.sqrt(ndimage.gaussian_filter(comp * comp, smooth_px, truncate=3.0) / expected)
+        np.maximum(strength, local * texture.weight, out=strength)
+        lines += lines_at_angle(comp, texture.weight, angle, cfg)
+    lines.sort(key=lambda ln: -ln[3])
+    return SliceStreaks(strength=strength, lines=lines[: int(cfg["max_segments_per_slice"])])
+
+
+def line_frame(shape: tuple[int, int], angle_deg: float) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray, tuple[float, float]]:
+    """Offset ``t`` across and position ``s`` along lines of ``angle_deg`` for every pixel.
+
+    The line direction in array terms is u = (-sin a, cos a) (so ``atan2(-uy, ux) = a``);
+    the normal is n = (cos a, sin a). Returns t, s, u, n and the centre (y, x).
+    """
+    a = math.radians(angle_deg)
+    u = np.array([-math.sin(a), math.cos(a)])
+    n = np.array([math.cos(a), math.sin(a)])
+    cy, cx = (shape[0] - 1) / 2.0, (shape[1] - 1) / 2.0
+    yy, xx = np.mgrid[0 : shape[0], 0 : shape[1]].astype(np.float32)
+    yy -= cy
+    xx -= cx
+    return yy * n[0] + xx * n[1], yy * u[0] + xx * u[1], u, n, (cy, cx)
+
+
+def lines_at_angle(comp: np.ndarray, weight: np.ndarray, angle_deg: float, cfg: dict[str, Any]) -> list:
+    """Streak lines of one direction: outlying line means of the directional component."""
+    t, s, u, n, (cy, cx) = line_frame(comp.shape, angle_deg)
+    off = np.rint(t[weight]).astype(np.int64)
+    base = off.min()
+    idx = off - base
+    vals = comp[weight].astype(np.float64)
+    count = np.bincount(idx)
+    means = np.bincount(idx, weights=vals) / np.maximum(count, 1)
+    enough = count >= int(cfg["segment_min_px"])
+    if enough.sum() < 8:
+        return []
+    centre = float(np.median(means[enough]))
+    spread = 1.4826 * float(np.median(np.abs(means[enough] - centre)))
+    if not spread > 0:
+        return []
+    z = np.where(enough, (means - centre) / spread, 0.0)
+    out = []
+    for i in np.argsort(-np.abs(z)):
+        if abs(z[i]) < float(cfg["segment_z"]) or len(out) >= int(cfg["max_segments_per_slice"]):
+            break
+        if abs(z[i]) < np.abs(z[max(0, i - 2) : i + 3]).max():
+            continue  # not the local maximum across offsets
+        extent = line_extent(comp, weight, t, s, float(i + base), float(means[i] - centre), cfg)
+        if extent is None:
+            continue
+        s0, s1 = extent
+        offset = float(i + base)
+        start = (cy + offset * n[0] + s0 * u[0], cx + offset * n[1] + s0 * u[1])
+        end = (cy + offset * n[0] + s1 * u[0], cx + offset * n[1] + s1 * u[1])
+        out.append((angle_deg, start, end, float(abs(z[i]))))
+    return out
+
+
+def line_extent(comp: np.ndarray, weight: np.ndarray, t: np.ndarray, s: np.ndarray, offset: float, amplitude: float, cfg: dict[str, Any]) -> tuple[float, float] | None:
+    """Longest run along a line where the running mean keeps the line's sign and level."""
+    on_line = weight & (np.abs(t - offset) <= 0.5)
+    pos = np.rint(s[on_line]).astype(np.int64)
+    if pos.size < int(cfg["segment_min_px"]):
+        return None
+    base = pos.min()
+    sums = np.bincount(pos - base, weights=comp[on_line].astype(np.float64))
+    counts = np.bincount(pos - base)
+    run = max(5, int(cfg["segment_min_px"]) // 2)
+    mean = ndimage.uniform_filter1d(sums, run) / np.maximum(ndimage.uniform_filter1d(counts.astype(float), run), 1e-9)
+    keep = (np.sign(amplitude) * mean >= float(cfg["segment_keep"]) * abs(amplitude)) & (counts > 0)
+    best, i = (0, -1), 0
+    while i < keep.size:
+        if keep[i]:
+            j = i
+            while j < keep.size and keep[j]:
+                j += 1
+            if j - i > best[1] - best[0] + 1:
+                best = (i, j - 1)
+            i = j
+        else:
+            i += 1
+    if best[1] - best[0] + 1 < int(cfg["segment_min_px"]):
+        return None
+    return float(best[0] + base), float(best[1] + base)
+
+
+# --------------------------------------------------------------------------- volume
+def screen_factor(shape: tuple[int, int], max_px: int) -> int:
+    """Binning factor so that the larger side is at most ``max_px``."""
+    return max(1, int(math.ceil(max(shape) / float(max_px))))
+
+
+def allowed_mask(regions: Regions | None, z: int, factor: int, shape_b: tuple[int, int], cfg: dict[str, Any]) -> np.ndarray:
+    """Pixels that may count on binned slice ``z``: FOV minus border, table, body outline."""
+    allowed = np.ones(shape_b, dtype=bool)
+    m = int(cfg["border_margin_px"])
+    if m > 0:
+        allowed[:m] = allowed[-m:] = False
+        allowed[:, :m] = allowed[:, -m:] = False
+    if regions is None:
+        return allowed
+    reach = int(math.ceil(2.0 * float(cfg["highpass_sigma_px"]))) + 1
+    fov = bin_mask(~regions.fov, factor)
+    allowed &= ~grow(fov, reach)
+    if regions.table[z].any():
+        allowed &= ~grow(bin_mask(regions.table[z], factor), 2 * reach)
+    body = regions.body[z]
+    if body.any():
+        outline = body ^ ndimage.binary_erosion(body)
+        allowed &= ~grow(bin_mask(outline, factor), reach)
+    return allowed
+
+
+def _fov_only(regions: Regions | None, z: int) -> bool:
+    return regions is None or (not regions.table[z].any() and not regions.body[z].any())
+
+
+def severity_of(cfg: dict[str, Any]) -> Severity:
+    return _SEVERITIES[str(cfg["severity"]).lower()]
+
+
+def describe_slices(indices: list[int]) -> str:
+    """Compact list of slice numbers: '3-7, 12'."""
+    parts, i = [], 0
+    while i < len(indices):
+        j = i
+        while j + 1 < len(indices) and indices[j + 1] == indices[j] + 1:
+            j += 1
+        parts.append(str(indices[i]) if i == j else f"{indices[i]}-{indices[j]}")
+        i = j + 1
+    return ", ".join(parts)
+
+
+def check_volume(volume: Volume, cfg: dict[str, Any]) -> str | None:
+    """A reason why the analysis cannot run on ``volume``, or None."""
+    nz, ny, nx = volume.shape
+    if nz == 0 or min(ny, nx) < int(cfg["min_slice_px"]):
+        return f"slices of {ny} x {nx} pixels are too small; at least {cfg['min_slice_px']} x {cfg['min_slice_px']} needed"
+    return None
+
+
+def analyse(volume: Volume, regions: Regions | None, settings: dict[str, Any] | None = None) -> AnalysisResult:
+    """Streak index, directions, missing wedge and streak locations of ``volume``.
+
+    Parameters
+    ----------
+    volume : Volume
+        CT volume in HU, [z, y, x]; one slice is enough (viewer's current-slice mode).
+    regions : Regions or None
+        Shared regions; the FOV, table and body outline are excluded from the measure.
+    settings : dict, optional
+        Overrides of :data:`DEFAULTS` (unknown keys raise ``ProfileError``).
+
+    Returns
+    -------
+    AnalysisResult
+        ``record``: index, flagged, tolerance, dominant_angles_deg, slice_index,
+        flagged_slices, missing_wedge_deg, angular_profile; overlays: segments and
+        ``maps["streak_strength"]``. See the module docstring for the definitions.
+
+    References
+    ----------
+    .. [1] Kak & Slaney, Principles of Computerized Tomographic Imaging, 1988.
+    """
+    cfg = resolve_settings(settings)
+    reason = check_volume(volume, cfg)
+    if reason:
+        return AnalysisResult.not_applicable(NAME, reason)
+    screened = screen_volume(volume, regions, cfg)
+    if not screened.valid_slices:
+        return AnalysisResult.not_applicable(NAME, screened.empty_reason())
+    return summarise(volume, regions, screened, cfg)
+
+
+@dataclass
+class Screen:
+    """Per-slice outcome of the screen."""
+
+    factor: int
+    shape_b: tuple[int, int]
+    profiles: dict[int, np.ndarray]
+    indices: list[float | None]
+    skipped: dict[str, int]
+
+    @property
+    def valid_slices(self) -> list[int]:
+        return sorted(self.profiles)
+
+    def empty_reason(self) -> str:
+        what = ", ".join(f"{n} {k}" for k, n in self.skipped.items() if n)
+        return f"no slice has texture to analyse ({what})"
+
+
+def screen_volume(volume: Volume, regions: Regions | None, cfg: dict[str, Any]) -> Screen:
+    """Angular profile and streak index of every axial slice (binned screen)."""
+    nz, ny, nx = volume.shape
+    factor = screen_factor((ny, nx), int(cfg["screen_max_px"]))
+    shape_b = (ny // factor, nx // factor)
+    bins = spectral_bins(shape_b, tuple(float(v) for v in cfg["band_cycles_per_px"]), float(cfg["angle_bin_deg"]))
+    profiles: dict[int, np.ndarray] = {}
+    indices: list[float | None] = []
+    skipped = {"constant": 0, "non-finite": 0, "without usable pixels": 0}
+    base_allowed = allowed_mask(regions, 0, factor, shape_b, cfg) if regions is not None else None
+    for z in range(nz):
+        image = volume.hu[z]
+        kind = _unusable(image)
+        if kind:
+            skipped[kind] += 1
+            indices.append(None)
+            continue
+        allowed = base_allowed if (base_allowed is not None and _fov_only(regions, z)) else allowed_mask(regions, z, factor, shape_b, cfg)
+        texture = slice_texture(bin_slice(image, factor), allowed, cfg)
+        profile = angular_profile(power(texture.spectrum), bins) if texture is not None else None
+        if profile is None:
+            skipped["without usable pixels"] += 1
+            indices.append(None)
+            continue
+        profiles[z] = profile
+        indices.append(round(streak_index_of_profile(profile), 3))
+    return Screen(factor=factor, shape_b=shape_b, profiles=profiles, indices=indices, skipped=skipped)
+
+
+def _unusable(image: np.ndarray) -> str | None:
+    finite = np.isfinite(image)
+    if not finite.any():
+        return "non-finite"
+    values = image[finite] if not finite.all() else image
+    if float(values.max()) == float(values.min()):
+        return "constant"
+    return None
+
+
+def summarise(volume: Volume, regions: Regions | None, screen: Screen, cfg: dict[str, Any]) -> AnalysisResult:
+    """Record, findings and overlays from the screen (localising flagged slices)."""
+    tol = float(cfg["tolerance_index"])
+    valid = screen.valid_slices
+    flagged_slices = [z for z in valid if screen.indices[z] > tol]
+    all_mean = np.mean([screen.profiles[z] for z in valid], axis=0)
+    bin_deg = float(cfg["angle_bin_deg"])
+    wedge = missing_wedge(all_mean, bin_deg, float(cfg["wedge_level"]), float(cfg["wedge_min_deg"]))
+    index = max(screen.indices[z] for z in valid)
+    angles: list[float] = []
+    overlays = Overlays(maps={"streak_strength": np.zeros(volume.shape, dtype=np.float32)})
+    if flagged_slices:
+        flagged_mean = np.mean([screen.profiles[z] for z in flagged_slices], axis=0)
+        angles = dominant_angles(flagged_mean, wedge, cfg)
+        localise(volume, regions, screen, flagged_slices, wedge, cfg, overlays)
+    record = {
+        "applicable": True,
+        "index": round(index, 3),
+        "flagged": bool(flagged_slices),
+        "tolerance": tol,
+        "dominant_angles_deg": angles,
+        "slice_index": screen.indices,
+        "flagged_slices": flagged_slices,
+        "missing_wedge_deg": wedge,
+        "angular_profile": {
+            "angles_deg": [round(i * bin_deg, 3) for i in range(all_mean.size)],
+            "relative_energy": [round(float(v), 4) for v in all_mean],
+        },
+    }
+    findings = build_findings(record, screen, cfg, regions)
+    return AnalysisResult(analysis=NAME, record=record, findings=findings, overlays=overlays)
+
+
+def localise(volume: Volume, regions: Regions | None, screen: Screen, flagged: list[int], wedge: dict[str, float] | None, cfg: dict[str, Any], overlays: Overlays) -> None:
+    """Streak map and segments on the flagged slices (the strongest ones first, capped)."""
+    bins = spectral_bins(screen.shape_b, tuple(float(v) for v in cfg["band_cycles_per_px"]), float(cfg["angle_bin_deg"]))
+    order = sorted(flagged, key=lambda z: -screen.indices[z])[: int(cfg["max_localised_slices"])]
+    f = screen.factor
+    ny, nx = volume.shape[1:]
+    for z in sorted(order):
+        allowed = allowed_mask(regions, z, f, screen.shape_b, cfg)
+        texture = slice_texture(bin_slice(volume.hu[z], f), allowed, cfg)
+        if texture is None:
+            continue
+        angles = dominant_angles(screen.profiles[z], wedge, cfg)
+        found = localise_slice(texture, bins, angles, cfg)
+        full = np.repeat(np.repeat(found.strength, f, axis=0), f, axis=1)
+        overlays.maps["streak_strength"][z, : full.shape[0], : full.shape[1]] = full[:ny, :nx]
+        for angle, (y0, x0), (y1, x1), zscore in found.lines:
+            overlays.segments.append(
+                Segment(
+                    start_zyx_vox=(float(z), _unbin(y0, f), _unbin(x0, f)),
+                    end_zyx_vox=(float(z), _unbin(y1, f), _unbin(x1, f)),
+                    label=f"streak {angle:.0f} deg",
+                    value=round(zscore, 2),
+                )
+            )
+
+
+def _unbin(coord: float, factor: int) -> float:
+    """Binned pixel coordinate -> full-resolution voxel coordinate (pixel centres)."""
+    return round((coord + 0.5) * factor - 0.5, 2)
+
+
+def build_findings(record: dict[str, Any], screen: Screen, cfg: dict[str, Any], regions: Regions | None) -> list[Finding]:
+    """A physicist-readable message for the flag (or the all-clear), plus skipped slices."""
+    findings: list[Finding] = []
+    n_valid = len(screen.valid_slices)
+    tol = record["tolerance"]
+    if record["flagged"]:
+        fl = record["flagged_slices"]
+        text = (
+            f"streaks: index {record['index']:.2f} exceeds the tolerance {tol:.2f} on {len(fl)} of "
+            f"{n_valid} slices (slices {describe_slices(fl)})"
+        )
+        if record["dominant_angles_deg"]:
+            dirs = ", ".join(f"{a:.0f}" for a in record["dominant_angles_deg"])
+            text += f"; strongest directions {dirs} deg (0 = along a row, counter-clockwise on screen)"
+        wedge = record["missing_wedge_deg"]
+        if wedge:
+            text += (
+                f"; no image content at orientations {wedge['from_deg']:.0f} to {wedge['to_deg']:.0f} deg "
+                f"({wedge['width_deg']:.0f} deg wide), as left by limited angular coverage"
+            )
+        findings.append(Finding(NAME, severity_of(cfg), text))
+    else:
+        findings.append(Finding(NAME, Severity.INFO, f"streaks: index {record['index']:.2f} within the tolerance {tol:.2f} on all {n_valid} slices"))
+    skipped = {k: n for k, n in screen.skipped.items() if n}
+    if skipped:
+        what = ", ".join(f"{n} {k}" for k, n in skipped.items())
+        findings.append(Finding(NAME, Severity.INFO, f"streaks: slices not analysed: {what}"))
+    if regions is not None and not regions.air.any():
+        findings.append(Finding(NAME, Severity.INFO, "streaks: no air around the body; measured inside the object only"))
+    return findings
