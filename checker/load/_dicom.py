@@ -200,7 +200,7 @@ def check_decoder(transfer_syntax: str, where: str) -> None:
     pydicom documentation, "Pixel data decoding" (``pydicom.pixels.get_decoder``).
     """
     ts = UID(transfer_syntax)
-    if ts in NATIVE_SYNTAXES or not ts.is_compressed:
+    if ts in NATIVE_SYNTAXES or (ts.is_transfer_syntax and not ts.is_compressed):
         return
     from pydicom.pixels import get_decoder
 
