@@ -1,0 +1,767 @@
+"""Noise power spectrum (NPS), noise magnitude and noise texture.
+
+ROIs come from one of four places, recorded as ``method``:
+
+- ``"phantom"``: square ROIs in the centre and on a ring of the uniform section of a
+  water cylinder (:mod:`._phantom`), clear of its edge, over the longest run of contiguous
+  uniform slices;
+- ``"patient"``: homogeneous soft-tissue patches found automatically in patient images,
+  which also get the global noise level (mode of the local-SD histogram in soft tissue);
+- ``"user"``: the ``rois`` setting, a list of ``{"slices": [z0, z1], "yx0_vox": [y, x],
+  "size_vox": n}`` (what the viewer passes after editing);
+- ``"pair"``: two repeated reconstructions, ``(I1 - I2) / sqrt(2)`` (:func:`nps_from_pair`
+  or the ``pair_with`` setting).
+
+Each ROI is detrended (``detrend``: ``"mean"``, ``"poly1"`` or ``"poly2"``; default
+``"poly2"``, a second-order 2-D polynomial fit removed by least squares), then
+NPS(fx, fy) = (dx dy / (Nx Ny)) <|DFT(ROI - fit)|^2> over all ROIs and slices, radially
+averaged in bins one frequency step wide and smoothed by a ``smooth_bins`` moving average.
+``noise_hu`` is the square root of the integral of the 2-D NPS (Parseval: equal to the SD
+of the detrended ROI pixels, reported beside it as ``roi_sd_hu``).
+
+References
+----------
+ICRU Report 87, Radiation dose and image-quality assessment in computed tomography (2012).
+Samei E. et al., Performance evaluation of computed tomography systems, AAPM Report 233
+(TG-233), Med Phys 46(11), 2019.
+IEC 62220-1-1 (NPS normalisation).
+Dolly S. et al., JACMP 17(3), 2016 (detrending and ROI size).
+Solomon J., Christianson O., Samei E., Med Phys 39(10), 2012 (f_peak, f_av).
+Christianson O. et al., AJR 205(1), 2015 (global noise level).
+"""
+from __future__ import annotations
+
+from dataclasses import dataclass
+from typing import Any, Sequence
+
+import numpy as np
+from scipy import ndimage
+from scipy.integrate import trapezoid
+
+from ..errors import ProfileError
+from ..regions import Regions, find_regions
+from ..results import AnalysisResult, Finding, Overlays, Roi, Severity
+from ..volume import Volume
+from ._phantom import find_phantom
+
+NAME = "nps"
+
+DEFAULTS: dict[str, Any] = {
+    "rois": None,
+    "detrend": "poly2",
+    "roi_size_vox": 64,
+    "min_roi_size_vox": 16,
+    "edge_margin_mm": 5.0,
+    "max_slices": 32,
+    "min_roi_count": 4,
+    "smooth_bins": 3,
+    "nps_3d": False,
+    "roi_depth_vox": 8,
+    "patient_roi_size_vox": 32,
+    "patient_rois_per_slice": 6,
+    "soft_tissue_hu": [0.0, 100.0],
+    "gnl_kernel_mm": 6.0,
+    "patch_sd_factor": 1.3,
+    "baseline": None,
+    "pair_with": None,
+    "noise_hu_max": None,
+    "f_av_ratio_tolerance": 0.10,
+    "noise_ratio_tolerance": 0.15,
+    "nps_correlation_min": 0.95,
+}
+
+SOURCES: dict[str, str] = {
+    "detrend": "AAPM TG-233 (2019) and Dolly et al. JACMP 17(3) 2016 discuss polynomial "
+    "detrending; second order as the default is our choice",
+    "roi_size_vox": "common practice, no source (TG-233 uses ROIs of tens of mm)",
+    "min_roi_count": "common practice, no source",
+    "soft_tissue_hu": "from memory: Christianson et al. AJR 205(1) 2015 segment soft tissue "
+    "by a CT-number range of about 0-100 HU",
+    "gnl_kernel_mm": "from memory: Christianson et al. AJR 205(1) 2015 use a local-SD "
+    "kernel of a few mm",
+    "noise_hu_max": "site choice (depends on protocol and dose); off by default",
+    "f_av_ratio_tolerance": "site choice",
+    "noise_ratio_tolerance": "site choice",
+    "nps_correlation_min": "site choice",
+}
+
+_DETRENDS = ("mean", "poly1", "poly2")
+_CHUNK = 32  # ROIs transformed at a time (bounds memory)
+
+
+# --------------------------------------------------------------------------- core maths
+def _design_matrix(ny: int, nx: int, order: int) -> np.ndarray:
+    y, x = np.mgrid[:ny, :nx]
+    y = (y - (ny - 1) / 2.0).ravel() / max(ny, 1)
+    x = (x - (nx - 1) / 2.0).ravel() / max(nx, 1)
+    cols = [np.ones_like(x)]
+    if order >= 1:
+        cols += [x, y]
+    if order >= 2:
+        cols += [x * x, x * y, y * y]
+    return np.stack(cols, axis=1)
+
+
+def detrend_rois(stack: np.ndarray, method: str = "poly2") -> np.ndarray:
+    """Subtract the mean or a least-squares 2-D polynomial from each ROI.
+
+    Parameters
+    ----------
+    stack : ndarray (n, Ny, Nx)
+    method : {"mean", "poly1", "poly2"}
+
+    Returns
+    -------
+    ndarray (n, Ny, Nx), float64
+        ROI minus its fit.
+
+    References
+    ----------
+    Dolly S. et al., JACMP 17(3), 2016; AAPM TG-233, Med Phys 46(11), 2019.
+    """
+    if method not in _DETRENDS:
+        raise ProfileError(f"nps detrend {method!r} unknown; expected one of {_DETRENDS}")
+    stack = np.asarray(stack, dtype=np.float64)
+    if method == "mean":
+        return stack - stack.mean(axis=(-2, -1), keepdims=True)
+    n, ny, nx = stack.shape
+    a = _design_matrix(ny, nx, 1 if method == "poly1" else 2)
+    flat = stack.reshape(n, -1).T
+    coef = np.linalg.lstsq(a, flat, rcond=None)[0]
+    return (flat - a @ coef).T.reshape(stack.shape)
+
+
+def nps_2d(
+    stack: np.ndarray, spacing_yx_mm: tuple[float, float], detrend: str = "poly2"
+) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Ensemble 2-D NPS of square or rectangular ROIs.
+
+    NPS(fx, fy) = (dx dy / (Nx Ny)) <|DFT(ROI - fit)|^2>, centred (zero frequency in the
+    middle, ``np.fft.fftshift`` order).
+
+    Parameters
+    ----------
+    stack : ndarray (n, Ny, Nx)
+        ROIs in HU.
+    spacing_yx_mm : (dy, dx)
+    detrend : str
+        See :func:`detrend_rois`.
+
+    Returns
+    -------
+    nps : ndarray (Ny, Nx), HU^2 mm^2
+    fy, fx : ndarray
+        Frequencies in cycles/mm (centred).
+
+    References
+    ----------
+    IEC 62220-1-1; ICRU Report 87 (2012); AAPM TG-233, Med Phys 46(11), 2019.
+    """
+    dy, dx = spacing_yx_mm
+    n, ny, nx = stack.shape
+    power = np.zeros((ny, nx))
+    for start in range(0, n, _CHUNK):
+        res = detrend_rois(stack[start : start + _CHUNK], detrend)
+        power += (np.abs(np.fft.fft2(res)) ** 2).sum(axis=0)
+    nps = (dx * dy / (nx * ny)) * power / n
+    fy = np.fft.fftshift(np.fft.fftfreq(ny, dy))
+    fx = np.fft.fftshift(np.fft.fftfreq(nx, dx))
+    return np.fft.fftshift(nps), fy, fx
+
+
+def nps_3d(
+    stack: np.ndarray, spacing_zyx_mm: tuple[float, float, float], detrend: str = "poly2"
+) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
+    """Ensemble 3-D NPS of volumetric ROIs, (dx dy dz / (Nx Ny Nz)) <|DFT3(ROI - fit)|^2>.
+
+    Each slice of each ROI is detrended in-plane (:func:`detrend_rois`), then the mean of
+    the whole ROI is removed.
+
+    Parameters
+    ----------
+    stack : ndarray (n, Nz, Ny, Nx)
+    spacing_zyx_mm : (dz, dy, dx)
+
+    Returns
+    -------
+    nps : ndarray (Nz, Ny, Nx), HU^2 mm^3, centred
+    fz, fy, fx : ndarray, cycles/mm
+
+    References
+    ----------
+    ICRU Report 87 (2012); AAPM TG-233, Med Phys 46(11), 2019.
+    """
+    n, nz, ny, nx = stack.shape
+    res = detrend_rois(np.asarray(stack, dtype=np.float64).reshape(n * nz, ny, nx), detrend)
+    res = res.reshape(n, nz, ny, nx)
+    res -= res.mean(axis=(1, 2, 3), keepdims=True)
+    dz, dy, dx = spacing_zyx_mm
+    power = np.abs(np.fft.fftn(res, axes=(1, 2, 3))) ** 2
+    nps = (dx * dy * dz / (nx * ny * nz)) * power.mean(axis=0)
+    freqs = [np.fft.fftshift(np.fft.fftfreq(m, d)) for m, d in ((nz, dz), (ny, dy), (nx, dx))]
+    return (np.fft.fftshift(nps), *freqs)
+
+
+def radial_average(
+    nps: np.ndarray, fy: np.ndarray, fx: np.ndarray
+) -> tuple[np.ndarray, np.ndarray]:
+    """Radial mean of a centred 2-D NPS in bins one frequency step wide, up to Nyquist.
+
+    Bin k holds the samples with k - 1/2 <= |f| / df < k + 1/2, df being the coarser of
+    the two frequency steps; the highest bin is the Nyquist frequency of the coarser axis.
+
+    Returns
+    -------
+    f : ndarray, cycles/mm (bin centres k df)
+    nps_1d : ndarray, same unit as ``nps``
+
+    References
+    ----------
+    ICRU Report 87 (2012); AAPM TG-233, Med Phys 46(11), 2019.
+    """
+    df = max(abs(fy[1] - fy[0]) if fy.size > 1 else 0.0, abs(fx[1] - fx[0]) if fx.size > 1 else 0.0)
+    f_nyq = min(np.abs(fy).max(), np.abs(fx).max())
+    kmax = int(np.floor(f_nyq / df + 1e-9))
+    fr = np.hypot(fy[:, None], fx[None, :])
+    k = np.floor(fr / df + 0.5).astype(int).ravel()
+    keep = k <= kmax
+    sums = np.bincount(k[keep], weights=nps.ravel()[keep], minlength=kmax + 1)
+    counts = np.bincount(k[keep], minlength=kmax + 1)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        curve = sums / counts
+    return np.arange(kmax + 1) * df, curve
+
+
+def smooth_curve(curve: np.ndarray, width: int) -> np.ndarray:
+    """Moving average of ``width`` bins over the non-zero frequencies.
+
+    The zero-frequency bin is left out (detrending empties it) and kept as it is; the
+    ends are padded by reflection.
+    """
+    width = int(width)
+    out = np.array(curve, dtype=float)
+    if width <= 1 or curve.size < 4:
+        return out
+    half = width // 2
+    body = out[1:]
+    padded = np.concatenate([body[:half][::-1], body, body[-half:][::-1]])
+    kernel = np.ones(2 * half + 1) / (2 * half + 1)
+    out[1:] = np.convolve(padded, kernel, mode="valid")
+    return out
+
+
+def peak_frequency(f: np.ndarray, curve: np.ndarray, level: float = 0.9) -> float:
+    """Frequency of the NPS maximum: vertex of a least-squares parabola through the
+    contiguous bins around the highest one that reach ``level`` of it.
+
+    A fit over the whole top of the peak keeps f_peak stable where a broad maximum
+    makes the single highest bin jump between neighbours. The vertex is clipped to the
+    fitted bins; with fewer than three bins the highest bin's frequency is returned.
+
+    References
+    ----------
+    Solomon J., Christianson O., Samei E., Med Phys 39(10), 2012 (f_peak).
+    """
+    i = int(np.nanargmax(curve))
+    top = curve >= level * curve[i]
+    lo, hi = i, i
+    while lo > 0 and top[lo - 1]:
+        lo -= 1
+    while hi < curve.size - 1 and top[hi + 1]:
+        hi += 1
+    if hi - lo < 2:
+        return float(f[i])
+    a, b, _ = np.polyfit(f[lo : hi + 1], curve[lo : hi + 1], 2)
+    if a >= 0:
+        return float(f[i])
+    return float(np.clip(-b / (2.0 * a), f[lo], f[hi]))
+
+
+def average_frequency(f: np.ndarray, curve: np.ndarray) -> float:
+    """f_av = integral f NPS(f) df / integral NPS(f) df over the radial NPS (trapezoid).
+
+    References
+    ----------
+    Solomon J., Christianson O., Samei E., Med Phys 39(10), 2012.
+    """
+    den = trapezoid(curve, f)
+    return float(trapezoid(f * curve, f) / den) if den > 0 else float("nan")
+
+
+def compare_nps(record: dict[str, Any], baseline_record: dict[str, Any]) -> dict[str, float]:
+    """Noise-texture comparison of an NPS record with a baseline NPS record.
+
+    Returns ``f_av_ratio`` (f_av / baseline f_av), ``noise_ratio`` (noise_hu / baseline
+    noise_hu) and ``nps_correlation``: the Pearson correlation of the two radial NPS
+    curves, each divided by its area, interpolated on a common frequency axis (the
+    baseline's, up to the lower of the two maximum frequencies).
+
+    References
+    ----------
+    Solomon J., Christianson O., Samei E., Med Phys 39(10), 2012 (f_av, texture);
+    AAPM TG-233, Med Phys 46(11), 2019.
+    """
+    f_a = np.asarray(record["frequency_per_mm"], float)
+    n_a = np.asarray(record["nps_1d_hu2mm2"], float)
+    f_b = np.asarray(baseline_record["frequency_per_mm"], float)
+    n_b = np.asarray(baseline_record["nps_1d_hu2mm2"], float)
+    f_top = min(f_a.max(), f_b.max())
+    axis = f_b[f_b <= f_top + 1e-12]
+    a = np.interp(axis, f_a, n_a)
+    b = np.interp(axis, f_b, n_b)
+    a_area, b_area = trapezoid(a, axis), trapezoid(b, axis)
+    corr = float("nan")
+    if a_area > 0 and b_area > 0 and axis.size >= 3:
+        corr = float(np.corrcoef(a / a_area, b / b_area)[0, 1])
+    return {
+        "f_av_ratio": _ratio(record.get("f_av_per_mm"), baseline_record.get("f_av_per_mm")),
+        "noise_ratio": _ratio(record.get("noise_hu"), baseline_record.get("noise_hu")),
+        "nps_correlation": corr,
+    }
+
+
+def _ratio(a: Any, b: Any) -> float:
+    if a is None or b is None or not b:
+        return float("nan")
+    return float(a) / float(b)
+
+
+# --------------------------------------------------------------------- patient noise
+def local_mean_sd(image: np.ndarray, size: int) -> tuple[np.ndarray, np.ndarray]:
+    """Local mean and SD in a ``size`` x ``size`` box (per slice for 3-D input)."""
+    image = np.asarray(image, dtype=np.float64)
+    box = (1,) * (image.ndim - 2) + (size, size)
+    mean = ndimage.uniform_filter(image, box, mode="nearest")
+    sq = ndimage.uniform_filter(image * image, box, mode="nearest")
+    return mean, np.sqrt(np.clip(sq - mean * mean, 0.0, None))
+
+
+def soft_tissue_mask(
+    volume: Volume, regions: Regions, kernel_px: int, hu_range: Sequence[float]
+) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Pixels in the eroded body whose local mean lies in ``hu_range``.
+
+    Returns the mask and the local mean and SD maps (``kernel_px`` box).
+    """
+    mean, sd = local_mean_sd(volume.hu, kernel_px)
+    inside = ndimage.binary_erosion(
+        regions.body, structure=np.ones((1, kernel_px, kernel_px), bool), border_value=0
+    )
+    lo, hi = float(hu_range[0]), float(hu_range[1])
+    return inside & (mean >= lo) & (mean <= hi), mean, sd
+
+
+def histogram_mode(values: np.ndarray, bins: int = 200) -> float:
+    """Mode of a histogram over [0, 3 x median], smoothed by a 2-bin Gaussian."""
+    top = 3.0 * float(np.median(values))
+    if top <= 0:
+        return 0.0
+    counts, edges = np.histogram(values, bins=bins, range=(0.0, top))
+    counts = ndimage.gaussian_filter1d(counts.astype(float), 2.0, mode="nearest")
+    i = int(np.argmax(counts))
+    return float(0.5 * (edges[i] + edges[i + 1]))
+
+
+def global_noise_level(
+    volume: Volume,
+    regions: Regions,
+    *,
+    kernel_mm: float = 6.0,
+    soft_tissue_hu: Sequence[float] = (0.0, 100.0),
+) -> tuple[float, int]:
+    """Global noise level: the mode of the local-SD histogram in soft tissue.
+
+    Parameters
+    ----------
+    volume, regions
+        ``regions.body`` bounds the search.
+    kernel_mm : float
+        Side of the square local-SD kernel (from memory).
+    soft_tissue_hu : (low, high)
+        Local-mean range taken as soft tissue (from memory).
+
+    Returns
+    -------
+    gnl_hu : float
+        NaN when there is no soft tissue.
+    pixels : int
+        Number of soft-tissue pixels used.
+
+    References
+    ----------
+    Christianson O. et al., Automated technique to measure noise in clinical CT
+    examinations, AJR 205(1), 2015.
+    """
+    kernel_px = max(3, int(round(kernel_mm / min(volume.spacing_mm[1:]))) | 1)
+    mask, _, sd = soft_tissue_mask(volume, regions, kernel_px, soft_tissue_hu)
+    values = sd[mask]
+    if values.size < 50:
+        return float("nan"), int(values.size)
+    return histogram_mode(values), int(values.size)
+
+
+# ------------------------------------------------------------------------ ROI layout
+@dataclass
+class RoiSet:
+    rois: list[Roi]
+    reason: str = ""
+
+
+def _square_roi(z0: int, z1: int, cy: float, cx: float, n: int, label: str) -> Roi:
+    y0, x0 = int(round(cy - n / 2.0)), int(round(cx - n / 2.0))
+    return Roi(z0, z1, y0, x0, y0 + n, x0 + n, label)
+
+
+def _inside_disc(roi: Roi, cy: float, cx: float, r: float) -> bool:
+    ys = np.array([roi.y0, roi.y1 - 1], float)
+    xs = np.array([roi.x0, roi.x1 - 1], float)
+    d2 = (ys[:, None] - cy) ** 2 + (xs[None, :] - cx) ** 2
+    return bool(d2.max() <= r * r)
+
+
+def _overlaps(a: Roi, b: Roi) -> bool:
+    return a.y0 < b.y1 and b.y0 < a.y1 and a.x0 < b.x1 and b.x0 < a.x1
+
+
+def ring_layout(
+    cy: float, cx: float, r_usable: float, n: int, z0: int, z1: int, prefix: str
+) -> list[Roi]:
+    """A centre ROI plus up to eight ROIs on a ring, inside ``r_usable``, none overlapping.
+
+    Ring ROIs sit as far out as the usable radius allows (along the axes first, then the
+    diagonals if they fit without overlap).
+    """
+    h = n / 2.0
+    placed = [_square_roi(z0, z1, cy, cx, n, f"{prefix} centre")]
+    r_safe = r_usable - 1.0  # room for rounding the corners to whole pixels
+    d_axis = np.sqrt(max(r_safe**2 - h**2, 0.0)) - h
+    d_diag = r_safe - h * np.sqrt(2.0)
+    spots = [(d_axis, a) for a in (90, 0, 270, 180)] + [(d_diag, a) for a in (45, 315, 225, 135)]
+    for d, ang in spots:
+        t = np.deg2rad(ang)
+        roi = _square_roi(z0, z1, cy - d * np.sin(t), cx + d * np.cos(t), n, f"{prefix} ring {ang} deg")
+        if _inside_disc(roi, cy, cx, r_usable) and not any(_overlaps(roi, p) for p in placed):
+            placed.append(roi)
+    return placed
+
+
+def phantom_rois(volume: Volume, regions: Regions, s: dict[str, Any]) -> RoiSet:
+    """Centre and ring ROIs in the longest run of uniform phantom slices."""
+    ph = find_phantom(volume, regions)
+    if not ph.found:
+        return RoiSet([], ph.reason)
+    run = ph.longest_uniform_run()
+    if run is None:
+        return RoiSet([], "phantom found but every phantom slice has inserts: no uniform region")
+    z0, z1 = run
+    if z1 - z0 + 1 > s["max_slices"]:
+        mid = (z0 + z1) // 2
+        z0 = mid - s["max_slices"] // 2
+        z1 = z0 + s["max_slices"] - 1
+    sl = slice(z0, z1 + 1)
+    cy, cx = np.median(ph.centre_yx_vox[sl], axis=0)
+    r_usable = float(np.min(ph.radius_vox[sl])) - s["edge_margin_mm"] / ph.pixel_mm
+    n = min(int(s["roi_size_vox"]), int(np.floor(2.0 * (r_usable - 1.0) / np.sqrt(10.0))))
+    if n < s["min_roi_size_vox"]:
+        return RoiSet([], f"phantom too small: ROIs of {s['min_roi_size_vox']} px do not fit "
+                          f"inside radius {r_usable:.1f} px clear of the edge")
+    return RoiSet(ring_layout(cy, cx, r_usable, n, z0, z1, "nps"))
+
+
+def _patient_slices(nz: int, max_slices: int) -> np.ndarray:
+    return np.unique(np.linspace(0, nz - 1, min(nz, max_slices)).round().astype(int))
+
+
+def patient_rois(volume: Volume, regions: Regions, s: dict[str, Any], gnl: float) -> RoiSet:
+    """Homogeneous soft-tissue patches: whole patch in soft tissue, SD near the noise level.
+
+    Candidates on a grid of a quarter patch are taken in order of how close their SD is
+    to the global noise level, with SD at most ``patch_sd_factor`` x that level, and kept
+    when they overlap no patch already chosen on the slice.
+    """
+    n = int(s["patient_roi_size_vox"])
+    kernel_px = max(3, int(round(s["gnl_kernel_mm"] / min(volume.spacing_mm[1:]))) | 1)
+    _, ny, nx = volume.shape
+    if n > min(ny, nx):
+        return RoiSet([], f"patient ROIs of {n} px do not fit in {ny} x {nx} slices")
+    lo, hi = (float(v) for v in s["soft_tissue_hu"])
+    rois: list[Roi] = []
+    for z in _patient_slices(volume.shape[0], int(s["max_slices"])):
+        img = volume.hu[z].astype(np.float64)
+        mean_k = ndimage.uniform_filter(img, kernel_px, mode="nearest")
+        tissue = regions.body[z] & (mean_k >= lo) & (mean_k <= hi)
+        frac = ndimage.uniform_filter(tissue.astype(float), n, mode="constant")
+        mean, sd = local_mean_sd(img, n)
+        step = max(1, n // 4)
+        cy, cx = np.mgrid[n // 2 : ny - (n - n // 2) + 1 : step, n // 2 : nx - (n - n // 2) + 1 : step]
+        ok = (frac[cy, cx] > 0.999) & (sd[cy, cx] <= s["patch_sd_factor"] * gnl)
+        ok &= (mean[cy, cx] >= lo) & (mean[cy, cx] <= hi)
+        cand = np.stack([cy[ok], cx[ok]], axis=1)
+        order = np.argsort(np.abs(sd[cand[:, 0], cand[:, 1]] - gnl)) if cand.size else []
+        chosen: list[Roi] = []
+        for i in order:
+            y0, x0 = int(cand[i, 0]) - n // 2, int(cand[i, 1]) - n // 2
+            roi = Roi(int(z), int(z), y0, x0, y0 + n, x0 + n, f"nps patch z{z}")
+            if not any(_overlaps(roi, c) for c in chosen):
+                chosen.append(roi)
+            if len(chosen) >= s["patient_rois_per_slice"]:
+                break
+        rois += chosen
+    if not rois:
+        return RoiSet([], "no homogeneous soft-tissue patch of "
+                          f"{n} x {n} px found inside the body")
+    return RoiSet(rois)
+
+
+def user_rois(volume: Volume, specs: Sequence[dict[str, Any]], s: dict[str, Any]) -> RoiSet:
+    """ROIs from the ``rois`` setting, checked to fit the volume and to share one size."""
+    nz, ny, nx = volume.shape
+    rois: list[Roi] = []
+    sizes = set()
+    for i, spec in enumerate(specs):
+        try:
+            z0, z1 = (int(v) for v in spec["slices"])
+            y0, x0 = (int(v) for v in spec["yx0_vox"])
+            n = int(spec["size_vox"])
+        except (KeyError, TypeError, ValueError) as exc:
+            return RoiSet([], f"ROI {i} malformed ({exc!r}); expected "
+                              "{'slices': [z0, z1], 'yx0_vox': [y, x], 'size_vox': n}")
+        if not (0 <= z0 <= z1 < nz and 0 <= y0 and y0 + n <= ny and 0 <= x0 and x0 + n <= nx):
+            return RoiSet([], f"ROI {i} (slices {z0}-{z1}, corner y={y0}, x={x0}, size {n}) "
+                              f"does not fit in the volume of shape {nz} x {ny} x {nx}")
+        if n < s["min_roi_size_vox"]:
+            return RoiSet([], f"ROI {i} is {n} px; the minimum is {s['min_roi_size_vox']} px")
+        sizes.add(n)
+        rois.append(Roi(z0, z1, y0, x0, y0 + n, x0 + n, f"nps user {i}"))
+    if len(sizes) > 1:
+        return RoiSet([], f"user ROIs must share one size to be averaged; got sizes {sorted(sizes)}")
+    return RoiSet(rois)
+
+
+def roi_stack(hu: np.ndarray, rois: Sequence[Roi]) -> np.ndarray:
+    """All 2-D ROI images (every slice of every ROI) as (n, Ny, Nx)."""
+    return np.stack([hu[z, r.y0 : r.y1, r.x0 : r.x1] for r in rois for z in range(r.z0, r.z1 + 1)])
+
+
+def volume_roi_stack(hu: np.ndarray, rois: Sequence[Roi], depth: int) -> np.ndarray | None:
+    """Non-overlapping volumetric blocks ``depth`` slices deep cut from each ROI."""
+    blocks = [
+        hu[z : z + depth, r.y0 : r.y1, r.x0 : r.x1]
+        for r in rois
+        for z in range(r.z0, r.z1 + 2 - depth, depth)
+    ]
+    return np.stack(blocks) if blocks else None
+
+
+# --------------------------------------------------------------------------- analysis
+def _settings(settings: dict[str, Any] | None) -> dict[str, Any]:
+    s = dict(DEFAULTS)
+    for key, value in (settings or {}).items():
+        if key not in DEFAULTS:
+            raise ProfileError(f"unknown nps setting {key!r}; known: {', '.join(DEFAULTS)}")
+        s[key] = value
+    if s["detrend"] not in _DETRENDS:
+        raise ProfileError(f"nps detrend {s['detrend']!r} unknown; expected one of {_DETRENDS}")
+    return s
+
+
+def measure_nps(
+    hu: np.ndarray, spacing_zyx_mm: tuple[float, float, float], rois: Sequence[Roi], s: dict[str, Any]
+) -> dict[str, Any] | str:
+    """The NPS record of ``rois`` in ``hu``, or the reason it cannot be measured."""
+    stack = roi_stack(hu, rois)
+    if stack.shape[0] < s["min_roi_count"]:
+        return f"{stack.shape[0]} ROI images; at least {s['min_roi_count']} are needed"
+    if not np.all(np.isfinite(stack)):
+        return "ROIs contain NaN or infinite values"
+    nps, fy, fx = nps_2d(stack, spacing_zyx_mm[1:], s["detrend"])
+    variance = float(nps.sum() * abs(fy[1] - fy[0]) * abs(fx[1] - fx[0]))
+    if not variance > 1e-12:
+        return "no noise: the detrended ROI pixels are constant"
+    f, curve = radial_average(nps, fy, fx)
+    curve = smooth_curve(curve, s["smooth_bins"])
+    raw = np.asarray(stack, dtype=np.float64)
+    record: dict[str, Any] = {
+        "noise_hu": float(np.sqrt(variance)),
+        "roi_sd_hu": float(np.sqrt(detrend_rois(raw, s["detrend"]).var(axis=(1, 2)).mean())),
+        "roi_sd_raw_hu": float(np.sqrt(raw.var(axis=(1, 2)).mean())),
+        "roi_mean_hu": float(raw.mean()),
+        "f_peak_per_mm": peak_frequency(f, curve),
+        "f_av_per_mm": average_frequency(f, curve),
+        "frequency_per_mm": [round(float(v), 6) for v in f],
+        "nps_1d_hu2mm2": [float(v) for v in curve],
+        "roi_count": int(stack.shape[0]),
+        "roi_size_vox": [int(stack.shape[1]), int(stack.shape[2])],
+        "detrend": s["detrend"],
+    }
+    if s["nps_3d"]:
+        record["nps_3d"] = _measure_3d(hu, spacing_zyx_mm, rois, s)
+    return record
+
+
+def _measure_3d(
+    hu: np.ndarray, spacing: tuple[float, float, float], rois: Sequence[Roi], s: dict[str, Any]
+) -> dict[str, Any]:
+    depth = int(s["roi_depth_vox"])
+    blocks = volume_roi_stack(hu, rois, depth)
+    if blocks is None:
+        return {"applicable": False, "reason": f"no ROI spans {depth} contiguous slices"}
+    nps, fz, fy, fx = nps_3d(blocks, spacing, s["detrend"])
+    dfy, dfx = abs(fy[1] - fy[0]), abs(fx[1] - fx[0])
+    nps_z = nps.sum(axis=(1, 2)) * dfy * dfx
+    dfz = abs(fz[1] - fz[0]) if fz.size > 1 else 1.0 / spacing[0]
+    return {
+        "applicable": True,
+        "noise_hu": float(np.sqrt(nps.sum() * dfz * dfy * dfx)),
+        "roi_count": int(blocks.shape[0]),
+        "roi_depth_vox": depth,
+        "frequency_z_per_mm": [round(float(v), 6) for v in fz],
+        "nps_z_hu2mm": [float(v) for v in nps_z],
+    }
+
+
+def _findings(record: dict[str, Any], s: dict[str, Any]) -> list[Finding]:
+    sev = Severity.REVIEW if record["method"] == "patient" else Severity.FAIL
+    out: list[Finding] = []
+    if s["noise_hu_max"] is not None and record["noise_hu"] > float(s["noise_hu_max"]):
+        out.append(Finding(NAME, sev, f"noise {record['noise_hu']:.2f} HU exceeds "
+                                      f"the limit {float(s['noise_hu_max']):.2f} HU"))
+    cmp = record.get("texture_vs_baseline")
+    if cmp:
+        if abs(cmp["f_av_ratio"] - 1.0) > s["f_av_ratio_tolerance"]:
+            out.append(Finding(NAME, sev, f"noise texture changed: f_av is {cmp['f_av_ratio']:.3f} x "
+                                          f"the baseline (tolerance +/- {s['f_av_ratio_tolerance']:.2f})"))
+        if abs(cmp["noise_ratio"] - 1.0) > s["noise_ratio_tolerance"]:
+            out.append(Finding(NAME, sev, f"noise magnitude is {cmp['noise_ratio']:.3f} x the baseline "
+                                          f"(tolerance +/- {s['noise_ratio_tolerance']:.2f})"))
+        if not cmp["nps_correlation"] >= s["nps_correlation_min"]:
+            out.append(Finding(NAME, Severity.REVIEW, f"NPS shape differs from the baseline: correlation "
+                                                      f"{cmp['nps_correlation']:.3f} < {s['nps_correlation_min']:.2f}"))
+    return out
+
+
+def _result(record: dict[str, Any], rois: Sequence[Roi], s: dict[str, Any]) -> AnalysisResult:
+    if s["baseline"]:
+        record["texture_vs_baseline"] = compare_nps(record, s["baseline"])
+    findings = _findings(record, s)
+    record["applicable"] = True
+    record["flagged"] = any(f.severity != Severity.INFO for f in findings)
+    return AnalysisResult(NAME, record, findings, Overlays(rois=list(rois)))
+
+
+def _finite_or_reason(volume: Volume) -> str:
+    bad = int((~np.isfinite(volume.hu)).sum())
+    return f"volume contains {bad} NaN or infinite voxels" if bad else ""
+
+
+def _choose_rois(volume: Volume, regions: Regions, s: dict[str, Any]) -> tuple[str, RoiSet, float]:
+    if s["rois"]:
+        return "user", user_rois(volume, s["rois"], s), float("nan")
+    found = phantom_rois(volume, regions, s)
+    if found.rois or "inserts" in found.reason or "too small" in found.reason:
+        return "phantom", found, float("nan")
+    if not regions.has_body:
+        return "patient", RoiSet([], f"no phantom and no body: {found.reason}"), float("nan")
+    gnl, pixels = global_noise_level(volume, regions, kernel_mm=s["gnl_kernel_mm"],
+                                     soft_tissue_hu=s["soft_tissue_hu"])
+    if not np.isfinite(gnl) or gnl <= 0:
+        return "patient", RoiSet([], f"no phantom ({found.reason}) and no noisy soft tissue "
+                                     f"for the global noise level ({pixels} soft-tissue pixels)"), gnl
+    return "patient", patient_rois(volume, regions, s, gnl), gnl
+
+
+def analyse(volume: Volume, regions: Regions, settings: dict[str, Any] | None = None) -> AnalysisResult:
+    """Measure the NPS, noise magnitude and texture of ``volume`` (see the module docstring).
+
+    Parameters
+    ----------
+    volume : Volume
+    regions : Regions
+    settings : dict, optional
+        Overrides of :data:`DEFAULTS`; unknown keys raise :class:`ProfileError`.
+
+    Returns
+    -------
+    AnalysisResult
+        ``record`` with noise_hu, f_peak_per_mm, f_av_per_mm, frequency_per_mm,
+        nps_1d_hu2mm2, roi_count, method (and global_noise_hu for patients,
+        texture_vs_baseline with a baseline); ``overlays.rois`` the ROIs used.
+
+    References
+    ----------
+    ICRU Report 87 (2012); AAPM TG-233, Med Phys 46(11), 2019; IEC 62220-1-1;
+    Solomon, Christianson, Samei, Med Phys 39(10), 2012; Christianson et al.,
+    AJR 205(1), 2015.
+    """
+    s = _settings(settings)
+    if s["pair_with"] is not None:
+        rest = {k: v for k, v in (settings or {}).items() if k != "pair_with"}
+        return nps_from_pair(volume, s["pair_with"], regions, settings=rest)
+    reason = _finite_or_reason(volume)
+    if reason:
+        return AnalysisResult.not_applicable(NAME, reason)
+    method, found, gnl = _choose_rois(volume, regions, s)
+    if not found.rois:
+        return AnalysisResult.not_applicable(NAME, found.reason)
+    record = measure_nps(volume.hu, volume.spacing_mm, found.rois, s)
+    if isinstance(record, str):
+        return AnalysisResult.not_applicable(NAME, record)
+    record["method"] = method
+    record["global_noise_hu"] = gnl if method == "patient" else None
+    return _result(record, found.rois, s)
+
+
+def nps_from_pair(
+    volume_a: Volume,
+    volume_b: Volume,
+    regions: Regions | None = None,
+    *,
+    rois: Sequence[dict[str, Any]] | None = None,
+    settings: dict[str, Any] | None = None,
+) -> AnalysisResult:
+    """NPS by the subtraction method from two repeated reconstructions.
+
+    The noise image is (I1 - I2) / sqrt(2), which removes the deterministic content and
+    keeps the variance of one image. ROIs are ``rois`` (the user form), else found on
+    ``volume_a`` (phantom, then soft-tissue patches).
+
+    Parameters
+    ----------
+    volume_a, volume_b : Volume
+        Same shape and spacing.
+    regions : Regions, optional
+        Regions of ``volume_a``; computed when omitted.
+    rois : list of dict, optional
+        ``{"slices": [z0, z1], "yx0_vox": [y, x], "size_vox": n}``.
+    settings : dict, optional
+        Overrides of :data:`DEFAULTS`.
+
+    Returns
+    -------
+    AnalysisResult
+        As :func:`analyse`, with ``method`` = ``"pair"``.
+
+    References
+    ----------
+    ICRU Report 87 (2012); AAPM TG-233, Med Phys 46(11), 2019 (subtraction of repeated
+    scans).
+    """
+    s = _settings({**(settings or {}), **({"rois": list(rois)} if rois else {})})
+    if volume_a.shape != volume_b.shape or not np.allclose(volume_a.spacing_mm, volume_b.spacing_mm):
+        return AnalysisResult.not_applicable(
+            NAME, f"the two reconstructions differ: shapes {volume_a.shape} and {volume_b.shape}, "
+                  f"spacing {volume_a.spacing_mm} and {volume_b.spacing_mm} mm")
+    reason = _finite_or_reason(volume_a) or _finite_or_reason(volume_b)
+    if reason:
+        return AnalysisResult.not_applicable(NAME, reason)
+    regions = regions if regions is not None else find_regions(volume_a)
+    _, found, _ = _choose_rois(volume_a, regions, s)
+    if not found.rois:
+        return AnalysisResult.not_applicable(NAME, found.reason)
+    diff = (volume_a.hu.astype(np.float64) - volume_b.hu) / np.sqrt(2.0)
+    record = measure_nps(diff, volume_a.spacing_mm, found.rois, s)
+    if isinstance(record, str):
+        return AnalysisResult.not_applicable(NAME, record)
+    record["method"] = "pair"
+    record["global_noise_hu"] = None
+    return _result(record, found.rois, s)
