@@ -97,9 +97,42 @@ def _circle_of(mask2d: np.ndarray) -> tuple[tuple[float, float], float]:
 
 def _components(mask: np.ndarray) -> tuple[np.ndarray, int, np.ndarray]:
     lab, n = ndimage.label(mask)
-    sizes = np.bincount(lab.ravel(), minlength=n + 1)
+    if n > 64:
+        sizes = np.bincount(lab.ravel(), minlength=n + 1)
+    else:  # few components: count each inside its bounding box
+        sizes = np.zeros(n + 1, dtype=np.int64)
+        for i, sl in enumerate(ndimage.find_objects(lab), start=1):
+            if sl is not None:
+                sizes[i] = np.count_nonzero(lab[sl] == i)
     sizes[0] = 0
     return lab, n, sizes
+
+
+def fill_holes_in_plane(mask: np.ndarray) -> np.ndarray:
+    """``mask`` with the holes of every slice filled (background not reaching the border).
+
+    One in-plane labelling of the background for all slices, much faster than iterative
+    filling of a 3-D volume.
+    """
+    lab, n = ndimage.label(~mask, structure=_INPLANE)
+    if n == 0:
+        return mask
+    outside = np.zeros(n + 1, dtype=bool)
+    for edge in (lab[:, 0, :], lab[:, -1, :], lab[:, :, 0], lab[:, :, -1]):
+        outside[np.unique(edge)] = True
+    outside[0] = True  # label 0 is the mask itself
+    return mask | ~outside[lab]
+
+
+def centroid_of(mask: np.ndarray) -> tuple[float, float, float]:
+    """Centre of mass (z, y, x) of a boolean volume from its axis projections."""
+    total = float(np.count_nonzero(mask))
+    out = []
+    for axis in range(3):
+        others = tuple(a for a in range(3) if a != axis)
+        profile = np.count_nonzero(mask, axis=others)
+        out.append(float((profile * np.arange(mask.shape[axis])).sum() / total))
+    return tuple(out)  # type: ignore[return-value]
 
 
 def _is_table(comp_slices: tuple[slice, ...], comp: np.ndarray, body_bbox: tuple[slice, ...], nz: int) -> bool:
@@ -139,17 +172,17 @@ def find_regions(
     centroid = None
     if n:
         body_label = int(np.argmax(sizes))
-        body = lab == body_label
-        body = ndimage.binary_fill_holes(body, structure=_INPLANE)
         objects = ndimage.find_objects(lab)
         body_bbox = objects[body_label - 1]
+        body[body_bbox] = fill_holes_in_plane(lab[body_bbox] == body_label)
         for i, sl in enumerate(objects, start=1):
             if i == body_label or sl is None or sizes[i] < 20:
                 continue
             comp = lab[sl] == i
             if _is_table(sl, comp, body_bbox, nz):
                 table[sl] |= comp
-        centroid = tuple(float(c) for c in ndimage.center_of_mass(body))
+        del lab
+        centroid = centroid_of(body)
     else:
         notes.append("no body found: nothing above %.0f HU inside the field of view" % body_threshold_hu)
 

@@ -26,9 +26,12 @@ Method
    reconstructions have spatially correlated noise; the smoothness estimate takes that
    into account where a per-voxel threshold would not.
 4. Hysteresis: 3-D components above ``grow_sigma`` that reach the high threshold are
-   kept; each is trimmed to where its filtered contrast exceeds half of its own peak
-   contrast (the 90th percentile), which places its boundary at the half-contrast edge.
-   A structure found at a fine scale is not found again at a coarser one.
+   kept; each core above the threshold is grown to where the filtered contrast exceeds
+   half of its own contrast (the 90th percentile in the core), which places its boundary
+   at the half-contrast edge. A structure well measured at a fine scale is not found
+   again at a coarser one; one poorly measured there is outlined at the coarser scale.
+   Structures smaller than ``min_volume_mm3`` or whose mean (full resolution) is less
+   than ``min_contrast_hu`` above the air are dropped (blur tails of neighbours).
 5. Classification (at full resolution): ``leaves_scan`` (reaches the first or last slice:
    arms, tubes, cables, a mattress), ``touching_body``, ``table``, ``fov_edge`` (touches
    the edge of the reconstruction circle or padding) and ``isolated`` (touches nothing
@@ -81,6 +84,7 @@ DEFAULTS: dict[str, Any] = {
     "min_high_sigma": 4.0,
     "grow_sigma": 2.0,
     "min_volume_mm3": 8.0,
+    "min_contrast_hu": 10.0,
     "flag_kinds": ["isolated"],
     "air_reference_hu": -1000.0,
     "air_mean_tolerance_hu": 30.0,
@@ -99,6 +103,7 @@ SOURCES: dict[str, str] = {
     "min_high_sigma": "site choice",
     "grow_sigma": "site choice",
     "min_volume_mm3": "site choice",
+    "min_contrast_hu": "site choice: faint ghosts are tens of HU above air",
     "flag_kinds": "site choice: only structures that touch nothing are suspicious",
     "air_reference_hu": "Hounsfield scale: air -1000 HU by definition",
     "air_mean_tolerance_hu": "from memory; site choice",
@@ -219,13 +224,20 @@ def _pad_to(a: np.ndarray, factors: tuple[int, int, int]) -> np.ndarray:
 
 
 def block_sum(a: np.ndarray, factors: tuple[int, int, int]) -> np.ndarray:
-    """Sum of ``a`` over blocks of ``factors`` (z, y, x); the edges are zero-padded."""
+    """Sum of ``a`` over blocks of ``factors`` (z, y, x) as float32; the edges are zero-padded.
+
+    Adds one strided view per offset inside the block, so every voxel is read once.
+    """
     if factors == (1, 1, 1):
         return a.astype(np.float32, copy=True)
     a = _pad_to(a, factors)
     fz, fy, fx = factors
-    nz, ny, nx = a.shape
-    return a.reshape(nz // fz, fz, ny // fy, fy, nx // fx, fx).sum(axis=(1, 3, 5), dtype=np.float32)
+    out = np.zeros((a.shape[0] // fz, a.shape[1] // fy, a.shape[2] // fx), dtype=np.float32)
+    for oz in range(fz):
+        for oy in range(fy):
+            for ox in range(fx):
+                np.add(out, a[oz::fz, oy::fy, ox::fx], out=out, casting="unsafe")
+    return out
 
 
 def _masked_block_sums(
@@ -240,9 +252,10 @@ def _masked_block_sums(
     sums, counts = [], []
     for z0 in range(0, hu.shape[0], chunk):
         a = air[z0 : z0 + chunk]
-        v = np.where(a, hu[z0 : z0 + chunk] - np.float32(offset), np.float32(0))
+        v = hu[z0 : z0 + chunk] - np.float32(offset)
+        v[~a] = 0.0
         sums.append(block_sum(v, factors))
-        counts.append(block_sum(a.astype(np.float32), factors))
+        counts.append(block_sum(a.view(np.uint8), factors))
     return np.concatenate(sums), np.concatenate(counts)
 
 
@@ -289,10 +302,10 @@ def _filtered_scale(
     ----------
     .. [1] Knutsson H, Westin C-F. Normalized and differential convolution. CVPR 1993.
     """
-    gc = ndimage.gaussian_filter(counts, sigma_vox, mode="reflect")
-    g2c = ndimage.gaussian_filter(counts, tuple(s / math.sqrt(2.0) for s in sigma_vox), mode="reflect")
+    gc = ndimage.gaussian_filter(counts, sigma_vox, mode="reflect", truncate=3.0)
+    g2c = ndimage.gaussian_filter(counts, tuple(s / math.sqrt(2.0) for s in sigma_vox), mode="reflect", truncate=3.0)
     valid = (counts >= 0.5 * cell) & (gc >= 0.5 * cell)
-    contrast = ndimage.gaussian_filter(sums, sigma_vox, mode="reflect")
+    contrast = ndimage.gaussian_filter(sums, sigma_vox, mode="reflect", truncate=3.0)
     np.divide(contrast, np.maximum(gc, 1e-6), out=contrast)
     # var(weighted mean) relative to the interior: N * (G'*C) / (G*C)^2 (white noise)
     growth = g2c
@@ -413,61 +426,107 @@ def matched_filter_scales(
 
 # ---------------------------------------------------------------------- detection
 def _upsample(mask: np.ndarray, rel: tuple[int, int, int], shape: tuple[int, int, int]) -> np.ndarray:
-    """Nearest-neighbour enlargement of a coarse grid to ``shape``."""
-    idx = [np.minimum(np.arange(n) // r, m - 1) for n, r, m in zip(shape, rel, mask.shape)]
-    return mask[np.ix_(*idx)]
+    """Nearest-neighbour enlargement of a coarse grid to ``shape`` (repeat, then crop)."""
+    out = mask
+    for axis, r in enumerate(rel):
+        if r > 1:
+            out = np.repeat(out, r, axis=axis)
+    out = out[: shape[0], : shape[1], : shape[2]]
+    if out.shape != tuple(shape):  # the coarse grid was cropped: pad with its last cells
+        pads = [(0, n - m) for n, m in zip(shape, out.shape)]
+        out = np.pad(out, pads, mode="edge")
+    return np.ascontiguousarray(out)
 
 
-def hysteresis_structures(m: ScaleMap, grow_sigma: float) -> np.ndarray:
-    """Components above ``grow_sigma`` that reach ``m.threshold``, trimmed at half contrast."""
+def hysteresis_structures(m: ScaleMap, grow_sigma: float) -> tuple[np.ndarray, dict[int, float]]:
+    """Structures of one scale: a label map and each label's contrast-to-noise.
+
+    Components above ``grow_sigma`` that reach ``m.threshold`` are kept. Each core above
+    the threshold is measured on its own (its contrast: the 90th percentile inside the
+    core) and grown to where the filtered contrast exceeds half of it, so two structures
+    joined by noise keep their own extents; cores whose regions overlap are one structure.
+    """
     low = m.valid & (m.z > grow_sigma)
     lab, n = ndimage.label(low)
-    out = np.zeros(m.z.shape, dtype=bool)
+    out = np.zeros(m.z.shape, dtype=np.int32)
+    snr: dict[int, float] = {}
     if n == 0:
-        return out
-    keep = np.unique(lab[m.z > m.threshold])
-    keep = keep[keep > 0]
+        return out, snr
+    cores, nc = ndimage.label(m.z > m.threshold)
+    if nc == 0:
+        return out, snr
     objects = ndimage.find_objects(lab)
-    for i in keep:
+    core_objects = ndimage.find_objects(cores)
+    found = []
+    for j, csl in enumerate(core_objects, start=1):
+        core = cores[csl] == j
+        i = int(lab[csl][core][0])
+        found.append((float(np.percentile(m.contrast_hu[csl][core], 90)), j, i))
+    for contrast, j, i in sorted(found, reverse=True):
         sl = objects[i - 1]
-        comp = lab[sl] == i
-        values = m.contrast_hu[sl][comp]
-        half = 0.5 * float(np.percentile(values, 90))
-        core = comp & (m.contrast_hu[sl] > half)
-        out[sl] |= core if core.any() else comp
-    return out
+        region = (lab[sl] == i) & (m.contrast_hu[sl] > 0.5 * contrast)
+        pieces, _ = ndimage.label(region)
+        touched = np.unique(pieces[cores[sl] == j])
+        region = np.isin(pieces, touched[touched > 0])
+        if not region.any():
+            continue
+        existing = np.unique(out[sl][region])
+        existing = existing[existing > 0]
+        target = int(existing[0]) if existing.size else len(snr) + 1
+        view = out[sl]
+        view[region & (view == 0)] = target
+        snr[target] = max(snr.get(target, 0.0), contrast / max(m.noise_hu, 1e-6))
+    return out, snr
 
 
-def combine_scales(maps: list[ScaleMap], grow_sigma: float) -> tuple[np.ndarray, tuple[int, int, int]]:
-    """Structures of all scales on the finest grid; a coarse one overlapping a finer is dropped."""
+def combine_scales(
+    maps: list[ScaleMap], grow_sigma: float, well_measured_snr: float = 10.0
+) -> tuple[np.ndarray, tuple[int, int, int]]:
+    """Structures of all scales as one label map on the finest grid.
+
+    Scales are visited from fine to coarse. A structure that overlaps none found so far
+    is added. One that overlaps only structures measured poorly at a finer scale
+    (contrast-to-noise below ``well_measured_snr`` there) replaces them: a faint, large
+    structure is outlined at the scale that sees it whole.
+    """
     base = maps[0].factors
     shape0 = maps[0].z.shape
-    combined = np.zeros(shape0, dtype=bool)
+    combined = np.zeros(shape0, dtype=np.int32)
+    quality: dict[int, float] = {}
+    next_id = 1
     for m in maps:
-        found = hysteresis_structures(m, grow_sigma)
-        if not found.any():
+        level, snr = hysteresis_structures(m, grow_sigma)
+        if not snr:
             continue
         rel = tuple(a // b for a, b in zip(m.factors, base))
         if rel != (1, 1, 1):
-            found = _upsample(found, rel, shape0)
-        lab, n = ndimage.label(found)
-        if n == 0:
-            continue
-        drop = np.unique(lab[combined])
-        keep = np.ones(n + 1, dtype=bool)
-        keep[0] = False
-        keep[drop] = False
-        if keep.any():
-            combined |= keep[lab]
+            level = _upsample(level, rel, shape0)
+        for lbl, sl in enumerate(ndimage.find_objects(level), start=1):
+            if sl is None:
+                continue
+            region = level[sl] == lbl
+            existing = np.unique(combined[sl][region])
+            existing = existing[existing > 0]
+            if existing.size and any(quality[int(e)] >= well_measured_snr for e in existing):
+                continue
+            if existing.size:
+                gone = np.isin(combined, existing)
+                combined[gone] = 0
+                for e in existing:
+                    quality.pop(int(e))
+            view = combined[sl]
+            view[region] = next_id
+            quality[next_id] = snr[lbl]
+            next_id += 1
     return combined, base
 
 
-def full_resolution_labels(mask0: np.ndarray, factors: tuple[int, int, int], air: np.ndarray) -> tuple[np.ndarray, int]:
-    """Label the structures on the finest grid and carry them to the volume's voxels."""
-    lab0, n = ndimage.label(mask0)
+def full_resolution_labels(lab0: np.ndarray, factors: tuple[int, int, int], air: np.ndarray) -> tuple[np.ndarray, int]:
+    """Carry the label map of the finest grid to the volume's voxels (inside the air)."""
+    n = int(lab0.max()) if lab0.size else 0
     if n == 0:
         return np.zeros(air.shape, dtype=np.int32), 0
-    labels = _upsample(lab0.astype(np.int32), factors, air.shape)
+    labels = _upsample(lab0, factors, air.shape)
     labels[~air] = 0
     return labels, n
 
@@ -560,8 +619,10 @@ def measure_structures(
         if count * vox < float(s["min_volume_mm3"]):
             continue
         values = volume.hu[sl][comp]
-        idx = np.argwhere(comp).mean(axis=0) + [x.start for x in sl]
         mean_hu = float(values.mean())
+        if mean_hu - air_mean < float(s["min_contrast_hu"]):  # a blur tail, not a structure
+            continue
+        idx = np.argwhere(comp).mean(axis=0) + [x.start for x in sl]
         kind = classify(sl, comp, ctx)
         out.append(
             {
@@ -582,12 +643,23 @@ def measure_structures(
     return out
 
 
+def _limit(structures: list[dict[str, Any]], max_structures: int) -> list[dict[str, Any]]:
+    """At most ``max_structures``: flagged ones first, then by contrast-to-noise; label order kept."""
+    if len(structures) <= max_structures:
+        return structures
+    ranked = sorted(structures, key=lambda st: (not st["flagged"], -st["contrast_to_noise"]))
+    keep = {st["label"] for st in ranked[:max_structures]}
+    return [st for st in structures if st["label"] in keep]
+
+
 def _renumber(labels: np.ndarray, structures: list[dict[str, Any]], n: int) -> np.ndarray:
     """Labels 1..k in the order of ``structures`` (label == id); the rest become 0."""
     lut = np.zeros(n + 1, dtype=np.int32)
     for new_id, st in enumerate(structures, start=1):
         lut[st.pop("label")] = new_id
         st["id"] = new_id
+    if np.array_equal(lut, np.arange(n + 1, dtype=np.int32)):
+        return labels
     return lut[labels]
 
 
@@ -681,8 +753,7 @@ def analyse(volume: Volume, regions: Regions, settings: dict[str, Any] | None = 
         full, n = full_resolution_labels(mask0, base, air)
         if n:
             structures = measure_structures(volume, full, n, mean, noise, ctx, s)
-            structures.sort(key=lambda st: (not st["flagged"], -st["contrast_to_noise"]))
-            structures = structures[: int(s["max_structures"])]
+            structures = _limit(structures, int(s["max_structures"]))
             labels = _renumber(full, structures, n) if structures else None
 
     body_mm = volume.index_to_patient(regions.body_centroid_zyx_vox) if regions.has_body else None
