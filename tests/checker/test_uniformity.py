@@ -1,0 +1,121 @@
+"""Tests of the phantom finder and the uniformity analysis on invented phantoms."""
+from __future__ import annotations
+
+import numpy as np
+import pytest
+
+from reconaudit.checker.analyses import _phantom, uniformity
+from reconaudit.checker.errors import ProfileError
+from reconaudit.checker.regions import find_regions
+from reconaudit.checker.volume import Volume
+
+
+def water_cylinder(nz: int = 8, n: int = 160, radius: int = 64, sd: float = 6.0,
+                   insert_slices: int = 3, cupping_hu: float = 0.0, offset_hu: float = 0.0,
+                   seed: int = 0) -> Volume:
+    """An invented water cylinder in air; the first ``insert_slices`` carry a bone rod.
+
+    ``cupping_hu`` raises the edge relative to the centre (a radial quadratic profile).
+    """
+    rng = np.random.default_rng(seed)
+    yy, xx = np.mgrid[:n, :n]
+    c = n / 2.0
+    r2 = (yy - c) ** 2 + (xx - c) ** 2
+    img = np.full((n, n), -1000.0)
+    disc = r2 <= radius**2
+    img[disc] = offset_hu + cupping_hu * r2[disc] / radius**2
+    hu = np.repeat(img[None], nz, axis=0)
+    for z in range(insert_slices):
+        hu[z][(yy - c) ** 2 + (xx - c - 30) ** 2 <= 8**2] = 800.0
+    hu += rng.normal(0.0, sd, hu.shape)
+    return Volume.from_array(hu, (2.0, 0.8, 0.8))
+
+
+def test_find_phantom_sees_uniform_and_insert_slices():
+    vol = water_cylinder()
+    ph = _phantom.find_phantom(vol, find_regions(vol))
+    assert ph.found
+    assert list(np.nonzero(ph.inserts)[0]) == [0, 1, 2]
+    assert ph.longest_uniform_run() == (3, 7)
+    assert abs(ph.radius_mm - 64 * 0.8) < 1.0
+    assert np.allclose(ph.centre_yx_vox[5], (79.5, 79.5), atol=0.5)
+
+
+def test_find_phantom_rejects_elliptical_body():
+    yy, xx = np.mgrid[:160, :160]
+    img = np.where(((yy - 80) / 40.0) ** 2 + ((xx - 80) / 70.0) ** 2 <= 1, 0.0, -1000.0)
+    vol = Volume.from_array(np.repeat(img[None], 3, axis=0), (2.0, 0.8, 0.8))
+    ph = _phantom.find_phantom(vol, find_regions(vol))
+    assert not ph.found and "no water cylinder" in ph.reason
+
+
+def test_uniform_phantom_passes_with_expected_numbers():
+    vol = water_cylinder(sd=6.0)
+    res = uniformity.analyse(vol, find_regions(vol))
+    rec = res.record
+    assert rec["applicable"] and not rec["flagged"]
+    assert rec["slices"] == [3, 7]
+    assert abs(rec["water_hu"]) < 1.0
+    assert rec["uniformity_hu"] < 1.5
+    assert abs(rec["centre_sd_hu"] - 6.0) < 0.5
+    assert [p["position"] for p in rec["periphery"]] == ["top", "right", "bottom", "left"]
+    assert len(res.overlays.rois) == 5
+    for roi in res.overlays.rois:  # every ROI inside the phantom, clear of the edge
+        corners = np.array([[roi.y0, roi.x0], [roi.y1 - 1, roi.x1 - 1], [roi.y0, roi.x1 - 1], [roi.y1 - 1, roi.x0]])
+        assert np.hypot(*(corners - 79.5).T).max() < 64 - 10 / 0.8 + 1
+
+
+def test_cupping_exceeds_uniformity_tolerance():
+    vol = water_cylinder(cupping_hu=15.0)
+    rec = uniformity.analyse(vol, find_regions(vol)).record
+    assert rec["flagged"] and rec["uniformity_hu"] > 5.0
+
+
+def test_water_offset_fails_water_tolerance():
+    vol = water_cylinder(offset_hu=8.0)
+    res = uniformity.analyse(vol, find_regions(vol))
+    assert res.record["flagged"]
+    assert any("water CT number" in f.message for f in res.findings)
+
+
+def test_one_slice_volume():
+    vol = water_cylinder(nz=1, insert_slices=0)
+    rec = uniformity.analyse(vol, find_regions(vol)).record
+    assert rec["applicable"] and rec["slices"] == [0, 0]
+
+
+def test_no_uniform_region_is_not_applicable():
+    vol = water_cylinder(nz=3, insert_slices=3)
+    rec = uniformity.analyse(vol, find_regions(vol)).record
+    assert rec["applicable"] is False and "no uniform region" in rec["reason"]
+
+
+def test_constant_volume_is_not_applicable():
+    vol = Volume.from_array(np.zeros((3, 64, 64)), (1.0, 1.0, 1.0))
+    rec = uniformity.analyse(vol, find_regions(vol)).record
+    assert rec["applicable"] is False and rec["reason"]
+
+
+def test_nan_volume_is_not_applicable():
+    vol = water_cylinder(nz=3, insert_slices=0)
+    vol.hu[1, 10, 10] = np.nan
+    rec = uniformity.analyse(vol, find_regions(vol)).record
+    assert rec["applicable"] is False and "NaN" in rec["reason"]
+
+
+def test_small_phantom_roi_does_not_fit():
+    vol = water_cylinder(n=64, radius=28, insert_slices=0)
+    rec = uniformity.analyse(vol, find_regions(vol), {"roi_size_mm": 20.0}).record
+    assert rec["applicable"] is False and "too small" in rec["reason"]
+
+
+def test_unknown_setting_raises():
+    vol = water_cylinder(nz=2, insert_slices=0)
+    with pytest.raises(ProfileError):
+        uniformity.analyse(vol, find_regions(vol), {"no_such_key": 1})
+
+
+def test_every_tolerance_has_a_source():
+    for key in uniformity.DEFAULTS:
+        if key.endswith(("_tolerance", "_max", "_expected")):
+            assert key in uniformity.SOURCES
