@@ -124,11 +124,13 @@ def most_flagged_streak_slice(streaks: Mapping[str, Any] | None, nz: int) -> int
     return flagged[0]
 
 
-def largest_air_structure_slice(air: Mapping[str, Any] | None, nz: int) -> int | None:
+def largest_air_structure_slice(air: Mapping[str, Any] | None, nz: int, *, flagged_only: bool = False) -> int | None:
     """The slice of the centroid of the largest air structure (flagged ones first)."""
     if not air:
         return None
     structures = [s for s in air.get("structures") or [] if isinstance(s, Mapping)]
+    if flagged_only:
+        structures = [s for s in structures if s.get("flagged")]
     with_z = [s for s in structures if _floats(s.get("centroid_zyx_vox")) is not None]
     if not with_z:
         return None
@@ -140,16 +142,16 @@ def largest_air_structure_slice(air: Mapping[str, Any] | None, nz: int) -> int |
 def choose_slice(volume: Volume, results: Mapping[str, Any]) -> tuple[int, str]:
     """The most relevant axial slice and why it was chosen.
 
-    Order: the most-flagged streak slice, the slice of the largest air structure, else
-    the middle slice.
+    Order: the most-flagged streak slice, the slice of the largest flagged air
+    structure, else the middle slice.
     """
     nz = volume.shape[0]
     z = most_flagged_streak_slice(_record(results, "streaks"), nz)
     if z is not None:
         return z, "most-flagged streak slice"
-    z = largest_air_structure_slice(_record(results, "air"), nz)
+    z = largest_air_structure_slice(_record(results, "air"), nz, flagged_only=True)
     if z is not None:
-        return z, "largest air structure"
+        return z, "largest flagged air structure"
     return nz // 2, "middle slice"
 
 
@@ -268,7 +270,13 @@ def draw_air_thumbnail(volume: Volume, results: Mapping[str, Any], z: int, path:
 
 # ----------------------------------------------------------------------------- curves
 def _baseline_record(baseline: Mapping[str, Any] | None, name: str) -> dict[str, Any] | None:
-    return _record(baseline, name) if isinstance(baseline, Mapping) else None
+    """The baseline's record of ``name``: analysis -> record, or the baseline store's
+    form (``nps`` curve dict, ``ttf_edges`` list)."""
+    if not isinstance(baseline, Mapping):
+        return None
+    if name == "ttf" and isinstance(baseline.get("ttf_edges"), list) and not baseline.get("ttf"):
+        return {"edges": baseline["ttf_edges"]}
+    return _record(baseline, name)
 
 
 def _curve(rec: Mapping[str, Any] | None, fkey: str, ykey: str) -> tuple[np.ndarray, np.ndarray] | None:
@@ -382,13 +390,19 @@ def draw_ttf_curves(ttf: Mapping[str, Any], baseline: Mapping[str, Any] | None, 
 
 
 def _angular_energy(streaks: Mapping[str, Any]) -> tuple[np.ndarray, np.ndarray] | None:
-    energy = _floats(streaks.get("angular_energy"))
+    """(angles_deg, energy) from ``angular_profile`` (or flat ``angular_energy`` keys)."""
+    profile = streaks.get("angular_profile")
+    if isinstance(profile, Mapping):
+        energy = _floats(profile.get("relative_energy") or profile.get("energy"))
+        angles = _floats(profile.get("angles_deg"))
+    else:
+        energy = _floats(streaks.get("angular_energy"))
+        angles = _floats(streaks.get("angular_energy_angles_deg") or streaks.get("angles_deg"))
     if energy is None:
         return None
-    angles = _floats(streaks.get("angular_energy_angles_deg") or streaks.get("angles_deg"))
     if angles is None or angles.size != energy.size:
         angles = np.arange(energy.size) * (180.0 / energy.size)
-    return angles, energy
+    return angles, np.nan_to_num(energy, nan=0.0)
 
 
 def draw_streak_polar(streaks: Mapping[str, Any], path: Path) -> Path | None:

@@ -36,7 +36,7 @@ VERDICTS: dict[str, dict[str, Any]] = {
 }
 
 SEVERITIES: dict[str, dict[str, Any]] = {
-    "info": {"word": "note", "icon": "i", "rank": 0},
+    "info": {"word": "note", "icon": "○", "rank": 0},
     "review": {"word": "review", "icon": "▲", "rank": 1},
     "fail": {"word": "fail", "icon": "✕", "rank": 2},
 }
@@ -193,24 +193,122 @@ def _metadata_rows(series: Mapping[str, Any], include_identifiers: bool) -> list
     return rows
 
 
+#: names the baseline store uses -> our metric keys
+_BASELINE_NAMES = {
+    "noise_hu": "nps.noise_hu",
+    "f_av_per_mm": "nps.f_av_per_mm",
+    "f_peak_per_mm": "nps.f_peak_per_mm",
+    "air_noise_hu": "air.noise_hu",
+}
+
+
 def _baseline_metrics(baseline: Any) -> dict[str, float]:
+    """Baseline numbers keyed like :func:`flatten_metrics`, from any of the forms a
+    baseline takes: a comparison (``changes``), a stored entry (``metrics``) or a
+    series-like record (analysis name -> record)."""
     if not isinstance(baseline, Mapping):
         return {}
-    if isinstance(baseline.get("metrics"), Mapping):
-        return {str(k): v for k, v in baseline["metrics"].items() if _num(v) is not None}
-    return flatten_metrics(baseline)
+    out: dict[str, float] = {}
+    changes = baseline.get("changes")
+    if isinstance(changes, Mapping):
+        for name, change in changes.items():
+            if isinstance(change, Mapping) and _num(change.get("baseline")) is not None:
+                out[_BASELINE_NAMES.get(str(name), str(name))] = float(change["baseline"])
+    metrics = baseline.get("metrics")
+    if isinstance(metrics, Mapping):
+        for name, value in metrics.items():
+            if _num(value) is not None:
+                out.setdefault(_BASELINE_NAMES.get(str(name), str(name)), float(value))
+    if not out:
+        out = {k: v for k, v in flatten_metrics(baseline).items() if not k.startswith("ttf.")}
+    return out
+
+
+def _baseline_edges(baseline: Any) -> list[Mapping[str, Any]]:
+    """Baseline TTF edges ``{contrast_hu, f50_per_mm, ...}`` from any baseline form."""
+    if not isinstance(baseline, Mapping):
+        return []
+    edges = baseline.get("ttf_edges")
+    if not edges and isinstance(baseline.get("changes"), Mapping):
+        edges = [{"contrast_hu": e.get("contrast_hu"), "f50_per_mm": e.get("f50_baseline")}
+                 for e in baseline["changes"].get("f50_per_mm") or [] if isinstance(e, Mapping)]
+    if not edges and isinstance(baseline.get("ttf"), Mapping):
+        edges = baseline["ttf"].get("edges")
+    return [e for e in edges or [] if isinstance(e, Mapping)]
+
+
+def _change(now: float | None, then: float | None) -> str:
+    if now is None or then is None:
+        return "–"
+    diff = now - then
+    text = ("+" if diff >= 0 else "−") + fmt(abs(diff), 3)
+    if then != 0:
+        text += f" ({diff / abs(then):+.0%})".replace("-", "−")
+    return text
 
 
 def _measurement_rows(series: Mapping[str, Any]) -> list[dict[str, str]]:
-    current = flatten_metrics(series)
+    current = {k: v for k, v in flatten_metrics(series).items() if not k.startswith("ttf.")}
     base = _baseline_metrics(series.get("baseline"))
     rows = []
     for key in list(current) + [k for k in base if k not in current]:
         label, unit = _metric_label(key)
         now, then = current.get(key), base.get(key)
-        change = "–" if now is None or then is None else ("+" if now - then >= 0 else "−") + fmt(abs(now - then), 3)
-        rows.append({"key": key, "label": label, "unit": unit, "value": fmt(now), "baseline": fmt(then), "change": change})
+        rows.append({"key": key, "label": label, "unit": unit, "value": fmt(now), "baseline": fmt(then),
+                     "change": _change(now, then)})
     return rows
+
+
+def _nearest(edges: list[Mapping[str, Any]], contrast: float | None) -> Mapping[str, Any] | None:
+    if contrast is None:
+        return None
+    scored = [(abs(c - contrast), e) for e in edges if (c := _num(e.get("contrast_hu"))) is not None]
+    if not scored:
+        return None
+    diff, edge = min(scored, key=lambda t: t[0])
+    return edge if diff <= max(20.0, 0.2 * abs(contrast)) else None
+
+
+def _edge_rows(series: Mapping[str, Any]) -> list[dict[str, str]]:
+    """One row per TTF edge: kind, contrast, CNR, f50, f10, trust, baseline f50."""
+    ttf = _applicable(series, "ttf")
+    if ttf is None:
+        return []
+    base_edges = _baseline_edges(series.get("baseline"))
+    rows = []
+    for e in ttf.get("edges") or []:
+        if not isinstance(e, Mapping):
+            continue
+        contrast = _num(e.get("contrast_hu"))
+        f50 = _num(e.get("f50_per_mm"))
+        ref = _nearest(base_edges, contrast)
+        ref_f50 = _num(ref.get("f50_per_mm")) if ref else None
+        reliable = e.get("reliable") is not False
+        rows.append({
+            "kind": str(e.get("kind") or "edge"),
+            "contrast": "–" if contrast is None else f"{contrast:+.0f}",
+            "cnr": fmt(e.get("contrast_to_noise"), 3),
+            "f50": fmt(f50, 3),
+            "f10": fmt(e.get("f10_per_mm"), 3),
+            "reliable": reliable,
+            "reason": "" if reliable else str(e.get("reason") or "marked unreliable"),
+            "baseline": fmt(ref_f50, 3),
+            "change": _change(f50, ref_f50),
+        })
+    return rows
+
+
+def _baseline_note(baseline: Any) -> str:
+    if not isinstance(baseline, Mapping) or not baseline:
+        return ""
+    origin = baseline.get("from_series") or baseline.get("series_id")
+    when = baseline.get("recorded_at")
+    parts = ["Baseline"]
+    if origin:
+        parts.append(f"from {origin}")
+    if when:
+        parts.append(f"recorded {when}")
+    return " ".join(parts)
 
 
 def _not_measured(series: Mapping[str, Any]) -> list[tuple[str, str]]:
@@ -285,10 +383,12 @@ def series_context(
         "facts": _metadata_rows(series, include_identifiers),
         "headline": _headline(series),
         "measurements": _measurement_rows(series) if verdict != "error" else [],
+        "edges": _edge_rows(series) if verdict != "error" else [],
+        "baseline_note": _baseline_note(series.get("baseline")),
         "not_measured": _not_measured(series) if verdict != "error" else [],
         "findings": _findings(series),
         "figures": _figures(figures),
-        "has_baseline": bool(series.get("baseline")),
+        "has_baseline": isinstance(series.get("baseline"), Mapping) and bool(series.get("baseline")),
     }
     return ctx if include_identifiers else redact(ctx, identifier_values(series))
 
@@ -299,7 +399,7 @@ def _run_time(doc: Mapping[str, Any]) -> str:
     for value in (doc.get("started"), run.get("started"), doc.get("created"), doc.get("checked_at")):
         if value:
             return str(value)
-    return "not recorded"
+    return ""
 
 
 def _profile_name(doc: Mapping[str, Any]) -> str:
