@@ -165,10 +165,13 @@ class Insert:
 def find_rod_inserts(volume: Volume, regions: Regions, settings: dict[str, Any] | None = None) -> list[Insert]:
     """Find the rod inserts of a water phantom automatically.
 
-    Inside the phantom found by ``find_phantom``, the image smoothed by 1 mm is compared
-    with the slice median; connected 3-D groups departing by more than
-    ``min_contrast_hu`` (either sign, each sign labelled on its own) whose cross-section
-    is a disc of ``min_insert_diameter_mm`` to ``max_insert_diameter_mm`` are inserts.
+    ``find_phantom`` (on an in-plane decimated copy when the slices are larger than 256
+    pixels, to keep it cheap) gives the phantom and its slices with inserts. On the mean
+    of each contiguous run of such slices, smoothed by 1 mm, connected groups departing
+    from the phantom median by more than ``min_contrast_hu`` (each sign on its own)
+    whose shape is a disc of ``min_insert_diameter_mm`` to ``max_insert_diameter_mm``
+    are inserts; each insert's slices are those where its disc keeps at least 3/4 of
+    its contrast to the surrounding ring.
 
     Returns
     -------
@@ -179,29 +182,53 @@ def find_rod_inserts(volume: Volume, regions: Regions, settings: dict[str, Any] 
     Common practice, no source (threshold, connected components, disc test).
     """
     s = resolve_settings(settings)
-    phantom = find_phantom(volume, regions)
-    if not phantom.found:
+    phantom, factor = _phantom_of(volume, regions)
+    if not phantom.found or not phantom.inserts.any():
         return []
-    px = phantom.pixel_mm
-    hu = volume.hu
-    zs = np.nonzero(phantom.on_slice)[0]
-    smooth = ndimage.gaussian_filter(hu[zs], sigma=(0, 1.0 / px, 1.0 / px))
-    inner = np.zeros(smooth.shape, dtype=bool)
-    for i, z in enumerate(zs):
-        smooth[i] -= phantom.median_hu[z]
-        inner[i] = _disc(hu.shape[1:], phantom.centre_yx_vox[z], 0.92 * phantom.radius_vox[z])
+    px = 0.5 * (volume.spacing_mm[1] + volume.spacing_mm[2])
     inserts: list[Insert] = []
-    thr = float(s["min_contrast_hu"])
-    for sign in (1.0, -1.0):
-        lab, n = ndimage.label((sign * smooth > thr) & inner)
-        for sl_idx, sl in enumerate(ndimage.find_objects(lab), start=1):
-            if sl is None:
-                continue
-            found = _insert_from_component(lab[sl] == sl_idx, sl, zs, px, s)
-            if found is not None:
-                inserts.append(found)
-    inserts.sort(key=lambda r: (r.centre_yx_vox[0], r.centre_yx_vox[1]))
+    for z0, z1 in _runs_of(phantom.inserts):
+        mid = (z0 + z1) // 2
+        centre = phantom.centre_yx_vox[mid] * factor
+        radius = phantom.radius_vox[mid] * factor
+        mean = volume.hu[z0 : z1 + 1].mean(axis=0)
+        smooth = ndimage.gaussian_filter(mean, 1.0 / px) - float(np.nanmedian(phantom.median_hu[z0 : z1 + 1]))
+        inner = _disc(mean.shape, centre, 0.92 * radius)
+        for sign in (1.0, -1.0):
+            lab, _ = ndimage.label((sign * smooth > float(s["min_contrast_hu"])) & inner)
+            for i, sl in enumerate(ndimage.find_objects(lab), start=1):
+                if sl is None:
+                    continue
+                found = _insert_from_component(volume.hu, sign * smooth[sl], lab[sl] == i, sl, mid, px, s)
+                if found is not None:
+                    inserts.append(found)
+    inserts.sort(key=lambda r: (r.z0, r.centre_yx_vox[0], r.centre_yx_vox[1]))
     return inserts
+
+
+def _phantom_of(volume: Volume, regions: Regions) -> tuple[Any, int]:
+    """``find_phantom`` on a copy decimated to at most 256 pixels a side; the factor."""
+    factor = max(1, int(math.ceil(max(volume.shape[1:]) / 256)))
+    if factor == 1:
+        return find_phantom(volume, regions), 1
+    dz, dy, dx = volume.spacing_mm
+    small = Volume.from_array(volume.hu[:, ::factor, ::factor], (dz, dy * factor, dx * factor))
+    small_regions = Regions(
+        fov=regions.fov[::factor, ::factor], body=regions.body[:, ::factor, ::factor],
+        table=regions.table[:, ::factor, ::factor], air=regions.air[:, ::factor, ::factor],
+        fov_center_yx_vox=tuple(c / factor for c in regions.fov_center_yx_vox),  # type: ignore[arg-type]
+        fov_radius_vox=regions.fov_radius_vox / factor, fov_is_circle=regions.fov_is_circle,
+        body_centroid_zyx_vox=regions.body_centroid_zyx_vox,
+    )
+    return find_phantom(small, small_regions), factor
+
+
+def _runs_of(flags: np.ndarray) -> list[tuple[int, int]]:
+    lab, n = ndimage.label(np.asarray(flags, dtype=bool))
+    out = []
+    for sl in ndimage.find_objects(lab):
+        out.append((int(sl[0].start), int(sl[0].stop - 1)))
+    return out
 
 
 def _disc(shape: tuple[int, int], centre: Sequence[float], radius: float) -> np.ndarray:
@@ -209,25 +236,31 @@ def _disc(shape: tuple[int, int], centre: Sequence[float], radius: float) -> np.
     return (yy - centre[0]) ** 2 + (xx - centre[1]) ** 2 <= radius**2
 
 
-def _insert_from_component(comp: np.ndarray, sl: tuple[slice, ...], zs: np.ndarray, px: float, s: dict[str, Any]) -> Insert | None:
-    """An Insert if the component is a disc of the allowed size on its slices."""
-    areas = comp.sum(axis=(1, 2))
-    typical = float(np.median(areas[areas > 0]))
-    good = areas >= 0.8 * typical
-    if not good.any():
-        return None
-    flat = comp[good].any(axis=0) if good.sum() == 1 else comp[good].mean(axis=0) >= 0.5
-    (cy, cx), r_eq, fill = disc_of(flat)
+def _insert_from_component(hu: np.ndarray, dev: np.ndarray, comp: np.ndarray, sl: tuple[slice, ...], z: int,
+                           px: float, s: dict[str, Any]) -> Insert | None:
+    """An Insert if the 2-D component is a disc of the allowed size; its slices from ``z``.
+
+    The disc is re-thresholded at half its own contrast (``dev``: smoothed departure from
+    the phantom, sign made positive) so that its radius does not grow with contrast.
+    """
+    (cy, cx), r_eq, _ = disc_of(comp)
+    core = dev[_disc(comp.shape, (cy, cx), 0.5 * r_eq) & comp]
+    if core.size:
+        half = comp & (dev > 0.5 * float(np.median(core)))
+        if half.any():
+            comp = ndimage.binary_fill_holes(half)
+    (cy, cx), r_eq, fill = disc_of(comp)
     diameter = 2.0 * r_eq * px
     if fill < 0.7 or not s["min_insert_diameter_mm"] <= diameter <= s["max_insert_diameter_mm"]:
         return None
-    idx = np.nonzero(good)[0]
-    z0, z1 = int(zs[sl[0].start + idx[0]]), int(zs[sl[0].start + idx[-1]])
-    return Insert(z0, z1, (cy + sl[1].start, cx + sl[2].start), r_eq * px, "auto")
+    centre = (cy + sl[0].start, cx + sl[1].start)
+    z0, z1 = _slices_of_rod(hu, z, centre, r_eq)
+    return Insert(z0, z1, centre, r_eq * px, "auto")
 
 
-def _slices_of_rod(hu: np.ndarray, z: int, centre: tuple[float, float], r_px: float) -> tuple[int, int]:
-    """Extend from slice ``z`` while the disc keeps at least half its contrast to its ring."""
+def _slices_of_rod(hu: np.ndarray, z: int, centre: tuple[float, float], r_px: float,
+                   keep: float = 0.75) -> tuple[int, int]:
+    """Extend from slice ``z`` while the disc keeps at least ``keep`` of its contrast to its ring."""
 
     def contrast(k: int) -> float:
         return _disc_contrast(hu[k], centre, r_px)
@@ -236,10 +269,10 @@ def _slices_of_rod(hu: np.ndarray, z: int, centre: tuple[float, float], r_px: fl
     if c0 == 0 or not np.isfinite(c0):
         return z, z
     lo = z
-    while lo - 1 >= 0 and contrast(lo - 1) / c0 >= 0.5:
+    while lo - 1 >= 0 and contrast(lo - 1) / c0 >= keep:
         lo -= 1
     hi = z
-    while hi + 1 < hu.shape[0] and contrast(hi + 1) / c0 >= 0.5:
+    while hi + 1 < hu.shape[0] and contrast(hi + 1) / c0 >= keep:
         hi += 1
     return lo, hi
 
@@ -719,7 +752,7 @@ def analyse(volume: Volume, regions: Regions, settings: dict[str, Any] | None = 
         measurements.append(measure_circular_edge(volume, ins, s, allowed=allowed if ins.source == "auto" else None,
                                                   others=inserts))
     want_skin = s["skin_edge"] == "always" or (s["skin_edge"] == "auto" and not measurements)
-    if want_skin and not (s["skin_edge"] == "auto" and find_phantom(volume, regions).found):
+    if want_skin and not (s["skin_edge"] == "auto" and _phantom_of(volume, regions)[0].found):
         skin = skin_edge_ttf(volume, regions, s)
         if skin is not None:
             measurements.append(skin)
