@@ -262,25 +262,38 @@ def _padding_range(ds: Dataset) -> tuple[float, float] | None:
     return float(min(value, lim)), float(max(value, lim))
 
 
+def _same_mask(a: np.ndarray | None, b: np.ndarray | None) -> bool:
+    if a is None or b is None:
+        return a is None and b is None
+    return bool(np.array_equal(a, b))
+
+
 class _PaddingTracker:
     """Keeps the padding mask while slices are filled; tells whether it is the same everywhere."""
 
     def __init__(self) -> None:
-        self.mask: np.ndarray | None = None
+        self.mask: np.ndarray | None = None  # None: no padded pixel
         self.same = True
+        self.count = 0
         self.hu_values: set[float] = set()
 
     def add(self, stored: np.ndarray, pad: tuple[float, float] | None, slope: float, intercept: float) -> None:
-        mask = np.zeros(stored.shape, bool) if pad is None else (stored >= pad[0]) & (stored <= pad[1])
-        if pad is not None and mask.any():
-            self.hu_values.add(round(pad[0] * slope + intercept, 3))
-        if self.mask is None:
+        if pad is None:
+            mask = None
+        else:
+            mask = (stored == pad[0]) if pad[0] == pad[1] else (stored >= pad[0]) & (stored <= pad[1])
+            if mask.any():
+                self.hu_values.add(round(pad[0] * slope + intercept, 3))
+            else:
+                mask = None
+        if self.count == 0:
             self.mask = mask
-        elif self.same and not np.array_equal(mask, self.mask):
+        elif self.same and not _same_mask(mask, self.mask):
             self.same = False
+        self.count += 1
 
     def result(self) -> tuple[np.ndarray | None, str | None]:
-        if self.mask is None or not self.hu_values:
+        if not self.hu_values:
             return None, None
         hu = ", ".join(f"{v:g}" for v in sorted(self.hu_values))
         if not self.same:
@@ -389,6 +402,15 @@ def load_dicom_series(src: SeriesSource, *, include_identifiers: bool = False, m
     )
 
 
+def _rescale_into(stored: np.ndarray, slope: float, intercept: float, out: np.ndarray) -> None:
+    """out = stored * slope + intercept in float32 (DICOM PS3.3 C.11.1.1.2)."""
+    if slope == 1.0:
+        np.add(stored, np.float32(intercept), out=out, casting="unsafe")
+    else:
+        np.multiply(stored, np.float32(slope), out=out, casting="unsafe")
+        out += np.float32(intercept)
+
+
 def _fill(datasets, frames, geometry, rows, cols):
     out_index = np.empty(len(frames), dtype=int)
     out_index[geometry.order] = np.arange(len(frames))
@@ -409,8 +431,7 @@ def _fill(datasets, frames, geometry, rows, cols):
         pad_range = _padding_range(ds)
         for j in by_ds[ds_index]:
             f, k = frames[j], int(out_index[j])
-            np.multiply(stored[f.frame], f.slope, out=hu[k], casting="unsafe")
-            hu[k] += np.float32(f.intercept)
+            _rescale_into(stored[f.frame], f.slope, f.intercept, hu[k])
             pad.add(stored[f.frame], pad_range, f.slope, f.intercept)
     return hu, failed, pad.result()
 

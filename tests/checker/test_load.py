@@ -410,3 +410,37 @@ def test_load_path_raises_when_nothing_loads(tmp_path):
     empty.mkdir()
     with pytest.raises(UnreadableFileError, match="no DICOM series"):
         load_path(empty)
+
+
+def test_padding_only_on_later_slices_gives_no_mask(tmp_path):
+    vol = _volume(nz=3)
+    vol.hu[2, 1, 1] = -3024 - 1024  # slices 0 and 1 hold no padded pixel
+    _write(vol, tmp_path, padding_value=-3024)
+    out = load_series(_only(tmp_path))
+    assert out.padding_mask is None
+    assert any("different pixels on different slices" in n for n in out.notes)
+
+
+def test_discovery_reads_headers_only(tmp_path, monkeypatch):
+    """Every read in discover() stops before the pixels; a 60000^2 header is no problem there."""
+    paths = _write(_volume(nz=2), tmp_path / "nested" / "deeper")
+    _edit(paths[0], Rows=60000, Columns=60000)
+    (tmp_path / "DICOMDIR").write_bytes(b"")
+    calls = []
+    real = pydicom.dcmread
+
+    def spy(*args, **kwargs):
+        calls.append(kwargs.get("stop_before_pixels"))
+        return real(*args, **kwargs)
+
+    monkeypatch.setattr(pydicom, "dcmread", spy)
+    found = discover([tmp_path])
+    assert calls and all(calls)
+    assert len(found.series) == 1 and len(found.series[0].files) == 2 and not found.problems
+
+
+def test_missing_input_is_a_problem(tmp_path):
+    found = discover([tmp_path / "nowhere"])
+    assert not found.series
+    assert isinstance(found.problems[0].error, UnreadableFileError)
+    assert "no such file or folder" in str(found.problems[0].error)
