@@ -172,19 +172,26 @@ def test_global_noise_level_on_patient_like_image():
 
 
 def test_demo_nonlinear_reconstruction_has_lower_f_av():
-    """The demo scenario's nonlinear reconstruction of the QA phantom was built with a
-    lower-frequency (blotchier) noise texture than its FBP-like reconstruction; f_av
-    (Solomon, Christianson, Samei, Med Phys 39(10) 2012) must show it. Margin: f_av of
-    the nonlinear series at most 0.9 x that of the FBP-like one unless the demo module
-    documents its own margin (``NPS_F_AV_RATIO_MAX``)."""
+    """The demo scenario's nonlinear (TV-regularised) reconstruction of the QA phantom
+    was built with a blotchier, lower-frequency noise texture than its FBP one; f_av
+    (Solomon, Christianson, Samei, Med Phys 39(10) 2012) must show it by the margin the
+    demo documents in ``demo.F_AV_PER_MM`` (its own 100 px mean-subtracted ROIs): our
+    ratio f_av(nonlinear) / f_av(FBP) must not exceed the documented ratio by more than
+    0.1 (our ROIs are 64 px and poly2-detrended). While the documented values are not yet
+    filled in (zeros), the ratio must be below 0.9."""
     from reconaudit.checker import demo
 
-    margin = float(getattr(demo, "NPS_F_AV_RATIO_MAX", 0.9))
-    results = {}
+    f_av = {}
     for name in ("qa_phantom", "qa_phantom_nonlinear"):
         vol = demo.make_volume(name, size="small")
         res = nps.analyse(vol, find_regions(vol))
         assert res.record["applicable"], res.record.get("reason")
         assert res.record["method"] == "phantom"
-        results[name] = res.record["f_av_per_mm"]
-    assert results["qa_phantom_nonlinear"] < margin * results["qa_phantom"], results
+        f_av[name] = res.record["f_av_per_mm"]
+    ratio = f_av["qa_phantom_nonlinear"] / f_av["qa_phantom"]
+    doc = demo.F_AV_PER_MM
+    if doc["qa_phantom"] > 0 and doc["qa_phantom_nonlinear"] > 0:
+        limit = doc["qa_phantom_nonlinear"] / doc["qa_phantom"] + 0.1
+    else:
+        limit = 0.9
+    assert ratio < min(limit, 1.0), (f_av, limit)

@@ -1,0 +1,219 @@
+"""Tests of the NPS analysis: ROI sources, records, baseline comparison, 3-D NPS, pairs
+and bad input, on invented phantoms and images."""
+from __future__ import annotations
+
+import json
+
+import numpy as np
+import pytest
+from scipy import ndimage
+
+from reconaudit.checker.analyses import nps
+from reconaudit.checker.errors import ProfileError
+from reconaudit.checker.regions import find_regions
+from reconaudit.checker.results import dumps
+from reconaudit.checker.volume import Volume
+
+
+def water_cylinder(nz: int = 8, n: int = 160, radius: int = 70, sd: float = 10.0,
+                   blur_px: float = 0.0, seed: int = 0, inserts: bool = False) -> Volume:
+    """An invented water cylinder in air with (optionally blurred) noise."""
+    rng = np.random.default_rng(seed)
+    yy, xx = np.mgrid[:n, :n]
+    c = n / 2.0
+    img = np.where((yy - c) ** 2 + (xx - c) ** 2 <= radius**2, 0.0, -1000.0)
+    if inserts:
+        img[(yy - c) ** 2 + (xx - c - 30) ** 2 <= 8**2] = 800.0
+    noise = rng.normal(0.0, 1.0, (nz, n, n))
+    if blur_px:
+        noise = ndimage.gaussian_filter(noise, (0, blur_px, blur_px))
+        noise /= noise.std()
+    return Volume.from_array(img[None] + sd * noise, (2.0, 0.8, 0.8))
+
+
+def run(vol: Volume, **settings):
+    return nps.analyse(vol, find_regions(vol), settings or None)
+
+
+REQUIRED = ("noise_hu", "f_peak_per_mm", "f_av_per_mm", "frequency_per_mm", "nps_1d_hu2mm2",
+            "roi_count", "method")
+
+
+def test_phantom_record_and_overlays():
+    res = run(water_cylinder())
+    rec = res.record
+    assert rec["applicable"] and rec["method"] == "phantom"
+    for key in REQUIRED:
+        assert key in rec
+    assert len(rec["frequency_per_mm"]) == len(rec["nps_1d_hu2mm2"])
+    assert abs(rec["frequency_per_mm"][-1] - 0.5 / 0.8) < 0.02
+    assert abs(rec["noise_hu"] - 10.0) < 0.5
+    rois = res.overlays.rois
+    assert len(rois) >= 5 and rec["roi_count"] == len(rois) * 8
+    for a in rois:
+        for b in rois:
+            if a is not b:
+                assert not (a.y0 < b.y1 and b.y0 < a.y1 and a.x0 < b.x1 and b.x0 < a.x1)
+    json.loads(dumps(rec))  # strict JSON
+
+
+def test_smoother_noise_has_lower_f_av_and_texture_comparison():
+    sharp = run(water_cylinder(seed=1)).record
+    blotchy = run(water_cylinder(seed=2, blur_px=1.5)).record
+    assert blotchy["f_av_per_mm"] < 0.7 * sharp["f_av_per_mm"]
+    same = nps.compare_nps(sharp, run(water_cylinder(seed=3)).record)
+    assert abs(same["f_av_ratio"] - 1) < 0.05 and abs(same["noise_ratio"] - 1) < 0.05
+    assert same["nps_correlation"] > 0.5
+    diff = nps.compare_nps(blotchy, sharp)
+    assert diff["f_av_ratio"] < 0.7 and diff["nps_correlation"] < same["nps_correlation"]
+
+
+def test_baseline_setting_flags_texture_change():
+    sharp = run(water_cylinder(seed=1)).record
+    res = run(water_cylinder(seed=2, blur_px=1.5), baseline=sharp)
+    assert res.record["flagged"]
+    assert "texture_vs_baseline" in res.record
+    assert any("f_av" in f.message for f in res.findings)
+    ok = run(water_cylinder(seed=4), baseline=sharp, nps_correlation_min=0.0)
+    assert not ok.record["flagged"], [f.message for f in ok.findings]
+
+
+def test_noise_limit_finding():
+    res = run(water_cylinder(sd=20.0), noise_hu_max=15.0)
+    assert res.record["flagged"] and "exceeds" in res.findings[0].message
+
+
+def test_user_rois_and_their_overlays():
+    vol = water_cylinder()
+    rois = [{"slices": [2, 5], "yx0_vox": [48, 48 + 40 * k], "size_vox": 32} for k in range(2)]
+    res = run(vol, rois=rois)
+    assert res.record["method"] == "user" and res.record["roi_count"] == 8
+    assert [(r.y0, r.x0, r.y1, r.x1) for r in res.overlays.rois] == [(48, 48, 80, 80), (48, 88, 80, 120)]
+
+
+@pytest.mark.parametrize("rois, words", [
+    ([{"slices": [0, 1], "yx0_vox": [150, 150], "size_vox": 32}], "does not fit"),
+    ([{"slices": [0, 9], "yx0_vox": [10, 10], "size_vox": 32}], "does not fit"),
+    ([{"slices": [0, 0], "yx0_vox": [60, 60], "size_vox": 32}], "at least"),
+    ([{"slices": [0, 3], "yx0_vox": [60, 60], "size_vox": 32},
+      {"slices": [0, 3], "yx0_vox": [20, 60], "size_vox": 24}], "one size"),
+    ([{"slices": [0, 3], "yx0_vox": [60, 60]}], "malformed"),
+])
+def test_bad_user_rois_are_not_applicable(rois, words):
+    rec = run(water_cylinder(), rois=rois).record
+    assert rec["applicable"] is False and words in rec["reason"]
+
+
+def test_no_uniform_region():
+    rec = run(water_cylinder(nz=3, inserts=True)).record
+    assert rec["applicable"] is False and "no uniform region" in rec["reason"]
+
+
+def test_constant_volume():
+    rec = run(Volume.from_array(np.zeros((4, 96, 96)), (1, 1, 1))).record
+    assert rec["applicable"] is False and rec["reason"]
+
+
+def test_constant_user_rois_have_no_noise():
+    vol = Volume.from_array(np.zeros((4, 96, 96)), (1, 1, 1))
+    rec = run(vol, rois=[{"slices": [0, 3], "yx0_vox": [10, 10], "size_vox": 32}]).record
+    assert rec["applicable"] is False and "no noise" in rec["reason"]
+
+
+def test_nan_volume():
+    vol = water_cylinder(nz=3)
+    vol.hu[1, 5, 5] = np.nan
+    rec = run(vol).record
+    assert rec["applicable"] is False and "NaN" in rec["reason"]
+
+
+def test_unknown_setting_and_detrend():
+    vol = water_cylinder(nz=2)
+    with pytest.raises(ProfileError):
+        run(vol, roi_sise_vox=3)
+    with pytest.raises(ProfileError):
+        run(vol, detrend="cubic")
+
+
+def test_one_slice_volume():
+    rec = run(water_cylinder(nz=1)).record
+    assert rec["applicable"] and rec["roi_count"] >= 4
+
+
+def test_nps_3d_white_noise_is_flat():
+    """White 3-D noise: 3-D NPS flat at s^2 dx dy dz, so the z profile (integral over fx, fy)
+    is flat at s^2 dz and its integral is s^2 (Parseval; analytic)."""
+    rec = run(water_cylinder(nz=16), nps_3d=True, detrend="mean").record["nps_3d"]
+    assert rec["applicable"] and rec["roi_count"] >= 5
+    assert abs(rec["noise_hu"] - 10.0) < 0.5
+    nz = np.asarray(rec["nps_z_hu2mm"])
+    fz = np.asarray(rec["frequency_z_per_mm"])
+    nonzero = np.abs(fz) > 0
+    assert np.all(np.abs(nz[nonzero] / (100.0 * 2.0) - 1) < 0.15)
+
+
+def test_nps_3d_needs_deep_rois():
+    rec = run(water_cylinder(nz=4), nps_3d=True).record["nps_3d"]
+    assert rec["applicable"] is False and "contiguous" in rec["reason"]
+
+
+def test_pair_subtraction_removes_structure():
+    """(I1 - I2)/sqrt 2 keeps the noise of one image and removes fixed structure."""
+    a = water_cylinder(seed=10)
+    b = water_cylinder(seed=11)
+    ramp = np.linspace(0, 40, a.shape[2])[None, None, :]
+    a.hu += ramp
+    b.hu += ramp
+    rec = nps.nps_from_pair(a, b).record
+    assert rec["method"] == "pair" and abs(rec["noise_hu"] - 10.0) < 0.5
+    via_setting = nps.analyse(a, find_regions(a), {"pair_with": b}).record
+    assert via_setting["method"] == "pair" and via_setting["noise_hu"] == pytest.approx(rec["noise_hu"])
+
+
+def test_pair_shape_mismatch_is_not_applicable():
+    rec = nps.nps_from_pair(water_cylinder(), water_cylinder(nz=4)).record
+    assert rec["applicable"] is False and "differ" in rec["reason"]
+
+
+def _torso(sd: float, seed: int = 0) -> Volume:
+    """An invented elliptical torso: soft tissue 40 HU, an organ 60 HU, bone, fat rim."""
+    rng = np.random.default_rng(seed)
+    ny, nx = 160, 220
+    yy, xx = np.mgrid[:ny, :nx]
+    img = np.full((ny, nx), -1000.0)
+    img[((yy - 80) / 72.0) ** 2 + ((xx - 110) / 100.0) ** 2 <= 1] = -100.0
+    img[((yy - 80) / 64.0) ** 2 + ((xx - 110) / 92.0) ** 2 <= 1] = 40.0
+    img[((yy - 70) / 25.0) ** 2 + ((xx - 80) / 30.0) ** 2 <= 1] = 60.0
+    img[(yy - 120) ** 2 + (xx - 110) ** 2 <= 10**2] = 700.0
+    return Volume.from_array(img[None] + rng.normal(0, sd, (4, ny, nx)), (3.0, 0.8, 0.8))
+
+
+def test_patient_patches_and_global_noise():
+    res = run(_torso(12.0))
+    rec = res.record
+    assert rec["applicable"] and rec["method"] == "patient"
+    assert abs(rec["global_noise_hu"] - 12.0) < 1.2
+    assert abs(rec["noise_hu"] - 12.0) < 1.5
+    vol = _torso(12.0)
+    for r in res.overlays.rois:  # every patch in soft tissue
+        patch = vol.hu[r.z0, r.y0:r.y1, r.x0:r.x1]
+        assert 0 < patch.mean() < 100
+
+
+def test_no_body_no_phantom():
+    vol = Volume.from_array(np.random.default_rng(0).normal(-1000, 5, (2, 64, 64)), (1, 1, 1))
+    rec = run(vol).record
+    assert rec["applicable"] is False and rec["reason"]
+
+
+def test_smooth_curve_keeps_linear_trend_and_dc():
+    c = np.array([0.0, 1, 2, 3, 4, 5, 6])
+    out = nps.smooth_curve(c, 3)
+    assert out[0] == 0 and np.allclose(out[2:-1], c[2:-1])
+
+
+def test_detrend_poly2_removes_quadratic_exactly():
+    y, x = np.mgrid[:16, :16]
+    q = (3 + 0.5 * x - 0.2 * y + 0.1 * x * x - 0.05 * x * y + 0.02 * y * y)[None].astype(float)
+    assert np.abs(nps.detrend_rois(q, "poly2")).max() < 1e-9
+    assert np.abs(nps.detrend_rois(q, "mean")).max() > 1.0
