@@ -30,7 +30,8 @@ object's and the noise's spectrum there). The volume index is the largest slice 
 A slice, and the series, is flagged when its index exceeds ``tolerance_index``.
 
 Missing wedge: a contiguous run of at least ``wedge_min_deg`` of orientation bins of the
-mean profile below ``wedge_level``; its ends are refined to the half-level crossings.
+mean profile below ``wedge_level``; each end is the boundary streak peak just outside
+the half-level crossing (or that crossing when there is no such peak).
 Reported as ``{"from_deg", "to_deg", "width_deg"}``: the missing line orientations run
 counter-clockwise from ``from_deg`` to ``to_deg`` (``from_deg > to_deg`` when the range
 wraps past 180), or ``null``.
@@ -79,7 +80,7 @@ DEFAULTS: dict[str, Any] = {
     "severity": "review",
     "screen_max_px": 256,
     "min_slice_px": 32,
-    "band_cycles_per_px": [0.08, 0.45],
+    "band_cycles_per_px": [0.1, 0.45],
     "angle_bin_deg": 2.0,
     "highpass_sigma_px": 1.5,
     "edge_step_hu": 300.0,
@@ -87,7 +88,7 @@ DEFAULTS: dict[str, Any] = {
     "border_margin_px": 3,
     "min_weight_fraction": 0.05,
     "wedge_level": 0.25,
-    "wedge_min_deg": 16.0,
+    "wedge_min_deg": 10.0,
     "peak_level": 1.6,
     "max_directions": 4,
     "direction_window_deg": 3.0,
@@ -266,10 +267,25 @@ def strong_edges(smoothed: np.ndarray, step_hu: float, sigma_px: float) -> np.nd
 
 
 def grow(mask: np.ndarray, radius_px: int) -> np.ndarray:
-    """Square dilation of a boolean mask by ``radius_px``."""
+    """Square dilation of a boolean mask by ``radius_px`` (for masks that are only binned)."""
     if radius_px <= 0 or not mask.any():
         return mask
     return ndimage.maximum_filter(mask.view(np.uint8), size=2 * radius_px + 1).astype(bool)
+
+
+def soft_weight(bad: np.ndarray, reach_px: float) -> np.ndarray:
+    """A weight that is 0 on and near ``bad`` pixels and rises smoothly to 1 away from them.
+
+    The mask is blurred by a Gaussian of SD ``reach_px / 2`` (an isotropic dilation: a
+    square one would add straight mask edges at 0 and 90 deg, i.e. false streak energy)
+    and mapped through ``clip(1 - blur / 0.05, 0, 1) ** 2``: zero closer than about
+    0.8 ``reach_px`` to a straight bad edge, a smooth taper beyond.
+    """
+    if not bad.any():
+        return np.ones(bad.shape, dtype=np.float32)
+    blur = ndimage.gaussian_filter(bad.astype(np.float32), 0.5 * reach_px, truncate=3.0)
+    w = np.clip(1.0 - blur * np.float32(20.0), 0.0, 1.0)
+    return w * w
 
 
 def slice_texture(image: np.ndarray, allowed: np.ndarray, cfg: dict[str, Any]) -> SliceTexture | None:
@@ -288,20 +304,20 @@ def slice_texture(image: np.ndarray, allowed: np.ndarray, cfg: dict[str, Any]) -
     sigma = float(cfg["highpass_sigma_px"])
     smoothed = ndimage.gaussian_filter(img, sigma, truncate=3.0)
     residual = img - smoothed
-    reach = int(math.ceil(2.0 * sigma)) + 1
-    bad = grow(~valid | strong_edges(smoothed, float(cfg["edge_step_hu"]), sigma), reach)
-    weight = ~bad
-    if weight.sum() < cfg["min_weight_fraction"] * image.size:
+    reach = 2.0 * sigma + 2.0
+    weight = soft_weight(~valid | strong_edges(smoothed, float(cfg["edge_step_hu"]), sigma), reach)
+    inside = weight > 0.5
+    if inside.sum() < cfg["min_weight_fraction"] * image.size:
         return None
-    inside = residual[weight]
-    scale = 1.4826 * float(np.median(np.abs(inside[:: max(1, inside.size // 20000)])))
+    values = residual[inside]
+    scale = 1.4826 * float(np.median(np.abs(values[:: max(1, values.size // 20000)])))
     if not scale > 0 or not math.isfinite(scale):
         return None
     limit = np.float32(cfg["clip_sigma"] * scale)
     clipped = np.clip(residual, -limit, limit)
     clipped *= weight
     spectrum = sfft.rfft2(clipped.astype(np.float32, copy=False))
-    return SliceTexture(residual=clipped, weight=weight, scale_hu=scale, spectrum=spectrum)
+    return SliceTexture(residual=clipped, weight=inside, scale_hu=scale, spectrum=spectrum)
 
 
 def power(spectrum: np.ndarray) -> np.ndarray:
@@ -339,10 +355,35 @@ def missing_wedge(profile: np.ndarray, bin_deg: float, level: float, min_deg: fl
     first, last = (best[0] + start) % n, (best[1] - 1 + start) % n
     if (best[1] - best[0]) * bin_deg < min_deg:
         return None
-    lo_edge = _half_crossing(smooth, first, -1, bin_deg)
-    hi_edge = _half_crossing(smooth, last, +1, bin_deg)
+    lo_edge = _boundary_peak(profile, _half_crossing(smooth, first, -1, bin_deg), -1, bin_deg)
+    hi_edge = _boundary_peak(profile, _half_crossing(smooth, last, +1, bin_deg), +1, bin_deg)
     width = (hi_edge - lo_edge) % 180.0
     return {"from_deg": round(lo_edge % 180.0, 2), "to_deg": round(hi_edge % 180.0, 2), "width_deg": round(width, 2)}
+
+
+#: how far (deg) outside a wedge's half-level crossing its boundary streak is looked for
+BOUNDARY_SEARCH_DEG = 8.0
+#: the least height (isotropic level = 1) of a boundary streak peak
+BOUNDARY_PEAK_MIN = 1.2
+
+
+def _boundary_peak(profile: np.ndarray, crossing_deg: float, outward: int, bin_deg: float) -> float:
+    """The boundary streak next to a wedge edge, else the half-level crossing itself.
+
+    The last measured orientation carries the boundary streaks (Fourier slice theorem),
+    so the strongest local maximum of the profile from 2 deg inside the crossing to
+    ``BOUNDARY_SEARCH_DEG`` outside it, if at least ``BOUNDARY_PEAK_MIN``, marks the edge.
+    """
+    n = profile.size
+    steps = np.arange(-2.0, BOUNDARY_SEARCH_DEG + 1e-9, bin_deg)
+    idx = [int(round((crossing_deg + outward * d) / bin_deg)) % n for d in steps]
+    best = max(idx, key=lambda i: profile[i])
+    a, b, c = float(profile[(best - 1) % n]), float(profile[best]), float(profile[(best + 1) % n])
+    if b < BOUNDARY_PEAK_MIN or b < a or b < c:
+        return crossing_deg
+    denom = a - 2 * b + c
+    shift = 0.5 * (a - c) / denom if denom < 0 else 0.0
+    return (best + shift) * bin_deg
 
 
 def _half_crossing(smooth: np.ndarray, index: int, step: int, bin_deg: float) -> float:
@@ -393,7 +434,7 @@ def dominant_angles(profile: np.ndarray, wedge: dict[str, float] | None, cfg: di
     for angle, _ in profile_peaks(profile, bin_deg, float(cfg["peak_level"])):
         if all(angle_distance(angle, c) > 2.5 * bin_deg for c in chosen):
             chosen.append(angle)
-    return [round(a, 1) for a in chosen[: int(cfg["max_directions"])]]
+    return [round(a, 1) % 180.0 for a in chosen[: int(cfg["max_directions"])]]
 
 
 def _outside_strength(profile: np.ndarray, edge_deg: float, bin_deg: float, wedge: dict[str, float]) -> float:
@@ -510,8 +551,9 @@ def line_extent(comp: np.ndarray, weight: np.ndarray, t: np.ndarray, s: np.ndarr
     sums = np.bincount(pos - base, weights=comp[on_line].astype(np.float64))
     counts = np.bincount(pos - base)
     run = max(5, int(cfg["segment_min_px"]) // 2)
-    mean = ndimage.uniform_filter1d(sums, run) / np.maximum(ndimage.uniform_filter1d(counts.astype(float), run), 1e-9)
-    keep = (np.sign(amplitude) * mean >= float(cfg["segment_keep"]) * abs(amplitude)) & (counts > 0)
+    local_count = ndimage.uniform_filter1d(counts.astype(float), run, mode="constant")
+    mean = ndimage.uniform_filter1d(sums, run, mode="constant") / np.maximum(local_count, 1e-9)
+    keep = (np.sign(amplitude) * mean >= float(cfg["segment_keep"]) * abs(amplitude)) & (local_count > 0.2)
     best, i = (0, -1), 0
     while i < keep.size:
         if keep[i]:
@@ -543,15 +585,12 @@ def allowed_mask(regions: Regions | None, z: int, factor: int, shape_b: tuple[in
         allowed[:, :m] = allowed[:, -m:] = False
     if regions is None:
         return allowed
-    reach = int(math.ceil(2.0 * float(cfg["highpass_sigma_px"]))) + 1
-    fov = bin_mask(~regions.fov, factor)
-    allowed &= ~grow(fov, reach)
+    allowed &= ~bin_mask(~regions.fov, factor)
     if regions.table[z].any():
-        allowed &= ~grow(bin_mask(regions.table[z], factor), 2 * reach)
+        allowed &= ~grow(bin_mask(regions.table[z], factor), 2)
     body = regions.body[z]
     if body.any():
-        outline = body ^ ndimage.binary_erosion(body)
-        allowed &= ~grow(bin_mask(outline, factor), reach)
+        allowed &= ~bin_mask(body ^ ndimage.binary_erosion(body), factor)
     return allowed
 
 
@@ -725,10 +764,10 @@ def localise(volume: Volume, regions: Regions | None, screen: Screen, flagged: l
         for angle, (y0, x0), (y1, x1), zscore in found.lines:
             overlays.segments.append(
                 Segment(
-                    start_zyx_vox=(float(z), _unbin(y0, f), _unbin(x0, f)),
-                    end_zyx_vox=(float(z), _unbin(y1, f), _unbin(x1, f)),
+                    start_zyx_vox=(float(z), float(_unbin(y0, f)), float(_unbin(x0, f))),
+                    end_zyx_vox=(float(z), float(_unbin(y1, f)), float(_unbin(x1, f))),
                     label=f"streak {angle:.0f} deg",
-                    value=round(zscore, 2),
+                    value=round(float(zscore), 2),
                 )
             )
 
