@@ -36,11 +36,12 @@ ROLE_NAMES: dict[str, str] = {
 }
 #: (analysis, role) -> layer-name wording where a better one exists
 SPECIFIC_NAMES: dict[tuple[str, str], str] = {
-    ("air", "labels"): "structures in air",
-    ("air", "points"): "flagged structure centres",
+    ("air", "labels"): "air structures",
+    ("air", "points"): "air flags",
     ("streaks", "segments"): "streak lines",
-    ("nps", "rois"): "noise ROIs (editable)",
-    ("ttf", "points"): "edge centres (add points)",
+    ("streaks", "map"): "streak strength",
+    ("nps", "rois"): "noise ROIs",
+    ("ttf", "points"): "edge centres",
 }
 #: the overlay layers whose edits are re-measured: (analysis, role)
 EDITABLE = {("nps", "rois"), ("ttf", "points")}
@@ -80,9 +81,11 @@ class ResultView:
 
 
 def layer_name(source: str, analysis: str, role: str, key: str = "") -> str:
-    """'<analysis>: <what> | <image>' -- unique per image, analysis and role; the role first."""
-    what = key.replace("_", " ") if key else SPECIFIC_NAMES.get((analysis, role), ROLE_NAMES[role])
-    return f"{analysis}: {what} | {source}"
+    """'<what> · <image>': short, the role first, unique per image, analysis and role."""
+    what = SPECIFIC_NAMES.get((analysis, role)) if role != "map" or key == "streak_strength" else None
+    if what is None:
+        what = f"{analysis} {key.replace('_', ' ') if key else ROLE_NAMES[role]}"
+    return f"{what} · {source}"
 
 
 def _meta(role: str, analysis: str, source: str, z_offset: int, **extra: Any) -> dict[str, Any]:
@@ -105,15 +108,18 @@ def format_value(value: Any) -> str:
 
 # ----------------------------------------------------------------- labels
 def label_centroids(labels: np.ndarray) -> list[tuple[int, tuple[float, float, float], int]]:
-    """(label, centroid (z, y, x) voxel, voxel count) of every non-zero label."""
+    """(label, centroid (z, y, x) voxel, voxel count) of every non-zero label (bincount sums)."""
     labels = np.asarray(labels)
-    ids = np.unique(labels)
-    ids = ids[ids != 0]
-    if ids.size == 0:
+    flat = labels.ravel()
+    nz_idx = np.flatnonzero(flat)
+    if nz_idx.size == 0:
         return []
-    centres = ndimage.center_of_mass(np.ones(labels.shape, dtype=np.uint8), labels, ids)
-    counts = ndimage.sum_labels(np.ones(labels.shape, dtype=np.uint8), labels, ids)
-    return [(int(i), tuple(float(c) for c in ctr), int(n)) for i, ctr, n in zip(ids, centres, counts)]
+    lab = flat[nz_idx].astype(np.int64)
+    coords = np.unravel_index(nz_idx, labels.shape)
+    counts = np.bincount(lab)
+    ids = np.flatnonzero(counts)
+    sums = [np.bincount(lab, weights=c.astype(float), minlength=counts.size) for c in coords]
+    return [(int(i), tuple(float(sm[i] / counts[i]) for sm in sums), int(counts[i])) for i in ids]
 
 
 def label_colours(ids: list[int], flagged: dict[int, bool]) -> dict[Any, str]:
@@ -137,7 +143,7 @@ def labels_layer(
     labels: np.ndarray, geometry: LayerGeometry, analysis: str, source: str, z_offset: int, record: dict[str, Any] | None = None
 ) -> LayerData:
     g = geometry.shifted(z_offset)
-    ids = [int(i) for i in np.unique(labels) if i != 0]
+    ids = [int(i) for i in np.flatnonzero(np.bincount(np.asarray(labels).ravel().astype(np.int64)))[1:] if i != 0] if np.asarray(labels).min() >= 0 else []
     kwargs = {
         "name": layer_name(source, analysis, "labels"),
         "scale": g.scale,
@@ -243,6 +249,8 @@ def record_rows(analysis: str, record: dict[str, Any]) -> list[TableRow]:
     for key, value in record.items():
         if isinstance(value, (bool, int, float, str, np.integer, np.floating)) or value is None:
             if key == "reason" and record.get("applicable", True):
+                continue
+            if key == "applicable" and value is True:
                 continue
             rows.append(TableRow(analysis, key, format_value(value)))
     return rows

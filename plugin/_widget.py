@@ -61,7 +61,7 @@ from ._reader import volume_from_layer
 
 SCOPE_VOLUME = "whole volume"
 SCOPE_SLICE = "displayed slice"
-TABLE_COLUMNS = ("Check", "Slice", "What", "Value")
+TABLE_COLUMNS = ("Check", "Slice", "Value", "What")
 EDIT_DELAY_MS = 300
 _SEVERITY_COLOURS = {"fail": "#ffb3b3", "review": "#ffe3a3"}
 
@@ -219,9 +219,10 @@ class AuditBench(QWidget):
         self.table.setEditTriggers(QAbstractItemView.EditTrigger.NoEditTriggers)
         self.table.verticalHeader().setVisible(False)
         self.table.setWordWrap(True)
+        self.table.setHorizontalScrollBarPolicy(Qt.ScrollBarPolicy.ScrollBarAlwaysOff)
         header = self.table.horizontalHeader()
         modes = (QHeaderView.ResizeMode.ResizeToContents, QHeaderView.ResizeMode.ResizeToContents,
-                 QHeaderView.ResizeMode.Stretch, QHeaderView.ResizeMode.ResizeToContents)
+                 QHeaderView.ResizeMode.ResizeToContents, QHeaderView.ResizeMode.Stretch)
         for col, mode in enumerate(modes):
             header.setSectionResizeMode(col, mode)
         self.table.cellClicked.connect(self.go_to_row)
@@ -557,7 +558,7 @@ class AuditBench(QWidget):
         for r, row in enumerate(self._rows):
             what = row.note if row.severity else (f"{row.item} ({row.note})" if row.note else row.item)
             value = row.severity if row.severity else row.value
-            cells = (row.analysis, "" if row.slice_index is None else str(row.slice_index), what, value)
+            cells = (row.analysis, "" if row.slice_index is None else str(row.slice_index), value, what)
             for c, text in enumerate(cells):
                 item = QTableWidgetItem(text)
                 item.setToolTip(text)
