@@ -7,8 +7,10 @@ same circle.
 
 Method (common practice, no source): the field of view is what the scanner did not mark
 as padding (PixelPaddingValue, values below ``padding_below_hu``, or one constant value
-connected to the image border on every slice); the body is the largest 3-D component
-above ``body_threshold_hu`` (about -500 HU) with holes filled slice by slice; the table
+connected to the image border on every slice, when it encloses a near-disc or air of
+another value: noise-free synthetic air is air, not padding); the body is the largest
+3-D component above ``body_threshold_hu`` (about -500 HU) with holes filled slice by
+slice; the table
 is any other component that lies posterior to the body, spans most slices and keeps its
 cross-section along z; the air is the field of view outside the body and table dilated
 by ``margin_mm``.
@@ -60,24 +62,52 @@ class Regions:
         }
 
 
+def _constant_border_region(hu: np.ndarray) -> tuple[np.ndarray, float] | None:
+    """Pixels holding one constant value on every slice and connected to the image border,
+    and that value. None when the border has no dominant constant value.
+    """
+    border = np.concatenate([hu[0, 0, :], hu[0, -1, :], hu[0, :, 0], hu[0, :, -1]])
+    values, counts = np.unique(border, return_counts=True)
+    if counts.max() <= 0.25 * border.size:
+        return None
+    mode = values[np.argmax(counts)]
+    constant = (hu == mode).all(axis=0)
+    lab, _ = ndimage.label(constant)
+    edge_labels = np.unique(np.concatenate([lab[0], lab[-1], lab[:, 0], lab[:, -1]]))
+    return np.isin(lab, edge_labels[edge_labels > 0]), float(mode)
+
+
+def _looks_like_padding(hu: np.ndarray, region: np.ndarray, value: float, air_below_hu: float = -900.0) -> bool:
+    """A constant border region is padding, not noise-free air, when what it encloses is a
+    near-disc (a reconstruction circle) or still holds air of its own (air-like pixels of
+    another value)."""
+    inside = ndimage.binary_fill_holes(~region)
+    if not inside.any():
+        return True
+    ys, xs = np.nonzero(inside)
+    r_max = np.hypot(ys - ys.mean(), xs - xs.mean()).max() + 0.5
+    disc_fill = ys.size / (np.pi * r_max * r_max)
+    own_air = np.count_nonzero(inside & (hu[0] < air_below_hu) & (hu[0] != value))
+    return bool(disc_fill >= 0.9 or own_air >= 0.01 * ys.size)
+
+
 def find_fov(volume: Volume, padding_below_hu: float = -1500.0) -> tuple[np.ndarray, bool]:
     """The (y, x) mask of pixels inside the reconstruction field of view.
 
-    Returns the mask and whether anything outside it was found (a circle was detected).
+    Outside are: the declared padding (``volume.padding_mask``), pixels below
+    ``padding_below_hu`` on every slice, and a constant value on every slice connected to
+    the image border when it encloses a near-disc or air of its own (noise-free
+    synthetic air is not padding). Returns the mask and whether anything outside it was
+    found (a circle was detected).
     """
     hu = volume.hu
     outside = np.zeros(hu.shape[1:], dtype=bool)
     if volume.padding_mask is not None:
         outside |= volume.padding_mask
     outside |= (hu < padding_below_hu).all(axis=0)
-    border = np.concatenate([hu[:, 0, :], hu[:, -1, :], hu[:, :, 0], hu[:, :, -1]], axis=1)
-    values, counts = np.unique(border[0], return_counts=True)
-    mode = values[np.argmax(counts)]
-    if counts.max() > 0.25 * border.shape[1]:
-        constant = (hu == mode).all(axis=0)
-        lab, _ = ndimage.label(constant)
-        edge_labels = np.unique(np.concatenate([lab[0], lab[-1], lab[:, 0], lab[:, -1]]))
-        outside |= np.isin(lab, edge_labels[edge_labels > 0])
+    found = _constant_border_region(hu)
+    if found is not None and (found[0] & ~outside).any() and _looks_like_padding(hu, *found):
+        outside |= found[0]
     if not outside.any():
         return np.ones(hu.shape[1:], dtype=bool), False
     fov = ndimage.binary_fill_holes(~outside)
