@@ -1,0 +1,174 @@
+"""Unit tests of the streak analysis: conventions, record, overlays and bad input."""
+from __future__ import annotations
+
+import json
+import math
+
+import numpy as np
+import pytest
+
+from reconaudit.checker.analyses import REGISTRY, streaks
+from reconaudit.checker.errors import ProfileError
+from reconaudit.checker.regions import find_regions
+from reconaudit.checker.results import dumps
+from reconaudit.checker.volume import Volume
+
+
+def line_image(angle_deg: float, n: int = 128, offset: float = 0.0, contrast: float = 30.0, seed: int = 1) -> np.ndarray:
+    """Gaussian noise (SD 10 HU) with one thin line at display orientation ``angle_deg``."""
+    rng = np.random.default_rng(seed)
+    img = rng.normal(0.0, 10.0, (n, n)).astype(np.float32)
+    yy, xx = np.mgrid[0:n, 0:n]
+    c = (n - 1) / 2.0
+    a = math.radians(angle_deg)
+    t = (yy - c) * math.cos(a) + (xx - c) * math.sin(a)  # across the line (dy, dx) = (-sin a, cos a)
+    img[np.abs(t - offset) < 0.7] += contrast
+    return img
+
+
+def analyse(hu: np.ndarray, settings=None, spacing=(1.0, 1.0, 1.0)):
+    vol = Volume.from_array(hu if hu.ndim == 3 else hu[None], spacing)
+    return streaks.analyse(vol, find_regions(vol), settings)
+
+
+def test_registered():
+    assert REGISTRY["streaks"].endswith(".streaks")
+    assert streaks.NAME == "streaks"
+    assert set(streaks.SOURCES) <= set(streaks.DEFAULTS)
+
+
+def test_frequency_orientation_convention():
+    """A frequency on the ky axis carries horizontal lines (0 deg), on kx vertical (90)."""
+    ang = streaks.line_angle_of_frequency(np.array([1.0, 0.0, 1.0, -1.0]), np.array([0.0, 1.0, 1.0, 1.0]))
+    assert np.allclose(ang, [0.0, 90.0, 45.0, 135.0])
+
+
+@pytest.mark.parametrize("angle", [0.0, 30.0, 90.0, 125.0])
+def test_line_direction_and_segment(angle):
+    res = analyse(line_image(angle))
+    rec = res.record
+    assert rec["flagged"]
+    assert streaks.angle_distance(rec["dominant_angles_deg"][0], angle) <= 2.0
+    seg = res.overlays.segments[0]
+    dy = seg.end_zyx_vox[1] - seg.start_zyx_vox[1]
+    dx = seg.end_zyx_vox[2] - seg.start_zyx_vox[2]
+    assert streaks.angle_distance(math.degrees(math.atan2(-dy, dx)) % 180.0, angle) <= 2.0
+    assert math.hypot(dy, dx) > 60  # the line crosses most of the 128-px slice
+
+
+def test_segment_offset_matches_line():
+    res = analyse(line_image(0.0, offset=20.0))
+    seg = res.overlays.segments[0]
+    # a horizontal line 20 px below the centre row (63.5)
+    assert abs(seg.start_zyx_vox[1] - 83.5) <= 1.5 and abs(seg.end_zyx_vox[1] - 83.5) <= 1.5
+
+
+def test_record_keys_json_and_map():
+    hu = np.stack([np.random.default_rng(0).normal(0, 10, (96, 96)), line_image(60.0, n=96)]).astype(np.float32)
+    res = analyse(hu)
+    rec = res.record
+    for key in ("index", "flagged", "dominant_angles_deg", "slice_index", "flagged_slices", "missing_wedge_deg"):
+        assert key in rec
+    assert len(rec["slice_index"]) == 2
+    assert rec["flagged_slices"] == [1]
+    assert rec["index"] == max(rec["slice_index"])
+    m = res.overlays.maps["streak_strength"]
+    assert m.shape == hu.shape and m.dtype == np.float32
+    assert m[0].max() == 0.0 and m[1].max() > 1.0
+    assert all(s.start_zyx_vox[0] == 1.0 for s in res.overlays.segments)
+    json.loads(dumps(rec))
+    assert res.findings[0].severity.value == "review"
+    assert "60" in res.findings[0].message and "slices 1" in res.findings[0].message
+
+
+def test_isotropic_noise_index_near_one():
+    res = analyse(np.random.default_rng(5).normal(0, 15, (4, 128, 128)).astype(np.float32))
+    assert not res.flagged
+    assert all(1.0 <= v < 1.6 for v in res.record["slice_index"])
+    assert res.findings[0].severity.value == "info"
+
+
+def test_tolerance_and_severity_settings():
+    img = line_image(45.0)
+    res = analyse(img, {"tolerance_index": 1000.0})
+    assert not res.flagged
+    res = analyse(img, {"severity": "fail"})
+    assert res.findings[0].severity.value == "fail"
+
+
+def test_unknown_setting_raises():
+    with pytest.raises(ProfileError):
+        analyse(line_image(0.0), {"no_such_key": 1})
+    with pytest.raises(ProfileError):
+        analyse(line_image(0.0), {"band_cycles_per_px": [0.3, 0.1]})
+
+
+def test_larger_slices_are_binned_and_mapped_back():
+    img = np.kron(line_image(30.0, n=160), np.ones((2, 2), dtype=np.float32))  # 320 px
+    res = analyse(img, {"screen_max_px": 160})
+    assert res.flagged
+    assert res.overlays.maps["streak_strength"].shape == (1, 320, 320)
+    seg = res.overlays.segments[0]
+    assert max(seg.start_zyx_vox[1:] + seg.end_zyx_vox[1:]) > 200  # full-resolution coordinates
+
+
+# ------------------------------------------------------------------------- bad input
+def test_constant_volume_not_applicable():
+    res = analyse(np.zeros((3, 64, 64), dtype=np.float32))
+    assert not res.applicable
+    assert "constant" in res.record["reason"]
+
+
+def test_some_constant_slices_skipped():
+    hu = np.stack([np.zeros((64, 64)), np.random.default_rng(1).normal(0, 10, (64, 64))]).astype(np.float32)
+    res = analyse(hu)
+    assert res.applicable
+    assert res.record["slice_index"][0] is None and res.record["slice_index"][1] is not None
+    assert any("constant" in f.message for f in res.findings)
+
+
+def test_all_nan_not_applicable():
+    res = analyse(np.full((2, 64, 64), np.nan, dtype=np.float32))
+    assert not res.applicable
+    assert "non-finite" in res.record["reason"]
+
+
+def test_partial_nan_is_masked():
+    img = line_image(90.0)
+    img[:20, :20] = np.nan
+    res = analyse(img)
+    assert res.applicable and res.flagged
+    assert np.isfinite(res.record["index"])
+    assert np.all(np.isfinite(res.overlays.maps["streak_strength"]))
+
+
+def test_tiny_slices_not_applicable():
+    res = analyse(np.random.default_rng(0).normal(size=(4, 20, 20)).astype(np.float32))
+    assert not res.applicable
+    assert "too small" in res.record["reason"]
+
+
+def test_single_slice_works():
+    res = analyse(line_image(150.0)[None])
+    assert res.applicable and res.flagged
+    assert len(res.record["slice_index"]) == 1
+
+
+def test_no_air_still_measures():
+    """An object filling the whole slice (no air): the analysis runs inside it."""
+    img = (40.0 + np.random.default_rng(2).normal(0, 10, (128, 128))).astype(np.float32)
+    vol = Volume.from_array(img[None])
+    regions = find_regions(vol)
+    assert not regions.air.any()
+    res = streaks.analyse(vol, regions)
+    assert res.applicable and not res.flagged
+    assert any("no air" in f.message for f in res.findings)
+
+
+def test_regions_none_accepted():
+    res = streaks.analyse(Volume.from_array(line_image(10.0)[None]), None)
+    assert res.flagged
+
+
+def test_describe_slices():
+    assert streaks.describe_slices([1, 2, 3, 7, 9, 10]) == "1-3, 7, 9-10"
