@@ -1,0 +1,215 @@
+"""Unit tests of the TTF analysis: settings, bad input, records, findings, overlays."""
+from __future__ import annotations
+
+import json
+import math
+
+import numpy as np
+import pytest
+from scipy import stats
+
+from reconaudit.checker.analyses import REGISTRY, get, ttf
+from reconaudit.checker.analyses._edges import bin_esf, condition_esf, first_crossing, lsf_window
+from reconaudit.checker.errors import ProfileError
+from reconaudit.checker.regions import find_regions
+from reconaudit.checker.results import Roi, dumps
+from reconaudit.checker.volume import Volume
+
+PX = 0.5
+
+
+def disc_stack(*, n=96, nz=8, radius_mm=6.0, s=0.6, contrast=100.0, noise=0.0, seed=0, cy=None, cx=None):
+    cy = n / 2 + 0.3 if cy is None else cy
+    cx = n / 2 - 0.2 if cx is None else cx
+    yy, xx = np.indices((n, n), dtype=float)
+    r = np.hypot((yy - cy) * PX, (xx - cx) * PX)
+    img = contrast * stats.ncx2.cdf((radius_mm / s) ** 2, 2, (r / s) ** 2)
+    st = np.repeat(img[None], nz, axis=0)
+    if noise:
+        st = st + np.random.default_rng(seed).normal(0, noise, st.shape)
+    return Volume.from_array(st.astype(np.float32), (1.0, PX, PX)), (cy, cx)
+
+
+def run(vol, **settings):
+    return ttf.analyse(vol, find_regions(vol), settings)
+
+
+# ------------------------------------------------------------------ interface
+def test_module_interface():
+    assert "ttf" in REGISTRY and get("ttf") is ttf.analyse
+    assert ttf.NAME == "ttf"
+    for key in ("f50_min_per_mm", "f50_max_per_mm", "max_f50_contrast_ratio", "min_contrast_to_noise"):
+        assert key in ttf.DEFAULTS and key in ttf.SOURCES
+
+
+def test_unknown_setting_raises():
+    vol, _ = disc_stack()
+    with pytest.raises(ProfileError, match="unknown setting"):
+        run(vol, nonsense=1)
+
+
+def test_bin_fraction_must_oversample_4x():
+    vol, _ = disc_stack()
+    with pytest.raises(ProfileError, match="4x"):
+        run(vol, bin_fraction=0.5)
+
+
+def test_bad_centre_raises():
+    vol, _ = disc_stack()
+    with pytest.raises(ProfileError, match="centres_zyx_vox"):
+        run(vol, centres_zyx_vox=[[1, 2]])
+
+
+# ------------------------------------------------------------------ helpers
+def test_bin_esf_counts_and_fills_empty_bins():
+    d = np.array([0.05, 0.05, 0.35])
+    v = np.array([1.0, 3.0, 5.0])
+    esf = bin_esf(d, v, bin_mm=0.1, lo_mm=0.0, hi_mm=0.4)
+    assert esf.counts.tolist() == [2, 0, 0, 1]
+    assert esf.esf_hu[0] == 2.0 and esf.esf_hu[3] == 5.0
+    assert esf.esf_hu[1] == pytest.approx(3.0) and esf.esf_hu[2] == pytest.approx(4.0)
+
+
+def test_monotone_conditioning_is_monotone_and_auto_keeps_overshoot():
+    x = np.linspace(-4, 4, 161)
+    noisy = stats.norm.cdf(x) * 100 + np.random.default_rng(0).normal(0, 3, x.size)
+    esf = bin_esf(x, noisy, bin_mm=0.05, lo_mm=-4.01, hi_mm=4.01)
+    fitted, used = condition_esf(esf, "monotone")
+    assert used == "monotone" and np.all(np.diff(fitted.esf_hu) >= -1e-9)
+    ringing = stats.norm.cdf(x) * 100 + 15 * np.exp(-((x - 2.0) ** 2) / 0.1)  # ~12 % overshoot
+    _, used = condition_esf(bin_esf(x, ringing, bin_mm=0.05, lo_mm=-4.01, hi_mm=4.01), "auto")
+    assert used == "none"
+
+
+def test_window_is_flat_in_the_core():
+    w = lsf_window(np.linspace(-5, 5, 101), 0.0, 5.0, taper=0.3)
+    assert np.all(w[np.abs(np.linspace(-5, 5, 101)) <= 3.5] == 1.0)
+    assert w[0] == 0.0 and w[-1] == 0.0
+
+
+def test_first_crossing_interpolates():
+    assert first_crossing(np.array([0.0, 1.0, 2.0]), np.array([1.0, 0.6, 0.2]), 0.5) == pytest.approx(1.25)
+    assert math.isnan(first_crossing(np.array([0.0, 1.0]), np.array([1.0, 0.9]), 0.5))
+
+
+# ------------------------------------------------------------------ records
+def test_record_of_a_user_centre():
+    vol, (cy, cx) = disc_stack(noise=2.0)
+    res = run(vol, centres_zyx_vox=[[4, round(cy), round(cx)]])
+    assert res.applicable
+    (e,) = res.record["edges"]
+    for key in ("contrast_hu", "contrast_to_noise", "f50_per_mm", "f10_per_mm", "frequency_per_mm", "ttf",
+                "center_mm", "slices", "reliable", "reason", "kind"):
+        assert key in e
+    assert e["kind"] == "circular" and e["source"] == "centre"
+    assert e["slices"] == [0, 7]
+    assert e["radius_mm"] == pytest.approx(6.0, abs=0.15)
+    assert e["frequency_per_mm"][0] == 0.0 and e["frequency_per_mm"][-1] <= 1.0 / (2 * PX) + 1e-9
+    assert e["ttf"][0] == pytest.approx(1.0)
+    assert e["center_mm"][0] == pytest.approx(cx * PX, abs=0.05)  # LPS x = column * spacing
+    assert e["center_mm"][1] == pytest.approx(cy * PX, abs=0.05)
+    assert e["reliable"] and e["reason"] == ""
+    assert "method" in res.record and "Cunningham" in res.record["method"]
+    json.loads(dumps(res.record))  # strict JSON
+
+
+def test_overlay_point_per_edge_with_label():
+    vol, (cy, cx) = disc_stack()
+    res = run(vol, centres_zyx_vox=[[4, cy, cx]])
+    (p,) = res.overlays.points
+    assert p.zyx_vox[1] == pytest.approx(cy, abs=0.05) and p.zyx_vox[2] == pytest.approx(cx, abs=0.05)
+    assert "HU" in p.label and "f50" in p.label
+    assert p.value == res.record["edges"][0]["f50_per_mm"]
+
+
+def test_roi_with_one_insert():
+    vol, (cy, cx) = disc_stack(n=112)
+    roi = {"slices": [0, 7], "yx0_vox": [int(cy) - 40, int(cx) - 40], "yx1_vox": [int(cy) + 40, int(cx) + 40]}
+    (e,) = run(vol, rois=[roi]).record["edges"]
+    assert e["source"] == "roi" and e["reliable"], e["reason"]
+    assert e["f50_per_mm"] == pytest.approx(0.18739 / 0.6, rel=0.02)
+
+
+def test_straight_edge_through_settings():
+    n = 80
+    yy, xx = np.indices((n, n), dtype=float)
+    d = ((xx - 40) * math.cos(math.radians(6)) - (yy - 40) * math.sin(math.radians(6))) * PX
+    st = np.repeat((200 * stats.norm.cdf(d / 0.5))[None], 8, axis=0)
+    vol = Volume.from_array(st.astype(np.float32), (1.0, PX, PX))
+    res = run(vol, straight_edge_rois=[{"slices": [0, 7], "yx0_vox": [0, 0], "yx1_vox": [80, 80]}])
+    (e,) = res.record["edges"]
+    assert e["kind"] == "straight" and e["angle_deg"] == pytest.approx(96.0, abs=0.1)
+    assert e["f50_per_mm"] == pytest.approx(0.18739 / 0.5, rel=0.02)
+
+
+# ------------------------------------------------------------------ bad input
+def test_insert_touching_roi_border_is_unreliable():
+    vol, (cy, cx) = disc_stack(n=112)
+    r_px = 6.0 / PX
+    roi = {"slices": [0, 7], "yx0_vox": [int(cy - r_px - 1), int(cx) - 40], "yx1_vox": [int(cy) + 40, int(cx) + 40]}
+    (e,) = run(vol, rois=[roi]).record["edges"]
+    assert not e["reliable"] and "touches the border" in e["reason"]
+
+
+def test_insert_at_the_image_border_is_unreliable():
+    vol, (cy, cx) = disc_stack(n=96, cx=14.0)
+    (e,) = run(vol, centres_zyx_vox=[[4, cy, 14]]).record["edges"]
+    assert not e["reliable"] and "touches the border" in e["reason"]
+
+
+def test_contrast_below_noise_is_unreliable():
+    vol, (cy, cx) = disc_stack(contrast=20.0, noise=25.0, seed=4)
+    res = run(vol, centres_zyx_vox=[[4, cy, cx]], radius_mm=6.0)
+    (e,) = res.record["edges"]
+    assert not e["reliable"] and "contrast-to-noise" in e["reason"]
+    assert any("not reliable" in f.message for f in res.findings)
+
+
+def test_single_slice_is_unreliable_but_measured():
+    vol, (cy, cx) = disc_stack(nz=1)
+    (e,) = run(vol, centres_zyx_vox=[[0, cy, cx]]).record["edges"]
+    assert not e["reliable"] and "1 slice" in e["reason"]
+    assert e["f50_per_mm"] == pytest.approx(0.18739 / 0.6, rel=0.03)
+
+
+def test_nothing_to_measure_is_not_applicable():
+    vol = Volume.from_array(np.zeros((3, 64, 64), np.float32), (1.0, PX, PX))
+    res = run(vol, skin_edge="never")
+    assert not res.applicable and "no edge" in res.record["reason"]
+
+
+def test_edge_parallel_to_the_grid_is_unreliable():
+    st = np.zeros((8, 64, 64), np.float32)
+    st[:, :, 32:] = 100.0
+    vol = Volume.from_array(st, (1.0, PX, PX))
+    e = ttf.straight_edge_ttf(vol, Roi(0, 7, 0, 0, 64, 64)).record
+    assert not e["reliable"] and "pixel grid" in e["reason"]
+
+
+# ------------------------------------------------------------------ findings
+def test_f50_limits_raise_review_findings():
+    vol, (cy, cx) = disc_stack()
+    res = run(vol, centres_zyx_vox=[[4, cy, cx]], f50_min_per_mm=0.5)
+    assert res.flagged and any("below the limit" in f.message and f.severity.value == "review" for f in res.findings)
+    res = run(vol, centres_zyx_vox=[[4, cy, cx]], f50_max_per_mm=0.1)
+    assert any("above the limit" in f.message for f in res.findings)
+    res = run(vol, centres_zyx_vox=[[4, cy, cx]])
+    assert not res.flagged and res.findings == []
+
+
+def test_skin_edge_keeps_away_from_the_table():
+    """A disc 'patient' on a flat table: the outline next to the table is left out."""
+    n = 140
+    yy, xx = np.indices((n, n), dtype=float)
+    img = np.full((n, n), -1000.0)
+    img[np.hypot(yy - 60, xx - 70) < 45] = 0.0
+    img[108:114, 10:130] = 300.0  # table below the body
+    img = np.asarray(__import__("scipy").ndimage.gaussian_filter(img, 1.2))
+    st = np.repeat(img[None], 6, axis=0) + np.random.default_rng(2).normal(0, 5, (6, n, n))
+    vol = Volume.from_array(st.astype(np.float32), (1.0, 1.0, 1.0))
+    regions = find_regions(vol)
+    assert regions.table.any()
+    m = ttf.skin_edge_ttf(vol, regions, {"table_clearance_mm": 8.0})
+    assert m is not None and m.record["kind"] == "skin"
+    assert m.record["contrast_hu"] == pytest.approx(1000, rel=0.05)
+    assert m.record["f50_per_mm"] == pytest.approx(0.18739 / 1.2, rel=0.08)
