@@ -252,7 +252,11 @@ def record_rows(analysis: str, record: dict[str, Any]) -> list[TableRow]:
                 continue
             if key == "applicable" and value is True:
                 continue
-            rows.append(TableRow(analysis, key, format_value(value)))
+            text = format_value(value)
+            if len(text) > 16:  # long text reads better in the wide column
+                rows.append(TableRow(analysis, key, "", text))
+            else:
+                rows.append(TableRow(analysis, key, text))
     return rows
 
 

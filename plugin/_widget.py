@@ -222,9 +222,10 @@ class AuditBench(QWidget):
         self.table.setHorizontalScrollBarPolicy(Qt.ScrollBarPolicy.ScrollBarAlwaysOff)
         header = self.table.horizontalHeader()
         modes = (QHeaderView.ResizeMode.ResizeToContents, QHeaderView.ResizeMode.ResizeToContents,
-                 QHeaderView.ResizeMode.ResizeToContents, QHeaderView.ResizeMode.Stretch)
+                 QHeaderView.ResizeMode.Interactive, QHeaderView.ResizeMode.Stretch)
         for col, mode in enumerate(modes):
             header.setSectionResizeMode(col, mode)
+        header.resizeSection(2, 96)
         self.table.cellClicked.connect(self.go_to_row)
         self.table.setMinimumHeight(200)
         self.tabs.addTab(self.table, "Findings and values")
@@ -556,7 +557,7 @@ class AuditBench(QWidget):
         self._rows = [row for view in outcome.views.values() for row in view.rows]
         self.table.setRowCount(len(self._rows))
         for r, row in enumerate(self._rows):
-            what = row.note if row.severity else (f"{row.item} ({row.note})" if row.note else row.item)
+            what = row.note if row.severity else (f"{row.item}: {row.note}" if row.note else row.item)
             value = row.severity if row.severity else row.value
             cells = (row.analysis, "" if row.slice_index is None else str(row.slice_index), value, what)
             for c, text in enumerate(cells):
