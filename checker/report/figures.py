@@ -469,7 +469,8 @@ def draw_streak_profile(streaks: Mapping[str, Any], tolerances: Mapping[str, Any
     ax.set_title("Streak index per slice", fontsize=10)
     ax.set_xlabel("slice (z index)")
     ax.set_ylabel("streak index")
-    ax.set_ylim(bottom=0)
+    top = max(float(np.nanmax(per_slice)), tol or 0.0)
+    ax.set_ylim(0, 1.15 * top if top > 0 else 1.0)
     ax.grid(alpha=0.3)
     ax.legend(fontsize=7)
     fig.tight_layout()
@@ -581,8 +582,11 @@ def draw_trend_chart(
     if v.size:
         ax.plot(x, v, color="#b8bec8", lw=0.8, zorder=1)
         xs = np.asarray(x, dtype=object)
-        ax.plot(xs[base], v[base], ls="none", marker="o", color=COLOURS["current"], ms=5, label=f"baseline ({rule})")
-        ax.plot(xs[~base], v[~base], ls="none", marker="o", mfc="white", mec=COLOURS["current"], ms=5, label="later checks")
+        if base.any():
+            ax.plot(xs[base], v[base], ls="none", marker="o", color=COLOURS["current"], ms=5, label=f"baseline ({rule})")
+        if (~base).any():
+            ax.plot(xs[~base], v[~base], ls="none", marker="o", mfc="white", mec=COLOURS["current"], ms=5,
+                    label="later checks")
     if limits is not None:
         mean, lo, hi = limits
         ax.axhline(mean, color=COLOURS["current"], lw=1.0, label=f"mean {mean:.4g}")
