@@ -182,17 +182,18 @@ def find_rod_inserts(volume: Volume, regions: Regions, settings: dict[str, Any] 
     Common practice, no source (threshold, connected components, disc test).
     """
     s = resolve_settings(settings)
-    phantom, factor = _phantom_of(volume, regions)
+    phantom, factor, step = _phantom_of(volume, regions)
     if not phantom.found or not phantom.inserts.any():
         return []
     px = 0.5 * (volume.spacing_mm[1] + volume.spacing_mm[2])
     inserts: list[Insert] = []
-    for z0, z1 in _runs_of(phantom.inserts):
-        mid = (z0 + z1) // 2
-        centre = phantom.centre_yx_vox[mid] * factor
-        radius = phantom.radius_vox[mid] * factor
-        mean = volume.hu[z0 : z1 + 1].mean(axis=0)
-        smooth = ndimage.gaussian_filter(mean, 1.0 / px) - float(np.nanmedian(phantom.median_hu[z0 : z1 + 1]))
+    for k0, k1 in _runs_of(phantom.inserts):
+        kmid = (k0 + k1) // 2
+        z0, z1, mid = k0 * step, min(k1 * step, volume.shape[0] - 1), kmid * step
+        centre = phantom.centre_yx_vox[kmid] * factor
+        radius = phantom.radius_vox[kmid] * factor
+        mean = volume.hu[z0 : z1 + 1 : max(1, (z1 - z0 + 1) // 8)].mean(axis=0)
+        smooth = ndimage.gaussian_filter(mean, 1.0 / px) - float(np.nanmedian(phantom.median_hu[k0 : k1 + 1]))
         inner = _disc(mean.shape, centre, 0.92 * radius)
         for sign in (1.0, -1.0):
             lab, _ = ndimage.label((sign * smooth > float(s["min_contrast_hu"])) & inner)
@@ -206,21 +207,28 @@ def find_rod_inserts(volume: Volume, regions: Regions, settings: dict[str, Any] 
     return inserts
 
 
-def _phantom_of(volume: Volume, regions: Regions) -> tuple[Any, int]:
-    """``find_phantom`` on a copy decimated to at most 256 pixels a side; the factor."""
+def _phantom_of(volume: Volume, regions: Regions) -> tuple[Any, int, int]:
+    """``find_phantom`` on a copy decimated to at most 256 pixels a side and about 32
+    slices (rods are long; their exact slices are found later at full resolution).
+
+    Returns the phantom, the in-plane factor and the slice step.
+    """
     factor = max(1, int(math.ceil(max(volume.shape[1:]) / 256)))
-    if factor == 1:
-        return find_phantom(volume, regions), 1
+    step = max(1, int(math.ceil(volume.shape[0] / 32)))
+    if factor == 1 and step == 1:
+        return find_phantom(volume, regions), 1, 1
     dz, dy, dx = volume.spacing_mm
-    small = Volume.from_array(volume.hu[:, ::factor, ::factor], (dz, dy * factor, dx * factor))
+    zf, yf = slice(None, None, step), slice(None, None, factor)
+    small = Volume.from_array(volume.hu[zf, yf, yf], (dz * step, dy * factor, dx * factor))
+    centroid = regions.body_centroid_zyx_vox
     small_regions = Regions(
-        fov=regions.fov[::factor, ::factor], body=regions.body[:, ::factor, ::factor],
-        table=regions.table[:, ::factor, ::factor], air=regions.air[:, ::factor, ::factor],
+        fov=regions.fov[yf, yf], body=regions.body[zf, yf, yf],
+        table=regions.table[zf, yf, yf], air=regions.air[zf, yf, yf],
         fov_center_yx_vox=tuple(c / factor for c in regions.fov_center_yx_vox),  # type: ignore[arg-type]
         fov_radius_vox=regions.fov_radius_vox / factor, fov_is_circle=regions.fov_is_circle,
-        body_centroid_zyx_vox=regions.body_centroid_zyx_vox,
+        body_centroid_zyx_vox=None if centroid is None else (centroid[0] / step, centroid[1] / factor, centroid[2] / factor),
     )
-    return find_phantom(small, small_regions), factor
+    return find_phantom(small, small_regions), factor, step
 
 
 def _runs_of(flags: np.ndarray) -> list[tuple[int, int]]:

@@ -1,0 +1,104 @@
+"""Time of the TTF analysis on a large phantom series, as a ratio to the time of reading
+that series (goal: <= 0.1x). Prints, never asserts.
+
+The series is invented: a 200 mm water cylinder in air, 512 x 512 pixels of 0.45 mm,
+``--slices`` slices of 1.25 mm; the first third carries five 12 mm rods (-1000, -100,
++120, +340, +900 HU), the rest is uniform; Gaussian blur of 0.6 mm and 10 HU white noise.
+The read limit is ``benchmarks/harness.py``'s ``read_limit`` when it is there; otherwise
+the series is written as CT DICOM (``reconaudit.checker.dicom_write``) into a temporary
+folder and timed while pydicom reads every file and builds the HU array.
+
+Usage: ``python benchmarks/bench_ttf.py [--slices 120]``
+"""
+from __future__ import annotations
+
+import argparse
+import sys
+import tempfile
+import time
+from pathlib import Path
+
+import numpy as np
+from scipy import ndimage
+
+from reconaudit.checker.analyses import ttf
+from reconaudit.checker.regions import find_regions
+from reconaudit.checker.volume import Volume
+
+RODS_HU = (-1000.0, -100.0, 120.0, 340.0, 900.0)
+
+
+def make_phantom(nz: int, n: int = 512, pixel_mm: float = 0.45, seed: int = 11) -> Volume:
+    """Invented water phantom with a rod module and a uniform module."""
+    yy, xx = np.mgrid[:n, :n].astype(float)
+    c = (n - 1) / 2.0
+    water = np.where(np.hypot(yy - c, xx - c) <= 100.0 / pixel_mm, 0.0, -1000.0)
+    rods = water.copy()
+    for k, hu in enumerate(RODS_HU):
+        a = 2 * np.pi * k / len(RODS_HU)
+        cy, cx = c + 55.0 / pixel_mm * np.sin(a), c + 55.0 / pixel_mm * np.cos(a)
+        rods[np.hypot(yy - cy, xx - cx) <= 6.0 / pixel_mm] = hu
+    sigma = 0.6 / pixel_mm
+    water, rods = ndimage.gaussian_filter(water, sigma), ndimage.gaussian_filter(rods, sigma)
+    rng = np.random.default_rng(seed)
+    hu = np.empty((nz, n, n), dtype=np.float32)
+    for z in range(nz):
+        hu[z] = (rods if z < nz // 3 else water) + rng.normal(0.0, 10.0, (n, n))
+    return Volume.from_array(hu, spacing_mm=(1.25, pixel_mm, pixel_mm))
+
+
+def read_time_s(volume: Volume) -> tuple[float, str]:
+    """Seconds to read the series; from the harness when available."""
+    here = Path(__file__).resolve().parent
+    sys.path.insert(0, str(here))
+    try:
+        import harness  # type: ignore[import-not-found]
+
+        if hasattr(harness, "read_limit"):
+            return float(harness.read_limit(volume)), "benchmarks/harness.py read_limit"
+    except Exception as exc:  # the harness is optional; report and fall back
+        print(f"harness read_limit unavailable ({exc!r}); timing a DICOM read instead")
+    return _dicom_read_time(volume), "pydicom read of the written series"
+
+
+def _dicom_read_time(volume: Volume) -> float:
+    import pydicom
+
+    from reconaudit.checker.dicom_write import write_ct_series
+
+    with tempfile.TemporaryDirectory() as tmp:
+        files = write_ct_series(volume, tmp, series_description="BENCH TTF RODS")
+        t0 = time.perf_counter()
+        slices = []
+        for f in files:
+            ds = pydicom.dcmread(f)
+            slices.append(ds.pixel_array.astype(np.float32) * float(ds.RescaleSlope) + float(ds.RescaleIntercept))
+        np.stack(slices)
+        return time.perf_counter() - t0
+
+
+def main() -> None:
+    parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    parser.add_argument("--slices", type=int, default=120)
+    args = parser.parse_args()
+    vol = make_phantom(args.slices)
+    limit, how = read_time_s(vol)
+    t0 = time.perf_counter()
+    regions = find_regions(vol)
+    t_regions = time.perf_counter() - t0
+    t0 = time.perf_counter()
+    inserts = ttf.find_rod_inserts(vol, regions)
+    t_find = time.perf_counter() - t0
+    t0 = time.perf_counter()
+    res = ttf.analyse(vol, regions)
+    t_all = time.perf_counter() - t0
+    print(f"series {vol.shape} (z, y, x); read limit {limit:.2f} s ({how})")
+    print(f"  shared regions: {t_regions:.2f} s = {t_regions / limit:.3f} x read (not counted below)")
+    print(f"  insert finding alone: {t_find:.3f} s = {t_find / limit:.3f} x read ({len(inserts)} rods)")
+    print(f"  ttf analysis (finding + measuring): {t_all:.3f} s = {t_all / limit:.3f} x read (goal <= 0.1)")
+    for e in res.record.get("edges", []):
+        print(f"    {e['label']}: slices {e['slices']}, f10 {e['f10_per_mm']}, reliable {e['reliable']}")
+
+
+if __name__ == "__main__":
+    main()
