@@ -240,8 +240,12 @@ def bin_slice(image: np.ndarray, factor: int) -> np.ndarray:
     if factor == 1:
         return image
     ny, nx = (n // factor * factor for n in image.shape)
-    view = image[:ny, :nx].reshape(ny // factor, factor, nx // factor, factor)
-    return view.mean(axis=(1, 3), dtype=np.float32)
+    out = np.zeros((ny // factor, nx // factor), dtype=np.float32)
+    for dy in range(factor):
+        for dx in range(factor):
+            out += image[dy:ny:factor, dx:nx:factor]
+    out *= np.float32(1.0 / (factor * factor))
+    return out
 
 
 def bin_mask(mask: np.ndarray, factor: int) -> np.ndarray:
@@ -249,7 +253,11 @@ def bin_mask(mask: np.ndarray, factor: int) -> np.ndarray:
     if factor == 1:
         return mask
     ny, nx = (n // factor * factor for n in mask.shape)
-    return mask[:ny, :nx].reshape(ny // factor, factor, nx // factor, factor).any(axis=(1, 3))
+    out = np.zeros((ny // factor, nx // factor), dtype=bool)
+    for dy in range(factor):
+        for dx in range(factor):
+            out |= mask[dy:ny:factor, dx:nx:factor]
+    return out
 
 
 def strong_edges(smoothed: np.ndarray, step_hu: float, sigma_px: float) -> np.ndarray:
@@ -283,7 +291,7 @@ def soft_weight(bad: np.ndarray, reach_px: float) -> np.ndarray:
     """
     if not bad.any():
         return np.ones(bad.shape, dtype=np.float32)
-    blur = ndimage.gaussian_filter(bad.astype(np.float32), 0.5 * reach_px, truncate=3.0)
+    blur = ndimage.gaussian_filter(bad.astype(np.float32), 0.5 * reach_px, truncate=2.5)
     w = np.clip(1.0 - blur * np.float32(20.0), 0.0, 1.0)
     return w * w
 
@@ -588,9 +596,9 @@ def allowed_mask(regions: Regions | None, z: int, factor: int, shape_b: tuple[in
     allowed &= ~bin_mask(~regions.fov, factor)
     if regions.table[z].any():
         allowed &= ~grow(bin_mask(regions.table[z], factor), 2)
-    body = regions.body[z]
+    body = bin_mask(regions.body[z], factor)
     if body.any():
-        allowed &= ~bin_mask(body ^ ndimage.binary_erosion(body), factor)
+        allowed &= ~(body ^ ndimage.binary_erosion(body))
     return allowed
 
 

@@ -1,0 +1,91 @@
+"""Streak analysis timings: per-slice screen of a 512 x 512 slice, and a 512 x 512 x 400
+volume (printed, never asserted).
+
+If ``benchmarks/harness.py`` provides ``read_limit`` (the time to read and build the HU
+array of such a series), the whole-analysis time is printed as a ratio to it (target
+<= 0.25); otherwise absolute times are printed.
+
+Run: python benchmarks/bench_streaks.py [--slices 400]
+"""
+from __future__ import annotations
+
+import argparse
+import statistics
+import sys
+import time
+from pathlib import Path
+
+import numpy as np
+
+from reconaudit.checker.analyses import streaks
+from reconaudit.checker.regions import find_regions
+from reconaudit.checker.volume import Volume
+
+
+def synthetic_volume(nz: int, n: int = 512, seed: int = 0) -> Volume:
+    """An invented elliptical body (40 HU) in air with noise, inside a padded FOV circle."""
+    rng = np.random.default_rng(seed)
+    yy, xx = np.mgrid[0:n, 0:n].astype(np.float32)
+    c = (n - 1) / 2.0
+    body = ((xx - c) / (0.36 * n)) ** 2 + ((yy - c) / (0.27 * n)) ** 2 <= 1
+    fov = (xx - c) ** 2 + (yy - c) ** 2 <= (0.49 * n) ** 2
+    base = np.where(body, 40.0, -1000.0).astype(np.float32)
+    hu = np.empty((nz, n, n), dtype=np.float32)
+    for z in range(nz):
+        hu[z] = base + rng.normal(0.0, 15.0, (n, n)).astype(np.float32)
+    hu[:, ~fov] = -3024.0
+    return Volume.from_array(hu, (1.0, 0.7, 0.7), padding_mask=~fov)
+
+
+def bench_slice_screen(vol: Volume, regions, repeats: int = 30) -> float:
+    cfg = streaks.resolve_settings(None)
+    f = streaks.screen_factor(vol.shape[1:], int(cfg["screen_max_px"]))
+    shape_b = (vol.shape[1] // f, vol.shape[2] // f)
+    bins = streaks.spectral_bins(shape_b, tuple(cfg["band_cycles_per_px"]), float(cfg["angle_bin_deg"]))
+    allowed = streaks.allowed_mask(regions, 0, f, shape_b, cfg)
+    times = []
+    for i in range(repeats):
+        t0 = time.perf_counter()
+        tex = streaks.slice_texture(streaks.bin_slice(vol.hu[i % vol.shape[0]], f), allowed, cfg)
+        streaks.streak_index_of_profile(streaks.angular_profile(streaks.power(tex.spectrum), bins))
+        times.append(time.perf_counter() - t0)
+    return statistics.median(times)
+
+
+def read_limit_s(nz: int) -> float | None:
+    sys.path.insert(0, str(Path(__file__).parent))
+    try:
+        import harness  # type: ignore
+    except ImportError:
+        return None
+    fn = getattr(harness, "read_limit", None)
+    if fn is None:
+        return None
+    try:
+        return float(fn(nz) if callable(fn) else fn)
+    except TypeError:
+        return float(fn())
+
+
+def main() -> None:
+    parser = argparse.ArgumentParser(description=__doc__)
+    parser.add_argument("--slices", type=int, default=400)
+    args = parser.parse_args()
+    vol = synthetic_volume(args.slices)
+    regions = find_regions(vol)
+    per_slice = bench_slice_screen(vol, regions)
+    print(f"per-slice screen, 512 x 512: median {per_slice * 1e3:.2f} ms (target <= 10 ms)")
+    t0 = time.perf_counter()
+    res = streaks.analyse(vol, regions)
+    total = time.perf_counter() - t0
+    print(f"whole analysis, 512 x 512 x {args.slices}: {total:.2f} s ({total / args.slices * 1e3:.2f} ms/slice), "
+          f"index {res.record['index']:.2f}, flagged {res.record['flagged']}")
+    limit = read_limit_s(args.slices)
+    if limit:
+        print(f"read limit {limit:.2f} s -> ratio {total / limit:.3f} (target <= 0.25)")
+    else:
+        print("benchmarks/harness.py read_limit not available; absolute times only")
+
+
+if __name__ == "__main__":
+    main()
