@@ -32,6 +32,7 @@ Christianson O. et al., AJR 205(1), 2015 (global noise level).
 from __future__ import annotations
 
 from dataclasses import dataclass
+from functools import lru_cache
 from typing import Any, Sequence
 
 import numpy as np
@@ -125,10 +126,18 @@ def detrend_rois(stack: np.ndarray, method: str = "poly2") -> np.ndarray:
     if method == "mean":
         return stack - stack.mean(axis=(-2, -1), keepdims=True)
     n, ny, nx = stack.shape
-    a = _design_matrix(ny, nx, 1 if method == "poly1" else 2)
+    a, a_pinv = _fit_operator(ny, nx, 1 if method == "poly1" else 2)
     flat = stack.reshape(n, -1).T
-    coef = np.linalg.lstsq(a, flat, rcond=None)[0]
-    return (flat - a @ coef).T.reshape(stack.shape)
+    # einsum, not BLAS: these thin products stall on a loaded machine's BLAS threads
+    coef = np.einsum("pk,kn->pn", a_pinv, flat)
+    return (flat - np.einsum("kp,pn->kn", a, coef)).T.reshape(stack.shape)
+
+
+@lru_cache(maxsize=8)
+def _fit_operator(ny: int, nx: int, order: int) -> tuple[np.ndarray, np.ndarray]:
+    """Design matrix and its pseudo-inverse (least-squares fit operator)."""
+    a = _design_matrix(ny, nx, order)
+    return a, np.linalg.pinv(a)
 
 
 def nps_2d(
