@@ -130,6 +130,11 @@ def _file_meta(sop_class: UID, sop_instance: UID) -> FileMetaDataset:
     return meta
 
 
+def _fit(text: str, limit: int) -> str:
+    """``text`` cut to the maximum length of its VR (LO 64, SH 16; DICOM PS3.5 6.2)."""
+    return str(text)[:limit]
+
+
 def _common_modules(ds: Dataset, p: dict[str, Any]) -> None:
     """Patient, study, series, frame of reference and equipment modules."""
     ds.SpecificCharacterSet = "ISO_IR 100"
@@ -146,19 +151,19 @@ def _common_modules(ds: Dataset, p: dict[str, Any]) -> None:
     ds.Modality = "CT"
     ds.SeriesInstanceUID = p["series_uid"]
     ds.SeriesNumber = int(p["series_number"])
-    ds.SeriesDescription = p["series_description"]
+    ds.SeriesDescription = _fit(p["series_description"], 64)
     ds.PatientPosition = "HFS"
     ds.FrameOfReferenceUID = p["frame_uid"]
     ds.PositionReferenceIndicator = ""
     ds.Manufacturer = "reconaudit synthetic"
-    ds.ManufacturerModelName = p["manufacturer_model_name"]
+    ds.ManufacturerModelName = _fit(p["manufacturer_model_name"], 64)
     if p["institution_name"] is not None:
-        ds.InstitutionName = p["institution_name"]
+        ds.InstitutionName = _fit(p["institution_name"], 64)
     ds.ContentDate = DEMO_STUDY_DATE
     ds.ContentTime = DEMO_STUDY_TIME
     ds.AcquisitionNumber = 1
     ds.KVP = _ds(float(p["kvp"]))
-    ds.ConvolutionKernel = p["convolution_kernel"]
+    ds.ConvolutionKernel = _fit(p["convolution_kernel"], 16)
 
 
 def _image_pixel_module(ds: Dataset, rows: int, cols: int, pixel_representation: int) -> None:
@@ -251,6 +256,12 @@ def write_ct_series(
         HU = stored * slope + intercept. Stored values are int16 when they fit, else uint16.
     shuffle_names : bool
         Give the files names whose alphabetical order is unrelated to slice order.
+
+    Notes
+    -----
+    Texts longer than their VR allows are cut to fit (SeriesDescription,
+    ManufacturerModelName, InstitutionName: LO, 64 characters; ConvolutionKernel: SH,
+    16 characters), so every written file stays valid.
 
     Returns
     -------

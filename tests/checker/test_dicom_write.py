@@ -120,3 +120,11 @@ def test_enhanced_ct_frames_and_functional_groups(tmp_path):
         np.testing.assert_array_equal(frames[k] * float(tr.RescaleSlope) + float(tr.RescaleIntercept), vol.hu[k])
     shared = ds.SharedFunctionalGroupsSequence[0]
     assert [float(v) for v in shared.PixelMeasuresSequence[0].PixelSpacing] == [0.7, 0.9]
+
+
+def test_long_texts_are_cut_to_their_vr_length(tmp_path):
+    paths = write_ct_series(Volume.from_array(np.zeros((1, 2, 2))), tmp_path, series_description="d" * 80,
+                            convolution_kernel="K" * 20)
+    ds = pydicom.dcmread(paths[0])
+    assert ds.SeriesDescription == "d" * 64
+    assert ds.ConvolutionKernel == "K" * 16
