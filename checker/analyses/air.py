@@ -298,6 +298,8 @@ def _filtered_scale(
 ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     """Normalised convolution: filtered contrast, its white-noise growth factor, validity.
 
+    ``sums`` is filtered in place (it becomes the contrast); ``counts`` is left as is.
+
     References
     ----------
     .. [1] Knutsson H, Westin C-F. Normalized and differential convolution. CVPR 1993.
@@ -305,12 +307,16 @@ def _filtered_scale(
     gc = ndimage.gaussian_filter(counts, sigma_vox, mode="reflect", truncate=3.0)
     g2c = ndimage.gaussian_filter(counts, tuple(s / math.sqrt(2.0) for s in sigma_vox), mode="reflect", truncate=3.0)
     valid = (counts >= 0.5 * cell) & (gc >= 0.5 * cell)
-    contrast = ndimage.gaussian_filter(sums, sigma_vox, mode="reflect", truncate=3.0)
-    np.divide(contrast, np.maximum(gc, 1e-6), out=contrast)
+    contrast = ndimage.gaussian_filter(sums, sigma_vox, output=sums, mode="reflect", truncate=3.0)
+    contrast = sums
+    np.maximum(gc, 1e-6, out=gc)
+    np.divide(contrast, gc, out=contrast)
     # var(weighted mean) relative to the interior: N * (G'*C) / (G*C)^2 (white noise)
     growth = g2c
     np.multiply(growth, cell, out=growth)
-    np.divide(growth, np.maximum(gc * gc, 1e-12), out=growth)
+    np.divide(growth, gc, out=growth)
+    np.divide(growth, gc, out=growth)
+    del gc
     np.sqrt(growth, out=growth)
     np.maximum(growth, 1.0, out=growth)
     return contrast, growth, valid
@@ -395,32 +401,44 @@ def matched_filter_scales(
     s: dict[str, Any],
     noise_floor_hu: float,
 ) -> list[ScaleMap]:
-    """Filtered contrast and significance of the air at every scale (see the module)."""
+    """Filtered contrast and significance of the air at every scale (see the module).
+
+    The block sums of every grid are made first, from the finest; the finest is then
+    filtered in place, so at most four arrays of the finest grid exist at once.
+    """
     nz = hu.shape[0]
     factors = level_factors(spacing_mm, s["scales_mm"], nz)
     base = factors[0]
     sums0, counts0 = _masked_block_sums(hu, air, air_mean_hu, base)
+    grids = []
+    for sigma_mm, f in zip(s["scales_mm"], factors):
+        rel = tuple(max(1, a // b) for a, b in zip(f, base))
+        if rel == (1, 1, 1):
+            grids.append((sigma_mm, rel, sums0, counts0))
+        else:
+            grids.append((sigma_mm, rel, block_sum(sums0, rel), block_sum(counts0, rel)))
+    del sums0, counts0
     dims = 3 if nz > 1 else 2
     alpha = float(s["false_alarms_per_series"]) / len(factors)
     maps = []
-    for sigma_mm, f in zip(s["scales_mm"], factors):
-        rel = tuple(max(1, a // b) for a, b in zip(f, base))
-        sums = block_sum(sums0, rel) if rel != (1, 1, 1) else sums0
-        counts = block_sum(counts0, rel) if rel != (1, 1, 1) else counts0
+    while grids:
+        sigma_mm, rel, sums, counts = grids.pop(0)
         grid = tuple(b * r * d for b, r, d in zip(base, rel, spacing_mm))
         sigma_vox = tuple(0.0 if (ax == 0 and nz == 1) else sigma_mm / g for ax, g in enumerate(grid))
         cell = float(np.prod([b * r for b, r in zip(base, rel)]))
         contrast, growth, valid = _filtered_scale(sums, counts, cell, sigma_vox)
+        del sums, counts
         if valid.sum() < 20:
             continue
-        u = contrast / growth
-        med, sd = _robust_sd(u[valid])
+        z = np.divide(contrast, growth, out=growth)  # noise-normalised contrast, in place
+        med, sd = _robust_sd(z[valid])
         sd = max(sd, noise_floor_hu / math.sqrt(cell))
-        z = (u - med) / sd
+        z -= np.float32(med)
+        z /= np.float32(sd)
         z[~valid] = 0.0
         resels = _smoothness_resels(z, valid)
         t = max(float(s["min_high_sigma"]), threshold_for_false_alarms(alpha, resels, dims))
-        maps.append(ScaleMap(sigma_mm, tuple(b * r for b, r in zip(base, rel)), contrast, z.astype(np.float32), valid, sd, t, resels))
+        maps.append(ScaleMap(sigma_mm, tuple(b * r for b, r in zip(base, rel)), contrast, z, valid, sd, t, resels))
     return maps
 
 
@@ -522,13 +540,26 @@ def combine_scales(
 
 
 def full_resolution_labels(lab0: np.ndarray, factors: tuple[int, int, int], air: np.ndarray) -> tuple[np.ndarray, int]:
-    """Carry the label map of the finest grid to the volume's voxels (inside the air)."""
+    """Carry the label map of the finest grid to the volume's voxels (inside the air).
+
+    Filled slab by slab, so the only full-size array made is the result.
+    """
     n = int(lab0.max()) if lab0.size else 0
+    out = np.zeros(air.shape, dtype=np.int32)
     if n == 0:
-        return np.zeros(air.shape, dtype=np.int32), 0
-    labels = _upsample(lab0, factors, air.shape)
-    labels[~air] = 0
-    return labels, n
+        return out, 0
+    fz = factors[0]
+    _, ny, nx = air.shape
+    for k in range(lab0.shape[0]):
+        z0, z1 = k * fz, min(air.shape[0], (k + 1) * fz)
+        if z0 >= z1:
+            break
+        if not lab0[k].any():
+            continue
+        plane = _upsample(lab0[k : k + 1], (1,) + tuple(factors[1:]), (1, ny, nx))[0]
+        out[z0:z1] = plane
+        out[z0:z1][~air[z0:z1]] = 0
+    return out, n
 
 
 # ---------------------------------------------------------------- classification
