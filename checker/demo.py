@@ -8,7 +8,7 @@ those series from scratch, deterministically (fixed seeds):
 1. a phantom is drawn slice by slice as a map of linear attenuation (2x2 supersampled,
    so edges carry partial-volume pixels);
 2. its parallel-beam projections are computed with scikit-image's ``radon``; small
-   extra objects (rod-free metal, structures in the air, a lesion) are added to the
+   extra objects (metal implants, structures in the air, a lesion) are added to the
    sinogram from the analytic projection of an ellipse;
 3. quantum noise: detector counts are Poisson with mean ``I0 exp(-p)``, and the measured
    line integral is ``-log(counts / I0)`` (counts below one are set to one, as a
