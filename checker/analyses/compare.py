@@ -206,15 +206,14 @@ def structure_differences(test: Volume, reference: Volume, test_regions: Regions
     edge = max(1, int(math.ceil(3 * max(sig[1:]))))
     border = ~ndimage.binary_erosion(ref_regions.fov, iterations=edge, border_value=0)
     exclude |= border[None]
-    inside = ref_regions.body & test_regions.body & ~exclude
-    sd = _robust_sd(diff[inside]) if inside.any() else _robust_sd(diff[~exclude])
-    stats = {"smooth_mm": s["smooth_mm"], "sd_diff_hu": sd, "seed_hu": s["seed_sigma"] * sd,
-             "grow_hu": s["grow_sigma"] * sd}
+    zmap, sd = _difference_z_scores(diff, ref_regions.body & test_regions.body, exclude)
+    stats = {"smooth_mm": s["smooth_mm"], "sd_diff_hu": sd, "seed_sigma": s["seed_sigma"],
+             "grow_sigma": s["grow_sigma"], "noise_model": "robust SD per slice, inside and outside the body"}
     labels = np.zeros(reference.shape, dtype=np.int32)
     if not math.isfinite(sd) or sd <= 0:
         return {"statistics": stats, "only_in_test": [], "only_in_reference": []}, labels
-    strong = (np.abs(diff) > s["seed_sigma"] * sd) & ~exclude
-    weak = (np.abs(diff) > s["grow_sigma"] * sd) & ~exclude
+    strong = (np.abs(zmap) > s["seed_sigma"]) & ~exclude
+    weak = (np.abs(zmap) > s["grow_sigma"]) & ~exclude
     lab, n = ndimage.label(weak)
     keep = np.unique(lab[strong])
     keep = keep[keep > 0]
@@ -244,6 +243,28 @@ def structure_differences(test: Volume, reference: Volume, test_regions: Regions
         labels[m] = next_id
         next_id += 1
     return {"statistics": stats, **found}, labels
+
+
+def _difference_z_scores(diff: np.ndarray, body: np.ndarray, exclude: np.ndarray) -> tuple[np.ndarray, float]:
+    """``diff`` divided by its robust SD, estimated per slice inside and outside the body.
+
+    The noise of a smoothed difference differs between the body and the air and rises
+    in the first and last slices (the filter sees fewer independent voxels there), so
+    one global SD would give false alarms there. Returns the z-score volume and the
+    median SD (HU) for the record.
+    """
+    z = np.zeros(diff.shape, dtype=np.float32)
+    sds = []
+    for k in range(diff.shape[0]):
+        for part in (body[k], ~body[k]):
+            use = part & ~exclude[k]
+            if use.sum() < 50:
+                continue
+            sd = _robust_sd(diff[k][use])
+            if sd > 0:
+                z[k][part] = diff[k][part] / sd
+                sds.append(sd)
+    return z, float(np.median(sds)) if sds else float("nan")
 
 
 def reference_fov(regions: Regions, shape: tuple[int, int, int]) -> np.ndarray:
