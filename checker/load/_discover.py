@@ -2,6 +2,7 @@
 from __future__ import annotations
 
 import os
+import stat
 from collections import defaultdict
 from pathlib import Path
 from typing import Sequence
@@ -56,6 +57,22 @@ def _walk(inputs: Sequence[str | Path], problems: list[FileProblem]) -> list[Pat
         else:
             problems.append(FileProblem(str(path), UnreadableFileError("no such file or folder", source=str(path))))
     return files
+
+
+def _not_regular_file(path: Path) -> UnreadableFileError | None:
+    """Why ``path`` cannot be opened safely as a file, or None when it can.
+
+    A named pipe, socket or device named like an image would block or misbehave when
+    opened, and a symlink loop cannot be resolved: both are refused before any open.
+    """
+    try:
+        mode = os.stat(path).st_mode
+    except OSError as exc:
+        return UnreadableFileError(f"cannot stat the file ({exc.strerror or exc}); expected a readable file", source=str(path))
+    if not stat.S_ISREG(mode):
+        what = "a named pipe (FIFO)" if stat.S_ISFIFO(mode) else "a socket" if stat.S_ISSOCK(mode) else "a device or other special file"
+        return UnreadableFileError(f"not a regular file: {what}; expected a file (not opened)", source=str(path))
+    return None
 
 
 # --------------------------------------------------------------------------- stacks
@@ -206,6 +223,9 @@ def discover(inputs: Sequence[str | Path]) -> Discovery:
     series: list[SeriesSource] = []
     for path in _walk(inputs, problems):
         kind = file_kind(path)
+        if kind is not None and (err := _not_regular_file(path)) is not None:
+            problems.append(FileProblem(str(path), err))
+            continue
         if kind in ("image", "numpy"):
             series.append(_image_source(path, kind))
         elif kind == "dicom":
