@@ -186,12 +186,15 @@ class Measurement:
     peak_bytes: int
     memory_method: str
     result: Any = None
+    cpu_s: float = float("nan")  # process CPU time (all threads) during the call
 
     def line(self, limit_s: float | None = None, volume_bytes: int | None = None) -> str:
         """One printable line, with ratios when a limit / volume size is given."""
         parts = [f"{self.name}: {self.wall_s:.3f} s"]
         if limit_s:
             parts.append(f"= {self.wall_s / limit_s:.2f} x read")
+        if self.cpu_s == self.cpu_s:
+            parts.append(f"(CPU {self.cpu_s:.3f} s" + (f" = {self.cpu_s / limit_s:.2f} x read)" if limit_s else ")"))
         parts.append(f"; peak +{self.peak_bytes / 2**20:.0f} MiB")
         if volume_bytes:
             parts.append(f"= {self.peak_bytes / volume_bytes:.2f} x float32 volume")
@@ -237,15 +240,15 @@ def measure(
     gc.collect()
     rss_mark = _reset_peak_rss()
     before = _proc_status_kib("VmRSS") if rss_mark else None
-    t0 = time.perf_counter()
+    t0, c0 = time.perf_counter(), time.process_time()
     result = fn(*args, **kwargs)
-    wall = time.perf_counter() - t0
+    wall, cpu = time.perf_counter() - t0, time.process_time() - c0
     if rss_mark and before is not None:
         peak = max(0, ((_proc_status_kib("VmHWM") or before) - before) * 1024)
         method = "peak RSS"
     else:
         peak, method = _traced_peak(fn, args, kwargs), "tracemalloc"
-    m = Measurement(name, wall, peak, method, result)
+    m = Measurement(name, wall, peak, method, result, cpu)
     if not quiet:
         print(m.line(limit_s, volume_bytes), flush=True)
     return m
