@@ -90,23 +90,73 @@ def load_image_file(path: Path, *, max_bytes: int) -> Volume:
     if dim == 2:
         image = sitk.JoinSeries(image)
     arr = sitk.GetArrayFromImage(image).astype(np.float32, copy=False)
+    nonfinite = _nifti_nonfinite_mask(path, arr.shape)
+    if nonfinite is not None:
+        arr[nonfinite] = np.nan  # SimpleITK reads NaN/Inf in NIfTI as 0, which would pass for water
     affine = sitk_affine(image.GetOrigin(), image.GetSpacing(), image.GetDirection())
     spacing = image.GetSpacing()
     return _finish(arr, affine, (spacing[2], spacing[1], spacing[0]), path)
 
 
+_NIFTI_FLOAT_TYPES = {16: "f4", 64: "f8"}
+
+
+def _nifti_nonfinite_mask(path: Path, shape: tuple[int, ...]) -> np.ndarray | None:
+    """Voxels stored as NaN/Inf in a float NIfTI-1 file, or None (none, or not applicable).
+
+    SimpleITK returns such voxels as 0; this reads the stored floats directly.
+
+    References
+    ----------
+    NIfTI-1 data format (nifti1.h: sizeof_hdr 348, datatype 16/64, vox_offset).
+    """
+    name = path.name.lower()
+    if not name.endswith((".nii", ".nii.gz")):
+        return None
+    import gzip
+
+    opener = gzip.open if name.endswith(".gz") else open
+    try:
+        with opener(path, "rb") as fh:
+            header = fh.read(348)
+            if len(header) < 348:
+                return None
+            order = "<" if int.from_bytes(header[:4], "little") == 348 else ">"
+            dtype = _NIFTI_FLOAT_TYPES.get(int(np.frombuffer(header[70:72], order + "i2")[0]))
+            if dtype is None:
+                return None
+            offset = int(np.frombuffer(header[108:112], order + "f4")[0])
+            fh.read(max(0, offset - 348))
+            data = np.frombuffer(fh.read(int(np.prod(shape)) * np.dtype(dtype).itemsize), order + dtype)
+    except (OSError, EOFError, ValueError):
+        return None
+    if data.size != int(np.prod(shape)):
+        return None
+    mask = ~np.isfinite(data)
+    return mask.reshape(shape) if mask.any() else None
+
+
 def _finish(arr: np.ndarray, affine: np.ndarray, spacing: Any, path: Path) -> Volume:
     if arr.size == 0:
         raise InvalidVolumeError(f"image is empty (shape {arr.shape})", source=str(path))
-    if not np.any(np.isfinite(arr)):
-        raise InvalidVolumeError("image holds no finite value", source=str(path))
+    finite = np.isfinite(arr)
+    if not np.any(finite):
+        raise InvalidVolumeError("image holds no finite value (every voxel NaN or Inf)", source=str(path))
+    notes = [ASSUMED_HU_NOTE]
+    if not finite.all():
+        low = float(arr[finite].min())
+        n_bad = int(arr.size - np.count_nonzero(finite))
+        arr = arr if arr.flags.writeable else arr.copy()
+        arr[~finite] = low
+        notes.append(f"{n_bad} voxel(s) NaN or Inf in the file: set to {low:g} HU, the lowest finite value in "
+                     "the volume; measurements touching them are suspect")
     return Volume(
         hu=arr,
         spacing_mm=tuple(float(s) for s in spacing),
         affine=affine,
         series_uid=image_series_uid(path),
         metadata={"modality": "CT", "series_description": path.name},
-        notes=[ASSUMED_HU_NOTE],
+        notes=notes,
         source=str(path),
     )
 
