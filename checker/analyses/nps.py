@@ -6,7 +6,8 @@ ROIs come from one of four places, recorded as ``method``:
   water cylinder (:mod:`._phantom`), clear of its edge, over the longest run of contiguous
   uniform slices;
 - ``"patient"``: homogeneous soft-tissue patches found automatically in patient images,
-  which also get the global noise level (mode of the local-SD histogram in soft tissue);
+  which also get the global noise level (mode of the local-SD histogram in soft tissue,
+  on the same at most ``max_slices`` evenly spaced slices);
 - ``"user"``: the ``rois`` setting, a list of ``{"slices": [z0, z1], "yx0_vox": [y, x],
   "size_vox": n}`` (what the viewer passes after editing);
 - ``"pair"``: two repeated reconstructions, ``(I1 - I2) / sqrt(2)`` (:func:`nps_from_pair`
@@ -371,12 +372,41 @@ def histogram_mode(values: np.ndarray, bins: int = 200) -> float:
     return float(0.5 * (edges[i] + edges[i + 1]))
 
 
+def _body_box(mask2d: np.ndarray) -> tuple[slice, slice] | None:
+    """Bounding box of a 2-D mask (None when it is empty)."""
+    rows, cols = np.flatnonzero(mask2d.any(axis=1)), np.flatnonzero(mask2d.any(axis=0))
+    if rows.size == 0:
+        return None
+    return slice(int(rows[0]), int(rows[-1]) + 1), slice(int(cols[0]), int(cols[-1]) + 1)
+
+
+def soft_tissue_sd_values(
+    image: np.ndarray, body: np.ndarray, kernel_px: int, hu_range: Sequence[float]
+) -> np.ndarray:
+    """Local SDs (``kernel_px`` box) at the soft-tissue pixels of one slice.
+
+    The same pixels and values as :func:`soft_tissue_mask` on that slice, computed on
+    the bounding box of the body only: every kernel about a pixel of the eroded body lies
+    inside the body, so the crop does not change them.
+    """
+    box = _body_box(body)
+    if box is None:
+        return np.empty(0)
+    inside = ndimage.binary_erosion(body[box], structure=np.ones((kernel_px, kernel_px), bool), border_value=0)
+    if not inside.any():
+        return np.empty(0)
+    mean, sd = local_mean_sd(image[box], kernel_px)
+    lo, hi = float(hu_range[0]), float(hu_range[1])
+    return sd[inside & (mean >= lo) & (mean <= hi)]
+
+
 def global_noise_level(
     volume: Volume,
     regions: Regions,
     *,
     kernel_mm: float = 6.0,
     soft_tissue_hu: Sequence[float] = (0.0, 100.0),
+    max_slices: int | None = None,
 ) -> tuple[float, int]:
     """Global noise level: the mode of the local-SD histogram in soft tissue.
 
@@ -388,6 +418,9 @@ def global_noise_level(
         Side of the square local-SD kernel (from memory).
     soft_tissue_hu : (low, high)
         Local-mean range taken as soft tissue (from memory).
+    max_slices : int, optional
+        Use at most this many evenly spaced slices (the slices the patient ROIs are
+        searched on); all slices when None.
 
     Returns
     -------
@@ -396,14 +429,21 @@ def global_noise_level(
     pixels : int
         Number of soft-tissue pixels used.
 
+    Notes
+    -----
+    Computed slice by slice on the body's bounding box, so the only arrays made are of
+    one slice.
+
     References
     ----------
     Christianson O. et al., Automated technique to measure noise in clinical CT
     examinations, AJR 205(1), 2015.
     """
     kernel_px = max(3, int(round(kernel_mm / min(volume.spacing_mm[1:]))) | 1)
-    mask, _, sd = soft_tissue_mask(volume, regions, kernel_px, soft_tissue_hu)
-    values = sd[mask]
+    nz = volume.shape[0]
+    zs = range(nz) if max_slices is None else _patient_slices(nz, int(max_slices))
+    parts = [soft_tissue_sd_values(volume.hu[z], regions.body[z], kernel_px, soft_tissue_hu) for z in zs]
+    values = np.concatenate(parts) if parts else np.empty(0)
     if values.size < 50:
         return float("nan"), int(values.size)
     return histogram_mode(values), int(values.size)
@@ -659,6 +699,9 @@ def _result(record: dict[str, Any], rois: Sequence[Roi], s: dict[str, Any]) -> A
 
 
 def _finite_or_reason(volume: Volume) -> str:
+    # a float64 sum of finite float32 values is finite: count only when it is not
+    if np.isfinite(volume.hu.sum(dtype=np.float64)):
+        return ""
     bad = int((~np.isfinite(volume.hu)).sum())
     return f"volume contains {bad} NaN or infinite voxels" if bad else ""
 
@@ -672,7 +715,7 @@ def _choose_rois(volume: Volume, regions: Regions, s: dict[str, Any]) -> tuple[s
     if not regions.has_body:
         return "patient", RoiSet([], f"no phantom and no body: {found.reason}"), float("nan")
     gnl, pixels = global_noise_level(volume, regions, kernel_mm=s["gnl_kernel_mm"],
-                                     soft_tissue_hu=s["soft_tissue_hu"])
+                                     soft_tissue_hu=s["soft_tissue_hu"], max_slices=int(s["max_slices"]))
     if not np.isfinite(gnl) or gnl <= 0:
         return "patient", RoiSet([], f"no phantom ({found.reason}) and no noisy soft tissue "
                                      f"for the global noise level ({pixels} soft-tissue pixels)"), gnl
