@@ -82,7 +82,7 @@ def _baseline_part(record: dict[str, Any], task: SeriesTask) -> tuple[dict | Non
     return compare_to_baseline(record, entry, tolerances)
 
 
-def _render_figures(task: SeriesTask, volume, analysis) -> dict[str, str]:
+def _render_figures(task: SeriesTask, volume, analysis, baseline: dict | None) -> dict[str, str]:
     if not task.figures:
         return {}
     try:
@@ -90,7 +90,6 @@ def _render_figures(task: SeriesTask, volume, analysis) -> dict[str, str]:
     except ImportError:
         return {}
     try:
-        baseline = None
         return render_series_figures(volume, analysis.regions, analysis.results, task.out_dir, task.series_id,
                                      baseline=baseline)
     except Exception as exc:  # a figure never costs the measurements
@@ -134,7 +133,7 @@ def run_series(task: SeriesTask) -> dict[str, Any]:
     findings += base_findings
     record["findings"] = [f.to_json() for f in findings]
     record["verdict"] = worst_verdict(findings).value
-    record["figures"] = _render_figures(task, volume, analysis)
+    record["figures"] = _render_figures(task, volume, analysis, task.baselines.get(record["protocol_key"]))
     record["analysis_seconds"] = round(time.perf_counter() - started, 3)
     _write_series_json(task, record)
     return record
@@ -239,10 +238,11 @@ def default_workers() -> int:
     return max(1, len(os.sched_getaffinity(0)) if hasattr(os, "sched_getaffinity") else (os.cpu_count() or 1))
 
 
-def results_document(records: Iterable[dict[str, Any]], profile: Profile) -> dict[str, Any]:
+def results_document(records: Iterable[dict[str, Any]], profile: Profile, started: str = "") -> dict[str, Any]:
     return {
         "schema": SCHEMA,
         "tool_version": __version__,
+        "started": started,
         "profile": profile.summary(),
         "series": sorted(records, key=lambda r: r["id"]),
     }

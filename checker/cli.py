@@ -87,6 +87,15 @@ def build_parser() -> argparse.ArgumentParser:
     b.add_argument("--series", nargs="*", metavar="ID", help="only these series ids (default: all that are ok)")
     b.add_argument("--baselines", metavar="JSON")
 
+    cp = sub.add_parser("compare", help="compare a reconstruction with a reference reconstruction of the same scan",
+                        epilog=EXIT_TEXT, formatter_class=argparse.RawDescriptionHelpFormatter)
+    cp.add_argument("test", metavar="TEST", help="the reconstruction under test (a series folder or file)")
+    cp.add_argument("reference", metavar="REFERENCE", help="the reference reconstruction (e.g. filtered back-projection)")
+    cp.add_argument("--out", required=True, metavar="DIR", help="folder for comparison.json and comparison.html")
+    cp.add_argument("--shift-tolerance-mm", type=float, default=None, metavar="MM",
+                    help="body surface displacement that asks for review (default 3 mm, site choice)")
+    cp.add_argument("--include-identifiers", action="store_true", help="put patient identifiers in the outputs")
+
     h = sub.add_parser("history", help="print (and plot) trends per protocol with control limits")
     h.add_argument("--db", metavar="SQLITE")
     h.add_argument("--protocol", metavar="KEY", help="one protocol key (default: all)")
@@ -265,7 +274,56 @@ def cmd_history(args: argparse.Namespace) -> int:
     return EXIT_PASS
 
 
-COMMANDS = {"check": cmd_check, "profile": cmd_profile, "baseline": cmd_baseline, "history": cmd_history}
+def _one_volume(path: str, role: str, include_identifiers: bool):
+    from .load import load_path
+
+    p = Path(path)
+    if not p.exists():
+        raise ReconauditError(f"{role} not found", source=str(p))
+    volumes = load_path(p, include_identifiers=include_identifiers)
+    if len(volumes) != 1:
+        raise ReconauditError(f"the {role} must be one series; found {len(volumes)}", source=str(p))
+    return volumes[0]
+
+
+def _volume_facts(volume, include_identifiers: bool) -> dict[str, Any]:
+    facts = {"source": volume.source, "series_instance_uid": volume.series_uid, "metadata": dict(volume.metadata),
+             "geometry": volume.geometry_record()}
+    if include_identifiers:
+        facts["identifiers"] = dict(volume.identifiers)
+    return facts
+
+
+def cmd_compare(args: argparse.Namespace) -> int:
+    from .analyses.compare import compare_volumes
+    from .fsutil import atomic_write_text
+    from .report.compare_page import write_comparison_page
+    from .results import dumps
+
+    test = _one_volume(args.test, "test", args.include_identifiers)
+    ref = _one_volume(args.reference, "reference", args.include_identifiers)
+    settings = {} if args.shift_tolerance_mm is None else {"surface_shift_tolerance_mm": args.shift_tolerance_mm}
+    result = compare_volumes(test, ref, settings)
+    out = Path(args.out)
+    doc = {"schema": "reconaudit.comparison/1", "tool_version": __version__, "verdict": result.verdict,
+           "test": _volume_facts(test, args.include_identifiers),
+           "reference": _volume_facts(ref, args.include_identifiers),
+           **result.record, "findings": [f.to_json() for f in result.findings]}
+    atomic_write_text(out / "comparison.json", dumps(doc))
+    page = write_comparison_page(result, out, test_label=test.metadata.get("series_description") or args.test,
+                                 reference_label=ref.metadata.get("series_description") or args.reference)
+    shift = result.record["body_surface_shift_mm"]
+    print(f"reconaudit {__version__}: comparison {result.verdict}")
+    if shift.get("max") is not None:
+        print(f"  body surface shift: max {shift['max']:+.1f} mm at LPS {shift['max_at_mm']} mm, p95 {shift['p95']:.1f} mm")
+    print(f"  only in test: {len(result.record['only_in_test'])}; only in reference: {len(result.record['only_in_reference'])}")
+    for f in result.findings:
+        print(f"  ? {f.message}")
+    print(f"results: {out / 'comparison.json'}\nreport:  {page}\n\n{SAFETY_NOTICE}")
+    return EXIT_REVIEW if result.findings else EXIT_PASS
+
+
+COMMANDS = {"check": cmd_check, "compare": cmd_compare, "profile": cmd_profile, "baseline": cmd_baseline, "history": cmd_history}
 
 
 def main(argv: Sequence[str] | None = None) -> int:
@@ -279,10 +337,14 @@ def main(argv: Sequence[str] | None = None) -> int:
         return COMMANDS[args.command](args)
     except ReconauditError as exc:
         print(f"reconaudit: {exc}", file=sys.stderr)
-        return EXIT_ERROR if args.command == "check" else EXIT_USAGE
+        return EXIT_ERROR if args.command in ("check", "compare") else EXIT_USAGE
     except KeyboardInterrupt:
         print("reconaudit: interrupted; rerun with the same --out to resume", file=sys.stderr)
         return 130
+    except Exception as exc:  # a bug: never let a scheduler read it as "review" (exit 1)
+        log.exception("internal error")
+        print(f"reconaudit: internal error: {type(exc).__name__}: {exc}", file=sys.stderr)
+        return EXIT_ERROR
 
 
 if __name__ == "__main__":  # pragma: no cover

@@ -69,6 +69,19 @@ SERIES: dict[str, str] = {
     "compare_test": "FH-T1 test reconstruction: anterior wall moved out, lesion missing",
 }
 
+#: SeriesDescription written into the DICOM files (<= 64 characters, the LO limit).
+DICOM_DESCRIPTIONS: dict[str, str] = {
+    "qa_phantom": "QA2 water phantom, daily QA",
+    "qa_phantom_nonlinear": "QA2 water phantom, daily QA, TV recon",
+    "torso_clean": "Torso FH-T1, clean FBP",
+    "torso_limited_angle": "Torso FH-T1, 120 deg arc",
+    "torso_sparse_views": "Torso FH-T1, 36 views",
+    "torso_metal": "Torso FH-T1, two metal implants",
+    "torso_air_structure": "Torso FH-T1, structures in air",
+    "compare_reference": "Torso FH-T1, reference FBP",
+    "compare_test": "Torso FH-T1, test recon for comparison",
+}
+
 #: Hounsfield scale: water 0 HU, air -1000 HU by definition.
 WATER_HU = 0.0
 AIR_HU = -1000.0
@@ -745,7 +758,7 @@ def write_scenario(
         written += write_ct_series(
             vol,
             series_folder(out_dir, n),
-            series_description=f"{n} - {SERIES[n]}",
+            series_description=DICOM_DESCRIPTIONS[n],
             convolution_kernel=_RECIPES[n].kernel,
             series_number=list(SERIES).index(n) + 1,
             uid_seed=f"fernhollow-{SCAN_DATE}-{size}-{n}",

@@ -132,6 +132,7 @@ def check(opts: CheckOptions, progress_factory: Callable[[int], Any] | None = No
     out_dir = opts.out_dir
     out_dir.mkdir(parents=True, exist_ok=True)
     run_id = _run_id(out_dir)
+    started = time.strftime("%Y-%m-%dT%H:%M:%S%z")
     _write_run_state(out_dir, run_id, finished=False)
 
     for p in opts.inputs:
@@ -172,7 +173,7 @@ def check(opts: CheckOptions, progress_factory: Callable[[int], Any] | None = No
         records[record["id"]] = record
         if history and record.get("content_hash"):
             history.record_series(run_id, record, record["content_hash"], digest, record.get("protocol_key") or "")
-        _write_outputs(out_dir, _document(records, profile, skipped), final=False,
+        _write_outputs(out_dir, _document(records, profile, skipped, started), final=False,
                        include_identifiers=opts.include_identifiers)
         if progress:
             progress.step(record)
@@ -182,7 +183,7 @@ def check(opts: CheckOptions, progress_factory: Callable[[int], Any] | None = No
     else:
         run_local(tasks, on_done, workers=opts.workers or default_workers())
 
-    doc = _document(records, profile, skipped)
+    doc = _document(records, profile, skipped, started)
     trends = _trend_figures(history, list(records.values()), out_dir) if history else None
     _write_outputs(out_dir, doc, final=True, include_identifiers=opts.include_identifiers, trends=trends)
     if history:
@@ -191,7 +192,8 @@ def check(opts: CheckOptions, progress_factory: Callable[[int], Any] | None = No
     return CheckOutcome(document=doc, skipped=skipped, run_id=run_id)
 
 
-def _document(records: dict[str, dict[str, Any]], profile: Profile, skipped: list[dict[str, Any]]) -> dict[str, Any]:
-    doc = results_document(records.values(), profile)
+def _document(records: dict[str, dict[str, Any]], profile: Profile, skipped: list[dict[str, Any]],
+              started: str) -> dict[str, Any]:
+    doc = results_document(records.values(), profile, started)
     doc["skipped"] = list(skipped)
     return doc

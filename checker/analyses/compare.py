@@ -54,13 +54,18 @@ DEFAULTS: dict[str, Any] = {
     "grow_sigma": 3.0,
     "min_volume_mm3": 60.0,
     "surface_band_mm": 3.0,
-    "background_mm": 15.0,
+    "shell_mm": 5.0,
+    "min_difference_hu": 10.0,
+    "edge_gradient_hu_per_mm": 40.0,
+    "present_fraction": 0.5,
     "measure_nps_ttf": True,
 }
 SOURCES: dict[str, str] = {
     "surface_shift_tolerance_mm": "site choice",
     "seed_sigma": "site choice (false-alarm rate stated in the module docstring)",
     "min_volume_mm3": "site choice",
+    "min_difference_hu": "site choice",
+    "edge_gradient_hu_per_mm": "site choice (a 10 mm, 40 HU lesion smoothed by 2 mm peaks near 8 HU/mm)",
 }
 
 
@@ -126,6 +131,9 @@ def rigid_offset_mm(test: Volume, reference: Volume) -> list[float]:
 
 
 # ---------------------------------------------------------------------- surfaces
+_INPLANE = np.zeros((3, 3, 3), bool)
+_INPLANE[1] = ndimage.generate_binary_structure(2, 1)
+
 def _surface(mask: np.ndarray) -> np.ndarray:
     inplane = np.zeros((3, 3, 3), bool)
     inplane[1] = ndimage.generate_binary_structure(2, 1)
@@ -191,13 +199,18 @@ def _robust_sd(x: np.ndarray) -> float:
 
 
 def structure_differences(test: Volume, reference: Volume, test_regions: Regions, ref_regions: Regions,
-                          s: dict[str, Any]) -> tuple[dict[str, Any], np.ndarray]:
-    """Regions present in one image and not the other; see the module docstring."""
+                          s: dict[str, Any], surface_shift_mm: float = 0.0) -> tuple[dict[str, Any], np.ndarray]:
+    """Regions present in one image and not the other; see the module docstring.
+
+    The band left to the surface displacement is ``surface_band_mm`` plus the largest
+    displacement found: tissue under a moved wall moves with it.
+    """
     sig = _sigma_vox(reference, s["smooth_mm"])
     a = ndimage.gaussian_filter(test.hu, sig).astype(np.float32)
     b = ndimage.gaussian_filter(reference.hu, sig).astype(np.float32)
     diff = a - b
-    band_px = max(1, int(round(s["surface_band_mm"] / min(reference.spacing_mm[1:]))))
+    band_mm = s["surface_band_mm"] + abs(surface_shift_mm)
+    band_px = max(1, int(round(band_mm / min(reference.spacing_mm[1:]))))
     disagree = test_regions.body ^ ref_regions.body
     surfaces = _surface(test_regions.body) | _surface(ref_regions.body) | disagree
     exclude = ndimage.maximum_filter(surfaces.view(np.uint8), size=(1, 2 * band_px + 1, 2 * band_px + 1)).astype(bool)
@@ -206,43 +219,88 @@ def structure_differences(test: Volume, reference: Volume, test_regions: Regions
     edge = max(1, int(math.ceil(3 * max(sig[1:]))))
     border = ~ndimage.binary_erosion(ref_regions.fov, iterations=edge, border_value=0)
     exclude |= border[None]
+    exclude |= _edge_band(a, b, reference, s["edge_gradient_hu_per_mm"])
     zmap, sd = _difference_z_scores(diff, ref_regions.body & test_regions.body, exclude)
     stats = {"smooth_mm": s["smooth_mm"], "sd_diff_hu": sd, "seed_sigma": s["seed_sigma"],
              "grow_sigma": s["grow_sigma"], "noise_model": "robust SD per slice, inside and outside the body"}
     labels = np.zeros(reference.shape, dtype=np.int32)
     if not math.isfinite(sd) or sd <= 0:
-        return {"statistics": stats, "only_in_test": [], "only_in_reference": []}, labels
+        return {"statistics": stats, "only_in_test": [], "only_in_reference": [], "contrast_changed": []}, labels
     strong = (np.abs(zmap) > s["seed_sigma"]) & ~exclude
     weak = (np.abs(zmap) > s["grow_sigma"]) & ~exclude
     lab, n = ndimage.label(weak)
     keep = np.unique(lab[strong])
     keep = keep[keep > 0]
-    bg_sig = _sigma_vox(reference, s["background_mm"])
-    bg_a = ndimage.gaussian_filter(a, bg_sig) if keep.size else None
-    bg_b = ndimage.gaussian_filter(b, bg_sig) if keep.size else None
-    found = {"only_in_test": [], "only_in_reference": []}
+    found = {"only_in_test": [], "only_in_reference": [], "contrast_changed": []}
     vox_mm3 = reference.voxel_volume_mm3
+    shell_px = max(1, int(round(s["shell_mm"] / min(reference.spacing_mm[1:]))))
+    objects = ndimage.find_objects(lab)
     next_id = 1
     for comp in keep:
-        m = lab == comp
-        vol = float(m.sum() * vox_mm3)
-        if vol < s["min_volume_mm3"]:
+        sl = _grow_slices(objects[comp - 1], shell_px, reference.shape)
+        m_crop = lab[sl] == comp
+        vol = float(m_crop.sum() * vox_mm3)
+        if vol < s["min_volume_mm3"] or abs(float(np.mean(diff[sl][m_crop]))) < s["min_difference_hu"]:
             continue
-        c_test = float(np.mean(a[m] - bg_a[m]))
-        c_ref = float(np.mean(b[m] - bg_b[m]))
-        kind = "only_in_test" if abs(c_test) > abs(c_ref) else "only_in_reference"
+        shell = _shell(m_crop, shell_px) & ~exclude[sl]
+        if not shell.any():
+            continue
+        c_test = float(a[sl][m_crop].mean() - a[sl][shell].mean())
+        c_ref = float(b[sl][m_crop].mean() - b[sl][shell].mean())
+        kind = _difference_kind(c_test, c_ref, s["present_fraction"])
+        m = np.zeros(reference.shape, dtype=bool)
+        m[sl] = m_crop
         centroid = np.array(ndimage.center_of_mass(m))
         found[kind].append({
             "id": next_id,
             "centroid_mm": [round(float(v), 2) for v in reference.index_to_patient(centroid)],
             "centroid_zyx_vox": [round(float(v), 2) for v in centroid],
             "volume_mm3": round(vol, 1),
-            "contrast_hu": round(c_test if kind == "only_in_test" else c_ref, 1),
+            "contrast_hu": round(c_ref if kind == "only_in_reference" else c_test, 1),
+            "contrast_other_hu": round(c_test if kind == "only_in_reference" else c_ref, 1),
             "difference_hu": round(float(np.mean(diff[m])), 1),
         })
         labels[m] = next_id
         next_id += 1
     return {"statistics": stats, **found}, labels
+
+
+def _grow_slices(sl: tuple[slice, ...], px: int, shape: tuple[int, ...]) -> tuple[slice, ...]:
+    grow = (1, px, px)
+    return tuple(slice(max(0, a.start - g), min(n, a.stop + g)) for a, g, n in zip(sl, grow, shape))
+
+
+def _shell(mask: np.ndarray, px: int) -> np.ndarray:
+    """The in-plane ring of width ``px`` around ``mask`` (one slice more above/below)."""
+    grown = ndimage.maximum_filter(mask.view(np.uint8), size=(3, 2 * px + 1, 2 * px + 1)).astype(bool)
+    return grown & ~mask
+
+
+def _difference_kind(c_test: float, c_ref: float, present_fraction: float) -> str:
+    """Where a difference region belongs, from each image's contrast to its background.
+
+    Present in one image only when the other shows less than ``present_fraction`` of
+    that contrast; otherwise both show it and only its contrast changed.
+    """
+    if abs(c_test) >= abs(c_ref):
+        return "only_in_test" if abs(c_ref) < present_fraction * abs(c_test) else "contrast_changed"
+    return "only_in_reference" if abs(c_test) < present_fraction * abs(c_ref) else "contrast_changed"
+
+
+def _edge_band(a: np.ndarray, b: np.ndarray, volume: Volume, limit_hu_per_mm: float) -> np.ndarray:
+    """Voxels on strong edges of either smoothed image (in-plane gradient above the limit).
+
+    Two reconstructions of different sharpness differ most at high-contrast edges
+    (bone, lung, table) even when nothing is added or lost; those differences are what
+    the NPS/TTF comparison measures, not structures.
+    """
+    dy, dx = volume.spacing_mm[1], volume.spacing_mm[2]
+    band = np.zeros(a.shape, dtype=bool)
+    for img in (a, b):
+        gy = np.gradient(img, axis=1) / dy
+        gx = np.gradient(img, axis=2) / dx
+        band |= np.hypot(gy, gx) > limit_hu_per_mm
+    return band
 
 
 def _difference_z_scores(diff: np.ndarray, body: np.ndarray, exclude: np.ndarray) -> tuple[np.ndarray, float]:
@@ -327,7 +385,7 @@ def compare_volumes(test: Volume, reference: Volume, settings: dict[str, Any] | 
         notes.append("no body in one of the images: surface displacement not measured")
     else:
         shift, beyond = surface_displacement(rt.body, rr.body, reference, s["surface_shift_tolerance_mm"])
-    structures, labels = structure_differences(on_grid, reference, rt, rr, s)
+    structures, labels = structure_differences(on_grid, reference, rt, rr, s, shift.get("max") or 0.0)
     if shift.get("max") is not None and abs(shift["max"]) > s["surface_shift_tolerance_mm"]:
         findings.append(Finding(NAME, Severity.REVIEW,
             f"the body surface of the test is displaced by up to {shift['max']:+.1f} mm from the reference "
@@ -340,6 +398,11 @@ def compare_volumes(test: Volume, reference: Volume, settings: dict[str, Any] | 
         findings.append(Finding(NAME, Severity.REVIEW,
             f"a structure of {item['volume_mm3']:.0f} mm3 ({item['contrast_hu']:+.0f} HU) is in the reference and "
             f"missing or blurred in the test at LPS {item['centroid_mm']} mm"))
+    if structures["contrast_changed"]:
+        n = len(structures["contrast_changed"])
+        findings.append(Finding(NAME, Severity.INFO,
+            f"{n} region(s) present in both images with a different contrast (largest "
+            f"{max(abs(i['contrast_hu'] - i['contrast_other_hu']) for i in structures['contrast_changed']):.0f} HU apart)"))
     if max(abs(v) for v in offset) > 2 * max(reference.spacing_mm):
         findings.append(Finding(NAME, Severity.REVIEW, f"the test is offset from the reference by {offset} mm (LPS)"))
     nps, ttf = nps_ttf_comparison(on_grid, reference, rt, rr) if s["measure_nps_ttf"] else ({}, {})
@@ -348,6 +411,7 @@ def compare_volumes(test: Volume, reference: Volume, settings: dict[str, Any] | 
         "rigid_offset_mm": offset,
         "only_in_test": structures["only_in_test"],
         "only_in_reference": structures["only_in_reference"],
+        "contrast_changed": structures["contrast_changed"],
         "difference_statistics": structures["statistics"],
         "nps": nps,
         "ttf": ttf,

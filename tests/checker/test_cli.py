@@ -1,0 +1,145 @@
+"""The `reconaudit` command end to end on small series written in tmp_path."""
+from __future__ import annotations
+
+import csv
+import json
+import subprocess
+import sys
+from pathlib import Path
+
+import numpy as np
+import pytest
+
+from reconaudit.checker.cli import main
+from reconaudit.checker.dicom_write import write_ct_series
+from reconaudit.checker.volume import Volume
+
+DEMO = Path(__file__).resolve().parents[2] / "sample_volumes" / "fernhollow" / "20240611"
+
+
+def _water_cylinder(seed: int, n: int = 6, size: int = 96) -> Volume:
+    rng = np.random.default_rng(seed)
+    y, x = np.mgrid[0:size, 0:size]
+    r = np.hypot(y - size / 2, x - size / 2)
+    hu = np.where(r < size * 0.35, 0.0, -1000.0)[None].repeat(n, 0)
+    hu = hu + rng.normal(0, 10, hu.shape)
+    return Volume.from_array(hu.astype(np.float32), (2.5, 1.0, 1.0), (-48.0, -48.0, 0.0))
+
+
+@pytest.fixture()
+def two_series(tmp_path: Path) -> Path:
+    root = tmp_path / "in"
+    write_ct_series(_water_cylinder(1), root / "a", series_description="Cylinder <script>alert(1)</script>",
+                    uid_seed="cli-a", patient_name="SECRET^NAME", patient_id="ID-12345")
+    write_ct_series(_water_cylinder(2), root / "b", series_description="../../escape", uid_seed="cli-b")
+    return root
+
+
+def _run(args: list[str]) -> int:
+    return main(args)
+
+
+def test_help_version_and_bad_command_line(capsys):
+    with pytest.raises(SystemExit) as e:
+        main(["--version"])
+    assert e.value.code == 0 and "reconaudit" in capsys.readouterr().out
+    with pytest.raises(SystemExit) as e:
+        main(["check", "--help"])
+    assert e.value.code == 0
+    assert "64  bad command line" in capsys.readouterr().out
+    with pytest.raises(SystemExit) as e:
+        main(["check"])  # no inputs, no --out
+    assert e.value.code == 64
+    with pytest.raises(SystemExit) as e:
+        main(["no-such-command"])
+    assert e.value.code == 64
+
+
+def test_check_writes_results_csv_report_and_keeps_identifiers_out(two_series, tmp_path, capsys):
+    out = tmp_path / "out"
+    code = _run(["check", str(two_series), "--out", str(out), "--db", str(tmp_path / "h.sqlite"),
+                 "--baselines", str(tmp_path / "b.json"), "--workers", "1"])
+    doc = json.loads((out / "results.json").read_text())
+    assert doc["schema"] == "reconaudit.results/1"
+    assert len(doc["series"]) == 2 and {s["status"] for s in doc["series"]} == {"ok"}
+    assert code == (1 if any(s["verdict"] != "pass" for s in doc["series"]) else 0)
+    for s in doc["series"]:
+        assert "/" not in s["id"] and not s["id"].startswith(".")
+        assert s["geometry"]["shape_zyx"] == [6, 96, 96]
+    rows = list(csv.DictReader((out / "results.csv").open()))
+    assert len(rows) == 2 and "nps.noise_hu" in rows[0]
+    for name in ("results.json", "results.csv", "report.html"):
+        text = (out / name).read_text()
+        assert "SECRET" not in text and "ID-12345" not in text, name
+    html = (out / "report.html").read_text()
+    assert "<script>alert(1)" not in html and "&lt;script&gt;" in html
+    # nothing outside --out
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["b.json", "h.sqlite", "in", "out"] or \
+        sorted(p.name for p in tmp_path.iterdir()) == ["h.sqlite", "in", "out"]
+
+
+def test_second_run_skips_what_the_history_has(two_series, tmp_path):
+    db = tmp_path / "h.sqlite"
+    _run(["check", str(two_series), "--out", str(tmp_path / "o1"), "--db", str(db), "--no-figures", "--workers", "1"])
+    _run(["check", str(two_series), "--out", str(tmp_path / "o2"), "--db", str(db), "--no-figures", "--workers", "1"])
+    doc = json.loads((tmp_path / "o2" / "results.json").read_text())
+    assert doc["series"] == [] and len(doc["skipped"]) == 2
+    _run(["check", str(two_series), "--out", str(tmp_path / "o3"), "--db", str(db), "--no-figures", "--force",
+          "--workers", "1"])
+    assert len(json.loads((tmp_path / "o3" / "results.json").read_text())["series"]) == 2
+
+
+def test_unreadable_input_gives_exit_2_and_the_rest_is_checked(two_series, tmp_path):
+    (two_series / "junk.dcm").write_bytes(b"this is not DICOM at all" * 10)
+    out = tmp_path / "out"
+    code = _run(["check", str(two_series), "--out", str(out), "--no-history", "--no-figures", "--workers", "1"])
+    doc = json.loads((out / "results.json").read_text())
+    errors = [s for s in doc["series"] if s["status"] == "error"]
+    assert code == 2
+    assert len(errors) == 1 and "junk.dcm" in errors[0]["error"]["message"]
+    assert sum(s["status"] == "ok" for s in doc["series"]) == 2
+
+
+def test_baseline_then_check_reports_changes(two_series, tmp_path):
+    out = tmp_path / "o"
+    base = tmp_path / "b.json"
+    _run(["check", str(two_series), "--out", str(out), "--no-history", "--no-figures", "--workers", "1"])
+    assert _run(["baseline", str(out / "results.json"), "--baselines", str(base)]) == 0
+    stored = json.loads(base.read_text())
+    assert len(stored["protocols"]) == 2
+    _run(["check", str(two_series), "--out", str(tmp_path / "o2"), "--no-history", "--no-figures",
+          "--baselines", str(base), "--workers", "1"])
+    doc = json.loads((tmp_path / "o2" / "results.json").read_text())
+    for s in doc["series"]:
+        assert s["baseline"] is not None
+        change = s["baseline"]["changes"].get("noise_hu")
+        assert change is None or abs(change["relative_change"]) < 1e-9  # the same pixels
+
+
+def test_profile_command_prints_sources(capsys):
+    assert main(["profile"]) == 0
+    out = capsys.readouterr().out
+    assert "[analyses.streaks.settings]" in out and "# source:" in out
+
+
+def test_compare_command_on_the_demo_pair(tmp_path, capsys):
+    """The demo pair: wall moved out by 10 mm and a lesion missing (checker/demo.py)."""
+    from reconaudit.checker import demo
+
+    out = tmp_path / "cmp"
+    code = main(["compare", str(DEMO / "compare_test"), str(DEMO / "compare_reference"), "--out", str(out)])
+    assert code == 1
+    doc = json.loads((out / "comparison.json").read_text())
+    assert abs(doc["body_surface_shift_mm"]["max"] - demo.WALL_SHIFT_MM) <= 1.5
+    assert doc["body_surface_shift_mm"]["max_at_mm"][1] < -60  # anterior (LPS y negative)
+    lost = doc["only_in_reference"]
+    assert len(lost) == 1
+    z0 = doc["reference"]["geometry"]["origin_mm"][2]
+    truth = np.array([demo.LESION.section.cx, demo.LESION.section.cy, z0 + demo.LESION.cz])
+    assert np.linalg.norm(np.array(lost[0]["centroid_mm"]) - truth) <= 3.0
+    assert (out / "comparison.html").exists()
+
+
+def test_console_script_runs():
+    out = subprocess.run([sys.executable, "-m", "reconaudit.checker.cli", "--version"], capture_output=True, text=True)
+    assert out.returncode == 0 and out.stdout.startswith("reconaudit ")
