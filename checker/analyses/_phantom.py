@@ -128,15 +128,26 @@ def disc_of(mask2d: np.ndarray) -> tuple[tuple[float, float], float, float]:
     """Centre, equal-area radius and fill ratio of a 2-D mask.
 
     The fill ratio is the area divided by the area of the circle about the centroid
-    through the farthest mask pixel: 1 for a disc, about b/a for an ellipse.
+    through the farthest mask pixel: 1 for a disc, about b/a for an ellipse. The
+    farthest pixel of a row from any point is the row's first or last pixel, so only
+    those are measured (row and column counts give the area and the centroid).
     """
-    ys, xs = np.nonzero(mask2d)
-    if ys.size == 0:
+    mask2d = np.asarray(mask2d, dtype=bool)
+    row_counts = np.count_nonzero(mask2d, axis=1)
+    n = int(row_counts.sum())
+    if n == 0:
         return (float("nan"), float("nan")), 0.0, 0.0
-    cy, cx = float(ys.mean()), float(xs.mean())
-    r_eq = float(np.sqrt(ys.size / np.pi))
-    r_max = float(np.sqrt(((ys - cy) ** 2 + (xs - cx) ** 2).max())) + 0.5
-    return (cy, cx), r_eq, float(ys.size / (np.pi * r_max**2))
+    col_counts = np.count_nonzero(mask2d, axis=0)
+    cy = float((row_counts * np.arange(mask2d.shape[0])).sum()) / n
+    cx = float((col_counts * np.arange(mask2d.shape[1])).sum()) / n
+    rows = np.flatnonzero(row_counts)
+    sub = mask2d[rows]
+    first = np.argmax(sub, axis=1)
+    last = mask2d.shape[1] - 1 - np.argmax(sub[:, ::-1], axis=1)
+    dx2 = np.maximum((first - cx) ** 2, (last - cx) ** 2)
+    r_eq = float(np.sqrt(n / np.pi))
+    r_max = float(np.sqrt(((rows - cy) ** 2 + dx2).max())) + 0.5
+    return (cy, cx), r_eq, float(n / (np.pi * r_max**2))
 
 
 def disc_mask(shape: tuple[int, int], centre: tuple[float, float], radius: float) -> np.ndarray:
@@ -213,7 +224,7 @@ def _find_phantom(volume: Volume, regions: Regions, s: dict[str, float]) -> Phan
     inserts = np.zeros(nz, dtype=bool)
     f = max(1, int(s["work_pixel_mm"] / pixel_mm))  # block size of the working grid
     for z in range(nz):
-        body = _block_mean(regions.body[z].astype(np.float32), f) > 0.5
+        body = regions.body[z] if f == 1 else _block_mean(regions.body[z].astype(np.float32), f) > 0.5
         c, r, fill = disc_of(body)
         if r * f * pixel_mm < s["min_radius_mm"] or fill < s["min_fill"]:
             continue

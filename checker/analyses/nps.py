@@ -521,6 +521,48 @@ def _patient_slices(nz: int, max_slices: int) -> np.ndarray:
     return np.unique(np.linspace(0, nz - 1, min(nz, max_slices)).round().astype(int))
 
 
+def _patches_of_slice(
+    image: np.ndarray, body: np.ndarray, z: int, n: int, kernel_px: int, hu_range: tuple[float, float],
+    gnl: float, s: dict[str, Any],
+) -> list[Roi]:
+    """The patient ROIs of one slice (see :func:`patient_rois`).
+
+    Works on the body's bounding box grown by half the local-mean kernel: a patch lies
+    wholly in the body, and the local means of its pixels only reach that far, so the
+    crop changes none of the values the choice depends on.
+    """
+    ny, nx = image.shape
+    box = _body_box(body)
+    if box is None:
+        return []
+    g = kernel_px // 2 + 1
+    y0, y1 = max(0, box[0].start - g), min(ny, box[0].stop + g)
+    x0, x1 = max(0, box[1].start - g), min(nx, box[1].stop + g)
+    img = image[y0:y1, x0:x1].astype(np.float64)
+    lo, hi = hu_range
+    mean_k = ndimage.uniform_filter(img, kernel_px, mode="nearest")
+    tissue = body[y0:y1, x0:x1] & (mean_k >= lo) & (mean_k <= hi)
+    frac = ndimage.uniform_filter(tissue.astype(float), n, mode="constant")
+    mean, sd = local_mean_sd(img, n)
+    step = max(1, n // 4)
+    cy, cx = np.mgrid[n // 2 : ny - (n - n // 2) + 1 : step, n // 2 : nx - (n - n // 2) + 1 : step]
+    in_crop = (cy >= y0) & (cy < y1) & (cx >= x0) & (cx < x1)
+    cy, cx = cy[in_crop] - y0, cx[in_crop] - x0
+    ok = (frac[cy, cx] > 0.999) & (sd[cy, cx] <= s["patch_sd_factor"] * gnl)
+    ok &= (mean[cy, cx] >= lo) & (mean[cy, cx] <= hi)
+    cand = np.stack([cy[ok], cx[ok]], axis=1)
+    order = np.argsort(np.abs(sd[cand[:, 0], cand[:, 1]] - gnl)) if cand.size else []
+    chosen: list[Roi] = []
+    for i in order:
+        ry0, rx0 = int(cand[i, 0]) + y0 - n // 2, int(cand[i, 1]) + x0 - n // 2
+        roi = Roi(z, z, ry0, rx0, ry0 + n, rx0 + n, f"nps patch z{z}")
+        if not any(_overlaps(roi, c) for c in chosen):
+            chosen.append(roi)
+        if len(chosen) >= s["patient_rois_per_slice"]:
+            break
+    return chosen
+
+
 def patient_rois(volume: Volume, regions: Regions, s: dict[str, Any], gnl: float) -> RoiSet:
     """Homogeneous soft-tissue patches: whole patch in soft tissue, SD near the noise level.
 
@@ -536,26 +578,7 @@ def patient_rois(volume: Volume, regions: Regions, s: dict[str, Any], gnl: float
     lo, hi = (float(v) for v in s["soft_tissue_hu"])
     rois: list[Roi] = []
     for z in _patient_slices(volume.shape[0], int(s["max_slices"])):
-        img = volume.hu[z].astype(np.float64)
-        mean_k = ndimage.uniform_filter(img, kernel_px, mode="nearest")
-        tissue = regions.body[z] & (mean_k >= lo) & (mean_k <= hi)
-        frac = ndimage.uniform_filter(tissue.astype(float), n, mode="constant")
-        mean, sd = local_mean_sd(img, n)
-        step = max(1, n // 4)
-        cy, cx = np.mgrid[n // 2 : ny - (n - n // 2) + 1 : step, n // 2 : nx - (n - n // 2) + 1 : step]
-        ok = (frac[cy, cx] > 0.999) & (sd[cy, cx] <= s["patch_sd_factor"] * gnl)
-        ok &= (mean[cy, cx] >= lo) & (mean[cy, cx] <= hi)
-        cand = np.stack([cy[ok], cx[ok]], axis=1)
-        order = np.argsort(np.abs(sd[cand[:, 0], cand[:, 1]] - gnl)) if cand.size else []
-        chosen: list[Roi] = []
-        for i in order:
-            y0, x0 = int(cand[i, 0]) - n // 2, int(cand[i, 1]) - n // 2
-            roi = Roi(int(z), int(z), y0, x0, y0 + n, x0 + n, f"nps patch z{z}")
-            if not any(_overlaps(roi, c) for c in chosen):
-                chosen.append(roi)
-            if len(chosen) >= s["patient_rois_per_slice"]:
-                break
-        rois += chosen
+        rois += _patches_of_slice(volume.hu[z], regions.body[z], int(z), n, kernel_px, (lo, hi), gnl, s)
     if not rois:
         return RoiSet([], "no homogeneous soft-tissue patch of "
                           f"{n} x {n} px found inside the body")

@@ -149,7 +149,8 @@ def analyse(volume: Volume, regions: Regions, settings: dict[str, Any] | None = 
     e.g. IEC 61223-3-5 (from memory).
     """
     s = _settings(settings)
-    bad = int((~np.isfinite(volume.hu)).sum())
+    # a float64 sum of finite float32 values is finite: count only when it is not
+    bad = 0 if np.isfinite(volume.hu.sum(dtype=np.float64)) else int((~np.isfinite(volume.hu)).sum())
     if bad:
         return AnalysisResult.not_applicable(NAME, f"volume contains {bad} NaN or infinite voxels")
     rois = _layout(volume, regions, s)
