@@ -65,6 +65,9 @@ class TableRow:
     note: str = ""
     centre_zyx_vox: tuple[float, float, float] | None = None
     severity: str = ""
+    unit: str = ""
+    geometry: LayerGeometry | None = None  # the grid of ``centre_zyx_vox`` when not the run's image
+    tooltip: str = ""  # longer text shown on hover (defaults to the cell's text)
 
     @property
     def slice_index(self) -> int | None:
@@ -104,6 +107,34 @@ def format_value(value: Any) -> str:
             return "n/a"
         return f"{v:.4g}"
     return str(value)
+
+
+#: key suffix -> unit shown in the table (the project's unit-in-the-name convention)
+UNIT_SUFFIXES: tuple[tuple[str, str], ...] = (
+    ("_hu2mm2", "HU² mm²"),
+    ("_per_mm", "cycles/mm"),
+    ("_per_px", "cycles/px"),
+    ("_mm3", "mm³"),
+    ("_mm2", "mm²"),
+    ("_mm", "mm"),
+    ("_hu", "HU"),
+    ("_deg", "°"),
+    ("_vox", "voxels"),
+    ("_px", "px"),
+    ("_s", "s"),
+    ("_fraction", "fraction"),
+)
+
+
+def split_unit(key: str) -> tuple[str, str]:
+    """A record key -> (readable name, unit): ``"noise_hu"`` -> ``("noise", "HU")``.
+
+    Keys without a unit suffix keep their name (underscores as spaces) and get no unit.
+    """
+    for suffix, unit in UNIT_SUFFIXES:
+        if key.endswith(suffix) and len(key) > len(suffix):
+            return key[: -len(suffix)].replace("_", " "), unit
+    return key.replace("_", " "), ""
 
 
 # ----------------------------------------------------------------- labels
@@ -253,10 +284,11 @@ def record_rows(analysis: str, record: dict[str, Any]) -> list[TableRow]:
             if key == "applicable" and value is True:
                 continue
             text = format_value(value)
+            name, unit = split_unit(key)
             if len(text) > 16:  # long text reads better in the wide column
-                rows.append(TableRow(analysis, key, "", text))
+                rows.append(TableRow(analysis, name, "", text))
             else:
-                rows.append(TableRow(analysis, key, text))
+                rows.append(TableRow(analysis, name, text, unit=unit if value is not None else ""))
     return rows
 
 
@@ -267,17 +299,17 @@ def overlay_rows(analysis: str, result: AnalysisResult, z_offset: int, centroids
     for lab, centre, count in centroids or []:
         st = kinds.get(lab, {})
         note = ", ".join(str(v) for v in (st.get("kind"), "flagged" if st.get("flagged") else "") if v)
-        rows.append(TableRow(analysis, f"structure {lab}", f"{count} voxels", note or "label", shift_zyx(centre, z_offset)))
+        rows.append(TableRow(analysis, f"structure {lab}", str(count), note or "label", shift_zyx(centre, z_offset), unit="voxels"))
     for i, s in enumerate(ov.segments, start=1):
         mid = 0.5 * (np.asarray(s.start_zyx_vox, float) + np.asarray(s.end_zyx_vox, float))
-        rows.append(TableRow(analysis, s.label or f"line {i}", format_value(s.value), "line, value = strength", shift_zyx(tuple(mid), z_offset)))
+        rows.append(TableRow(analysis, s.label or f"line {i}", format_value(s.value), "line, value = relative strength", shift_zyx(tuple(mid), z_offset)))
     for i, r in enumerate(ov.rois, start=1):
         centre = (0.5 * (r.z0 + r.z1), 0.5 * (r.y0 + r.y1 - 1), 0.5 * (r.x0 + r.x1 - 1))
         note = f"slices {r.z0 + z_offset}-{r.z1 + z_offset}, {r.y1 - r.y0}x{r.x1 - r.x0} px"
         rows.append(TableRow(analysis, r.label or f"ROI {i}", "", note, shift_zyx(centre, z_offset)))
     for i, p in enumerate(ov.points, start=1):
-        what = "edge centre, value f50 (cycles/mm)" if analysis == "ttf" else "centre"
-        rows.append(TableRow(analysis, p.label or f"point {i}", format_value(p.value), what, shift_zyx(p.zyx_vox, z_offset)))
+        what, unit = ("edge centre, value f50", "cycles/mm") if analysis == "ttf" else ("centre", "")
+        rows.append(TableRow(analysis, p.label or f"point {i}", format_value(p.value), what, shift_zyx(p.zyx_vox, z_offset), unit=unit))
     return rows
 
 

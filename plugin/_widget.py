@@ -43,6 +43,7 @@ from reconaudit.checker import analyses as _analyses
 from reconaudit.checker.errors import ReconauditError
 from reconaudit.checker.pipeline import Cancelled
 
+from ._compare import COMPARE, ComparisonOutcome, run_comparison, surface_summary
 from ._export import write_html_report, write_results_json
 from ._geometry import LayerGeometry, layer_geometry
 from ._jobs import RunOutcome, remeasure, run_checks
@@ -61,16 +62,17 @@ from ._reader import volume_from_layer
 
 SCOPE_VOLUME = "whole volume"
 SCOPE_SLICE = "displayed slice"
-TABLE_COLUMNS = ("Check", "Slice", "Value", "What")
+TABLE_COLUMNS = ("Check", "Slice", "Value", "Unit", "What")
 EDIT_DELAY_MS = 300
 _SEVERITY_COLOURS = {"fail": "#ffb3b3", "review": "#ffe3a3"}
 
 
 def module_defaults(name: str) -> dict[str, Any]:
-    """The analysis module's DEFAULTS (empty if it has none)."""
+    """The analysis module's DEFAULTS (empty if it has none); also the comparison's."""
     import importlib
 
-    module = importlib.import_module(_analyses.REGISTRY[name])
+    path = "reconaudit.checker.analyses.compare" if name == COMPARE else _analyses.REGISTRY[name]
+    module = importlib.import_module(path)
     return dict(getattr(module, "DEFAULTS", {}) or {})
 
 
@@ -94,6 +96,7 @@ class AuditBench(QWidget):
         super().__init__(parent)
         self.viewer = napari_viewer
         self.outcome: RunOutcome | None = None
+        self.comparison: ComparisonOutcome | None = None
         self.worker: Any = None
         self._stop = threading.Event()
         self._rows: list[TableRow] = []
@@ -115,12 +118,61 @@ class AuditBench(QWidget):
         layout.setContentsMargins(6, 6, 6, 6)
         layout.setSpacing(6)
         layout.addWidget(self._caution())
-        layout.addWidget(self._source_box())
-        layout.addWidget(self._checks_box())
+        self.task_tabs = QTabWidget()
+        self.task_tabs.addTab(self._check_page(), "Check one image")
+        self.task_tabs.addTab(self._compare_box(), "Compare two images")
+        layout.addWidget(self.task_tabs)
         layout.addWidget(self._run_box())
         layout.addWidget(self._results_tabs(), stretch=1)
         layout.addLayout(self._export_row())
         self.setMinimumWidth(420)
+
+    def _check_page(self) -> QWidget:
+        page = QWidget()
+        lay = QVBoxLayout(page)
+        lay.setContentsMargins(2, 4, 2, 2)
+        lay.addWidget(self._source_box())
+        lay.addWidget(self._checks_box())
+        return page
+
+    def _compare_box(self) -> QWidget:
+        """Pick a test and a reference image; the summary of the last comparison below."""
+        page = QWidget()
+        lay = QVBoxLayout(page)
+        lay.setContentsMargins(2, 4, 2, 2)
+        intro = QLabel("Compares a reconstruction under test with a reference reconstruction of the same scan "
+                       "(for example filtered back-projection). Overlays lie on the reference's grid.")
+        intro.setWordWrap(True)
+        lay.addWidget(intro)
+        self.test_choice = mg.ComboBox(label="test", choices=self._image_layer_names)
+        self.reference_choice = mg.ComboBox(label="reference", choices=self._image_layer_names)
+        for text, combo in (("test:", self.test_choice), ("reference:", self.reference_choice)):
+            row = QHBoxLayout()
+            label = QLabel(text)
+            label.setMinimumWidth(70)
+            row.addWidget(label)
+            row.addWidget(combo.native, stretch=1)
+            lay.addLayout(row)
+        self.compare_settings_edit = QPlainTextEdit(json.dumps(module_defaults(COMPARE), indent=1))
+        self.compare_settings_edit.setToolTip("JSON object; keys override the comparison's defaults")
+        self.compare_settings_edit.setMinimumHeight(60)
+        self.compare_settings_edit.setMaximumHeight(100)
+        lay.addWidget(QLabel("comparison settings:"))
+        lay.addWidget(self.compare_settings_edit)
+        row = QHBoxLayout()
+        self.compare_button = QPushButton("Compare")
+        self.compare_button.setToolTip("run the comparison in the background; overlays and rows appear when done")
+        self.compare_button.clicked.connect(self.start_comparison)
+        row.addWidget(self.compare_button)
+        row.addStretch(1)
+        lay.addLayout(row)
+        self.comparison_summary = QLabel("No comparison yet.")
+        self.comparison_summary.setWordWrap(True)
+        self.comparison_summary.setTextInteractionFlags(Qt.TextInteractionFlag.TextSelectableByMouse)
+        self.comparison_summary.setObjectName("reconaudit_comparison_summary")
+        lay.addWidget(self.comparison_summary)
+        lay.addStretch(1)
+        return page
 
     def _caution(self) -> QLabel:
         label = QLabel("⚠ " + SAFETY_NOTICE)
@@ -222,10 +274,11 @@ class AuditBench(QWidget):
         self.table.setHorizontalScrollBarPolicy(Qt.ScrollBarPolicy.ScrollBarAlwaysOff)
         header = self.table.horizontalHeader()
         modes = (QHeaderView.ResizeMode.ResizeToContents, QHeaderView.ResizeMode.ResizeToContents,
-                 QHeaderView.ResizeMode.Interactive, QHeaderView.ResizeMode.Stretch)
+                 QHeaderView.ResizeMode.Interactive, QHeaderView.ResizeMode.ResizeToContents,
+                 QHeaderView.ResizeMode.Stretch)
         for col, mode in enumerate(modes):
             header.setSectionResizeMode(col, mode)
-        header.resizeSection(2, 96)
+        header.resizeSection(2, 80)
         self.table.cellClicked.connect(self.go_to_row)
         self.table.setMinimumHeight(200)
         self.tabs.addTab(self.table, "Findings and values")
@@ -258,6 +311,11 @@ class AuditBench(QWidget):
 
     def _refresh_images(self, *_: Any) -> None:
         self.image_choice.reset_choices()
+        self.test_choice.reset_choices()
+        self.reference_choice.reset_choices()
+        names = self._image_layer_names()
+        if len(names) >= 2 and self.test_choice.value == self.reference_choice.value:
+            self.test_choice.value = next(n for n in names if n != self.reference_choice.value)
 
     def image_layer(self) -> Image | None:
         name = self.image_choice.value
@@ -325,6 +383,18 @@ class AuditBench(QWidget):
         if self._current_settings_name == name:
             self._show_settings()
 
+    def comparison_settings(self) -> dict[str, Any]:
+        """Comparison settings typed in the compare tab (only keys that differ from DEFAULTS)."""
+        given = parse_settings(self.compare_settings_edit.toPlainText(), COMPARE)
+        defaults = module_defaults(COMPARE)
+        return {k: v for k, v in given.items() if k not in defaults or defaults[k] != v}
+
+    def set_comparison_settings(self, values: dict[str, Any]) -> None:
+        """Put ``values`` (over the defaults) into the comparison's settings box."""
+        merged = module_defaults(COMPARE)
+        merged.update(values)
+        self.compare_settings_edit.setPlainText(json.dumps(merged, indent=1))
+
     def chosen_checks(self) -> list[str]:
         return [n for n, cb in self.check_boxes.items() if cb.value]
 
@@ -352,28 +422,66 @@ class AuditBench(QWidget):
             return None
         geometry = layer_geometry(volume)
         z = self.current_slice(layer) if self.scope.value == SCOPE_SLICE else None
-        job = thread_worker(run_checks, start_thread=False)
+        job = thread_worker(run_checks, start_thread=False, ignore_errors=True)
         return self._start(job(volume, names, settings, geometry, layer.name, z_index=z, stop=self._new_stop()), "run")
 
     def _new_stop(self) -> threading.Event:
         self._stop = threading.Event()
         return self._stop
 
-    def _start(self, worker: Any, kind: str) -> Any:
+    def _start(self, worker: Any, kind: str, on_returned: Callable[[Any], None] | None = None) -> Any:
         if self.worker is not None:
             show_warning("reconaudit: a check is already running; wait or stop it")
             return None
         self.worker = worker
         worker.yielded.connect(self._on_progress)
-        worker.returned.connect(self._on_outcome)
+        worker.returned.connect(on_returned or self._on_outcome)
         worker.errored.connect(self._on_error)
         worker.finished.connect(self._on_finished)
-        self.run_button.setEnabled(False)
-        self.stop_button.setEnabled(True)
+        self._set_busy(True)
         self.progress.setValue(0)
         self.status.setText("starting")
         worker.start()
         return worker
+
+    def _set_busy(self, busy: bool) -> None:
+        self.run_button.setEnabled(not busy)
+        self.compare_button.setEnabled(not busy)
+        self.stop_button.setEnabled(busy)
+
+    # ------------------------------------------------------------------ comparing
+    def start_comparison(self) -> Any:
+        """Compare the chosen test image with the chosen reference in a worker (None if refused)."""
+        names = self._image_layer_names()
+        test_name, ref_name = self.test_choice.value, self.reference_choice.value
+        if not test_name or not ref_name or test_name not in names or ref_name not in names:
+            show_error("reconaudit: choose a test image and a reference image to compare")
+            return None
+        if test_name == ref_name:
+            show_error("reconaudit: the test and the reference are the same image; choose two different images")
+            return None
+        try:
+            test = volume_from_layer(self.viewer.layers[test_name])
+            reference = volume_from_layer(self.viewer.layers[ref_name])
+            settings = self.comparison_settings()
+        except ReconauditError as exc:
+            show_error(f"reconaudit: {exc}")
+            return None
+        job = thread_worker(run_comparison, start_thread=False, ignore_errors=True)
+        worker = job(test, reference, settings, test_name, ref_name, stop=self._new_stop())
+        return self._start(worker, "compare", self._on_comparison)
+
+    def _on_comparison(self, outcome: ComparisonOutcome) -> None:
+        self.comparison = outcome
+        self.status.setText("compared")
+        self.progress.setValue(100)
+        for lay in [lay for lay in self.viewer.layers if lay.metadata.get("reconaudit_analysis") == COMPARE]:
+            self._remove_layer(lay)
+        for data, kwargs, kind in outcome.view.layers:
+            getattr(self.viewer, f"add_{kind}")(data, **kwargs)
+        tolerance = float(outcome.settings.get("surface_shift_tolerance_mm", module_defaults(COMPARE)["surface_shift_tolerance_mm"]))
+        self.comparison_summary.setText(surface_summary(outcome.result.record, tolerance, outcome.verdict))
+        self.refill_table()
 
     def cancel(self) -> None:
         """Ask the running worker to stop at the next stage."""
@@ -395,8 +503,7 @@ class AuditBench(QWidget):
 
     def _on_finished(self) -> None:
         self.worker = None
-        self.run_button.setEnabled(True)
-        self.stop_button.setEnabled(False)
+        self._set_busy(False)
         if self._stop.is_set():
             self.status.setText("stopped")
         if self._pending_edit and not self._edit_timer.isActive():
@@ -412,7 +519,9 @@ class AuditBench(QWidget):
 
     # ------------------------------------------------------------------ layers
     def _overlay_layers(self, source: str) -> list[Any]:
-        return [lay for lay in self.viewer.layers if lay.metadata.get(SOURCE_KEY) == source and ROLE_KEY in lay.metadata]
+        """Overlay layers of one image's check runs (comparison layers are kept apart)."""
+        return [lay for lay in self.viewer.layers if lay.metadata.get(SOURCE_KEY) == source and ROLE_KEY in lay.metadata
+                and lay.metadata.get("reconaudit_analysis") != COMPARE]
 
     def show_layers(self, outcome: RunOutcome, only: str | None = None) -> None:
         """Replace the overlay layers of ``outcome.source`` by the outcome's (one analysis if ``only``)."""
@@ -490,15 +599,14 @@ class AuditBench(QWidget):
                 return None
             settings["centres_zyx_vox"] = centres
         self.set_settings(name, settings)
-        job = thread_worker(remeasure, start_thread=False)
+        job = thread_worker(remeasure, start_thread=False, ignore_errors=True)
         worker = job(outcome, name, settings, self._new_stop())
         worker.returned.connect(lambda out, n=name: self._on_remeasured(out, n))
         worker.errored.connect(self._on_error)
         self.worker = worker
         worker.yielded.connect(self._on_progress)
         worker.finished.connect(self._on_finished)
-        self.run_button.setEnabled(False)
-        self.stop_button.setEnabled(True)
+        self._set_busy(True)
         worker.start()
         return worker
 
@@ -552,17 +660,29 @@ class AuditBench(QWidget):
             self._muted_layers.discard(id(layer))
 
     # ------------------------------------------------------------------ table
-    def fill_table(self, outcome: RunOutcome) -> None:
-        """One row per finding, record value and overlay item of every analysis."""
-        self._rows = [row for view in outcome.views.values() for row in view.rows]
+    def fill_table(self, outcome: RunOutcome | None = None) -> None:
+        """One row per finding, record value and overlay item of every analysis, then the comparison's."""
+        if outcome is not None:
+            self.outcome = outcome
+        self.refill_table()
+
+    def refill_table(self) -> None:
+        """Rows of the last check run followed by those of the last comparison."""
+        rows = [row for view in self.outcome.views.values() for row in view.rows] if self.outcome is not None else []
+        if self.comparison is not None:
+            rows += self.comparison.view.rows
+        self._rows = rows
         self.table.setRowCount(len(self._rows))
         for r, row in enumerate(self._rows):
-            what = row.note if row.severity else (f"{row.item}: {row.note}" if row.note else row.item)
-            value = row.severity if row.severity else row.value
-            cells = (row.analysis, "" if row.slice_index is None else str(row.slice_index), value, what)
+            if row.severity and not row.value:
+                what = row.note
+            else:
+                what = row.note if row.note.startswith(row.item) else (f"{row.item}: {row.note}" if row.note else row.item)
+            value = row.value or row.severity
+            cells = (row.analysis, "" if row.slice_index is None else str(row.slice_index), value, row.unit, what)
             for c, text in enumerate(cells):
                 item = QTableWidgetItem(text)
-                item.setToolTip(text)
+                item.setToolTip(row.tooltip or text if c == len(cells) - 1 else text)
                 if row.severity in _SEVERITY_COLOURS:
                     item.setBackground(_qcolor(_SEVERITY_COLOURS[row.severity]))
                     item.setForeground(_qcolor("#1a1a1a"))
@@ -571,13 +691,15 @@ class AuditBench(QWidget):
 
     def go_to_row(self, row: int, _column: int = 0) -> None:
         """Move the viewer to the slice of the row's item and centre it."""
-        if not (0 <= row < len(self._rows)) or self.outcome is None:
+        if not (0 <= row < len(self._rows)):
             return
-        centre = self._rows[row].centre_zyx_vox
-        if centre is None:
+        entry = self._rows[row]
+        geometry = entry.geometry or (self.outcome.geometry if self.outcome is not None else None)
+        centre = entry.centre_zyx_vox
+        if centre is None or geometry is None:
             return
-        world = self.outcome.geometry.voxel_to_world(np.array(centre))
-        z_world = float(np.round(centre[0])) * self.outcome.geometry.scale[0] + self.outcome.geometry.translate[0]
+        world = geometry.voxel_to_world(np.array(centre))
+        z_world = float(np.round(centre[0])) * geometry.scale[0] + geometry.translate[0]
         if self.viewer.dims.ndim >= 3:
             axis = self.viewer.dims.ndim - 3
             self.viewer.dims.set_point(axis, z_world)
@@ -629,7 +751,7 @@ class AuditBench(QWidget):
         if self.outcome is None:
             show_warning("reconaudit: run the checks first")
             return None
-        job = thread_worker(_report_job, start_thread=False)
+        job = thread_worker(_report_job, start_thread=False, ignore_errors=True)
         worker = job(self.outcome, str(folder))
         worker.returned.connect(lambda res: show_info(f"reconaudit: {res[1]} ({res[0]})"))
         worker.errored.connect(self._on_error)

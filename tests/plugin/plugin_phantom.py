@@ -46,3 +46,22 @@ def make_phantom(seed: int = 7, noise_hu: float = 12.0) -> Volume:
     return Volume.from_array(hu, spacing_mm=SPACING, origin_mm=ORIGIN_LPS, padding_mask=fov,
                              metadata={"modality": "CT", "series_description": "test phantom P1"},
                              series_uid="1.2.826.0.1.3680043.8.498.1", source="test phantom")
+
+
+# A lesion present only in the reference of a comparison pair (inside the water cylinder,
+# away from the rod): a +60 HU ellipsoid of 6 mm radius.
+LESION_ZYX = (7.0, 88.0, 48.0)
+LESION_R_MM = 6.0
+LESION_HU = 60.0
+
+
+def make_pair() -> tuple[Volume, Volume]:
+    """(test, reference): the test phantom twice with independent noise; the lesion only in the reference."""
+    test = make_phantom(seed=11)
+    reference = make_phantom(seed=7)
+    z, y, x = np.mgrid[0:NZ, 0:NY, 0:NX].astype(np.float32)
+    d2 = ((z - LESION_ZYX[0]) * SPACING[0]) ** 2 + ((y - LESION_ZYX[1]) * SPACING[1]) ** 2 + ((x - LESION_ZYX[2]) * SPACING[2]) ** 2
+    reference.hu[d2 <= LESION_R_MM ** 2] += LESION_HU
+    test.metadata["series_description"] = "test phantom P1, test reconstruction"
+    reference.metadata["series_description"] = "test phantom P1, reference reconstruction"
+    return test, reference
