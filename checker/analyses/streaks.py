@@ -8,9 +8,13 @@ Screen (every axial slice). The slice is binned to at most ``screen_max_px`` pix
 side. A high-pass residual ``r = s - G(s)`` (Gaussian ``highpass_sigma_px``) is taken;
 pixels near strong edges of the smoothed image (a step of ``edge_step_hu`` or more: body
 outline, lungs, bone, metal), the table, the body outline, the border of the field of
-view and invalid (NaN) pixels get zero weight; the residual is clipped at
+view and invalid (NaN) pixels get zero weight; so does the band of rows a flat table
+spans, across the whole slice (its long straight edges, and their continuation past the
+table's ends, are real edges, not streaks). The residual is clipped at
 ``clip_sigma`` robust standard deviations so that the remaining contrast does not
-dominate. Its 2-D power spectrum ``P(k)`` is whitened ring by ring, ``P(k) / m(|k|)``,
+dominate, then brought to one noise level everywhere (divided by its local RMS over
+``noise_equalise_sigma_px``), so that the noisiest region (a wide body, the rays through
+both arms) does not dominate the spectrum with its direction-dependent quantum noise. Its 2-D power spectrum ``P(k)`` is whitened ring by ring, ``P(k) / m(|k|)``,
 where ``m`` is the mean power of the ring: that is exactly the power an isotropic noise
 of the measured level and spectrum shape would put at that frequency. The whitened
 power averaged over the frequencies of orientation bin ``phi`` inside the band
@@ -26,7 +30,10 @@ Streak index of a slice (dimensionless, 1 for isotropic texture)::
 ``A3`` is ``A`` smoothed over three bins. The first term measures line energy
 concentrated at some orientations (view aliasing, metal, boundary streaks); the second
 measures orientations with no energy at all (a missing angular wedge removes both the
-object's and the noise's spectrum there). The volume index is the largest slice index.
+object's and the noise's spectrum there). A slice's reported index is the smaller of its
+own and that of its profile mixed with its neighbours' (weight ``neighbour_weight``
+each): acquisition streaks persist from slice to slice, the largest noise bin does not.
+The volume index is the largest slice index.
 A slice, and the series, is flagged when its index exceeds ``tolerance_index``.
 
 Missing wedge: a contiguous run of at least ``wedge_min_deg`` of orientation bins of the
@@ -85,6 +92,9 @@ DEFAULTS: dict[str, Any] = {
     "highpass_sigma_px": 1.5,
     "edge_step_hu": 300.0,
     "clip_sigma": 4.0,
+    "noise_equalise_sigma_px": 10.0,
+    "table_band_px": 4,
+    "neighbour_weight": 1.0 / 3.0,
     "border_margin_px": 3,
     "min_weight_fraction": 0.05,
     "wedge_level": 0.25,
@@ -109,6 +119,9 @@ SOURCES: dict[str, str] = {
     "wedge_min_deg": "site choice",
     "peak_level": "site choice",
     "edge_step_hu": "common practice, no source (soft tissue/bone/air steps exceed it)",
+    "noise_equalise_sigma_px": "site choice (about 10 binned pixels: larger than a streak's width)",
+    "table_band_px": "site choice",
+    "neighbour_weight": "site choice",
 }
 
 _SEVERITIES = {"info": Severity.INFO, "review": Severity.REVIEW, "fail": Severity.FAIL}
@@ -296,6 +309,29 @@ def soft_weight(bad: np.ndarray, reach_px: float) -> np.ndarray:
     return w * w
 
 
+def local_noise_gain(residual: np.ndarray, weight: np.ndarray, scale_hu: float, sigma_px: float) -> np.ndarray:
+    """Factor that brings the local RMS of ``residual`` to the slice's robust level ``scale_hu``.
+
+    The local RMS is the weighted Gaussian mean (SD ``sigma_px``) of ``residual**2``;
+    it is floored at a quarter of ``scale_hu`` so that nearly empty areas are not
+    amplified. Quantum noise differs between regions (inside a wide body, behind bone,
+    in the air beside it) and, in an elongated object, between directions; without this
+    step the noisiest region dominates the spectrum and its direction-dependent noise
+    reads as line energy. A streak narrower than ``sigma_px`` raises the local RMS only
+    in part, so it stays above its surroundings.
+
+    References
+    ----------
+    .. [1] Kak & Slaney (1988), ch. 5 (noise of filtered back-projection depends on the
+       attenuation along each ray).
+    """
+    w = weight.astype(np.float32) if weight.dtype != np.float32 else weight
+    num = ndimage.gaussian_filter(residual * residual, sigma_px, truncate=2.5)
+    den = ndimage.gaussian_filter(w, sigma_px, truncate=2.5)
+    local = np.sqrt(num / np.maximum(den, np.float32(1e-3)))
+    return (np.float32(scale_hu) / np.maximum(local, np.float32(0.25 * scale_hu))).astype(np.float32)
+
+
 def slice_texture(image: np.ndarray, allowed: np.ndarray, cfg: dict[str, Any]) -> SliceTexture | None:
     """Edge-suppressed, clipped high-pass residual of one slice; None if nothing is left.
 
@@ -324,6 +360,9 @@ def slice_texture(image: np.ndarray, allowed: np.ndarray, cfg: dict[str, Any]) -
     limit = np.float32(cfg["clip_sigma"] * scale)
     clipped = np.clip(residual, -limit, limit)
     clipped *= weight
+    reach_eq = float(cfg["noise_equalise_sigma_px"])
+    if reach_eq > 0:
+        clipped *= local_noise_gain(clipped, weight, scale, reach_eq)
     spectrum = sfft.rfft2(clipped.astype(np.float32, copy=False))
     return SliceTexture(residual=clipped, weight=inside, scale_hu=scale, spectrum=spectrum)
 
@@ -595,11 +634,35 @@ def allowed_mask(regions: Regions | None, z: int, factor: int, shape_b: tuple[in
         return allowed
     allowed &= ~bin_mask(~regions.fov, factor)
     if regions.table[z].any():
-        allowed &= ~grow(bin_mask(regions.table[z], factor), 2)
+        table = bin_mask(regions.table[z], factor)
+        allowed &= ~grow(table, 2)
+        allowed &= ~table_band(table, int(cfg["table_band_px"]))
     body = bin_mask(regions.body[z], factor)
     if body.any():
         allowed &= ~(body ^ ndimage.binary_erosion(body))
     return allowed
+
+
+def table_band(table: np.ndarray, margin_px: int) -> np.ndarray:
+    """The rows of a flat table, widened by ``margin_px``, across the whole slice.
+
+    The long straight edges of a table are real edges, and filtered back-projection
+    continues them past the table's ends as faint lines along the edge (the views
+    tangent to a straight edge carry its whole contrast). Both would read as streak
+    energy along the table, so the band of rows the table spans is left out when the
+    table is at least three times wider than it is tall; otherwise nothing is added.
+
+    References
+    ----------
+    .. [1] Kak & Slaney (1988), ch. 3 and 5 (projections tangent to an edge; aliasing).
+    """
+    rows = np.flatnonzero(table.any(axis=1))
+    cols = np.flatnonzero(table.any(axis=0))
+    band = np.zeros(table.shape, dtype=bool)
+    if rows.size == 0 or cols.size < 3 * rows.size:
+        return band
+    band[max(int(rows[0]) - margin_px, 0) : int(rows[-1]) + margin_px + 1] = True
+    return band
 
 
 def _fov_only(regions: Regions | None, z: int) -> bool:
@@ -707,8 +770,28 @@ def screen_volume(volume: Volume, regions: Regions | None, cfg: dict[str, Any]) 
             indices.append(None)
             continue
         profiles[z] = profile
-        indices.append(round(streak_index_of_profile(profile), 3))
+        indices.append(None)
+    indices = [None if z not in profiles else round(slice_index_with_neighbours(profiles, z, float(cfg["neighbour_weight"])), 3) for z in range(nz)]
     return Screen(factor=factor, shape_b=shape_b, profiles=profiles, indices=indices, skipped=skipped)
+
+
+def slice_index_with_neighbours(profiles: dict[int, np.ndarray], z: int, neighbour_weight: float) -> float:
+    """The smaller of slice ``z``'s own streak index and that of its neighbour-weighted profile.
+
+    The weighted profile is ``(1 - 2w) A_z + w A_{z-1} + w A_{z+1}`` (a missing
+    neighbour is replaced by slice ``z`` itself). Streaks from the acquisition or from
+    dense objects persist over neighbouring slices, while the largest of the orientation
+    bins of noise varies from slice to slice; taking the smaller index keeps a slice
+    flagged only when its excess is there in both. An isolated streak keeps at least
+    ``1 - 2w`` of its excess; a one-slice volume is its own neighbour.
+    """
+    own = profiles[z]
+    index = streak_index_of_profile(own)
+    if neighbour_weight <= 0 or (z - 1 not in profiles and z + 1 not in profiles):
+        return index
+    below, above = profiles.get(z - 1, own), profiles.get(z + 1, own)
+    mixed = (1.0 - 2.0 * neighbour_weight) * own + neighbour_weight * (below + above)
+    return min(index, streak_index_of_profile(mixed))
 
 
 def _unusable(image: np.ndarray) -> str | None:
