@@ -70,6 +70,7 @@ DEFAULTS: dict[str, Any] = {
     "esf_conditioning": "auto",  # "auto", "monotone", "none"
     "skin_band_mm": 6.0,
     "table_clearance_mm": 15.0,
+    "skin_max_slices": 32,  # evenly spaced slices the skin edge is measured on
     # reliability and tolerances
     "min_contrast_to_noise": 10.0,
     "min_slices": 8,
@@ -92,6 +93,7 @@ SOURCES: dict[str, str] = {
     "max_insert_diameter_mm": "common practice, no source",
     "skin_band_mm": "Sanders, Hurwitz, Samei, Med Phys 43(10) 2016 (band about the skin outline), width from memory",
     "table_clearance_mm": "site choice",
+    "skin_max_slices": "site choice: tens of slices give tens of thousands of edge pixels",
     "f50_min_per_mm": "site choice",
     "f50_max_per_mm": "site choice",
     "max_f50_contrast_ratio": "site choice",
@@ -625,7 +627,8 @@ def _straight_contrast(stack: np.ndarray, dist: np.ndarray, half: float, px: flo
 def skin_edge_ttf(volume: Volume, regions: Regions, settings: dict[str, Any] | None = None) -> EdgeMeasurement | None:
     """TTF of the patient's skin-air edge along the body outline, away from the table.
 
-    On every slice, sub-pixel outline points are found along the outline normals (where
+    On up to ``skin_max_slices`` evenly spaced slices (every slice of a shorter series),
+    sub-pixel outline points are found along the outline normals (where
     the 2-pixel smoothed image crosses halfway between air and tissue); pixels within
     ``skin_band_mm`` get their signed distance to the nearest outline point along its
     normal, and all slices' pixels build one ESF. Outline points within
@@ -647,8 +650,11 @@ def skin_edge_ttf(volume: Volume, regions: Regions, settings: dict[str, Any] | N
     px = 0.5 * (volume.spacing_mm[1] + volume.spacing_mm[2])
     band = float(s["skin_band_mm"])
     d_all, v_all, zs = [], [], []
-    for z in range(volume.shape[0]):
-        got = _skin_slice(volume.hu[z], regions, z, px, band, float(s["table_clearance_mm"]))
+    nz = volume.shape[0]
+    cache: dict[str, Any] = {}
+    for z in np.unique(np.linspace(0, nz - 1, max(1, min(nz, int(s["skin_max_slices"])))).round().astype(int)):
+        z = int(z)
+        got = _skin_slice(volume.hu[z], regions, z, px, band, float(s["table_clearance_mm"]), cache)
         if got is not None:
             d_all.append(got[0])
             v_all.append(got[1])
@@ -670,31 +676,43 @@ def skin_edge_ttf(volume: Volume, regions: Regions, settings: dict[str, Any] | N
 
 
 def _skin_slice(image: np.ndarray, regions: Regions, z: int, px: float, band_mm: float,
-                clearance_mm: float) -> tuple[np.ndarray, np.ndarray] | None:
-    """Signed distances (mm, + into air) and values of the band pixels of one slice."""
+                clearance_mm: float, cache: dict[str, Any] | None = None) -> tuple[np.ndarray, np.ndarray] | None:
+    """Signed distances (mm, + into air) and values of the band pixels of one slice.
+
+    ``cache`` keeps the distance map to the table and field-of-view edge between slices
+    whose table cross-section is the same (it usually is).
+    """
     body = regions.body[z]
     if body.sum() < 50:
         return None
     boundary = body & ~ndimage.binary_erosion(body)
     bad = ~regions.fov if regions.fov is not None else np.zeros_like(body)
     bad = bad | regions.table[z]
-    bad_dist = ndimage.distance_transform_edt(~bad) * px if bad.any() else np.full(body.shape, np.inf)
+    bad_dist = _distance_to(bad, px, cache)
     edge = np.ones(body.shape, dtype=bool)
     edge[2:-2, 2:-2] = False
     boundary &= (bad_dist > clearance_mm) & ~edge
     by, bx = np.nonzero(boundary)
     if by.size < 20:
         return None
-    smooth = ndimage.gaussian_filter(image.astype(float), 2.0)
+    # everything below reaches at most the band (+ the smoothing kernel) beyond the
+    # outline: work on the outline's box grown by that much, which changes no value used
+    band_px = band_mm / px
+    (y0, x0), box = _grown_box(by, bx, int(math.ceil(band_px)) + 2 + 9, body.shape)
+    smooth = ndimage.gaussian_filter(image[box].astype(float), 2.0)
+    cy, cx = by - y0, bx - x0
     gy, gx = ndimage.sobel(smooth, 0), ndimage.sobel(smooth, 1)
-    g = np.hypot(gy[by, bx], gx[by, bx])
+    g = np.hypot(gy[cy, cx], gx[cy, cx])
     ok = g > 0
-    ny, nx = -gy[by, bx] / np.where(ok, g, 1), -gx[by, bx] / np.where(ok, g, 1)  # towards the air (falling values)
-    pts = _outline_points(smooth, by.astype(float), bx.astype(float), ny, nx, band_mm / px)
+    ny, nx = -gy[cy, cx] / np.where(ok, g, 1), -gx[cy, cx] / np.where(ok, g, 1)  # towards the air (falling values)
+    pts = _outline_points(smooth, cy.astype(float), cx.astype(float), ny, nx, band_px)
     if pts is None:
         return None
     qy, qx, qny, qnx = pts
-    ys, xs = np.nonzero(ndimage.distance_transform_edt(~boundary) * px <= band_mm + px)
+    qy, qx = qy + y0, qx + x0
+    (e0, f0), ebox = _grown_box(by, bx, int(math.ceil(band_px + 1)) + 2, body.shape)
+    ys, xs = np.nonzero(ndimage.distance_transform_edt(~boundary[ebox]) * px <= band_mm + px)
+    ys, xs = ys + e0, xs + f0
     tree = cKDTree(np.column_stack([qy, qx]))
     dist_px, idx = tree.query(np.column_stack([ys, xs]), distance_upper_bound=band_mm / px + 2)
     found = np.isfinite(dist_px)
@@ -702,6 +720,26 @@ def _skin_slice(image: np.ndarray, regions: Regions, z: int, px: float, band_mm:
     signed = ((ys - qy[idx]) * qny[idx] + (xs - qx[idx]) * qnx[idx]) * px
     keep = regions.fov[ys, xs] & ~regions.table[z][ys, xs]
     return signed[keep], image[ys[keep], xs[keep]].astype(float)
+
+
+def _grown_box(ys: np.ndarray, xs: np.ndarray, pad: int, shape: tuple[int, int]
+               ) -> tuple[tuple[int, int], tuple[slice, slice]]:
+    """Bounding box of the points grown by ``pad`` pixels (clipped to ``shape``): its
+    corner and its slices."""
+    y0, x0 = max(0, int(ys.min()) - pad), max(0, int(xs.min()) - pad)
+    y1, x1 = min(shape[0], int(ys.max()) + 1 + pad), min(shape[1], int(xs.max()) + 1 + pad)
+    return (y0, x0), (slice(y0, y1), slice(x0, x1))
+
+
+def _distance_to(bad: np.ndarray, px: float, cache: dict[str, Any] | None) -> np.ndarray:
+    """Distance (mm) of every pixel to the nearest ``bad`` pixel (inf when none), reused
+    from ``cache`` when ``bad`` is the mask it was computed for."""
+    if cache is not None and "bad" in cache and np.array_equal(cache["bad"], bad):
+        return cache["dist"]
+    dist = ndimage.distance_transform_edt(~bad) * px if bad.any() else np.full(bad.shape, np.inf)
+    if cache is not None:
+        cache["bad"], cache["dist"] = bad, dist
+    return dist
 
 
 def _outline_points(smooth: np.ndarray, by: np.ndarray, bx: np.ndarray, ny: np.ndarray, nx: np.ndarray,
