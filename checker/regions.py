@@ -125,17 +125,54 @@ def _circle_of(mask2d: np.ndarray) -> tuple[tuple[float, float], float]:
     return (float(ys.mean()), float(xs.mean())), float(np.sqrt(ys.size / np.pi))
 
 
-def _components(mask: np.ndarray) -> tuple[np.ndarray, int, np.ndarray]:
+def _components(mask: np.ndarray) -> tuple[np.ndarray, int, np.ndarray, list]:
+    """Labels, count, size of every label (index 0 unused) and the bounding boxes."""
     lab, n = ndimage.label(mask)
+    objects = ndimage.find_objects(lab)
     if n > 64:
         sizes = np.bincount(lab.ravel(), minlength=n + 1)
     else:  # few components: count each inside its bounding box
         sizes = np.zeros(n + 1, dtype=np.int64)
-        for i, sl in enumerate(ndimage.find_objects(lab), start=1):
+        for i, sl in enumerate(objects, start=1):
             if sl is not None:
                 sizes[i] = np.count_nonzero(lab[sl] == i)
     sizes[0] = 0
-    return lab, n, sizes
+    return lab, n, sizes, objects
+
+
+def _or_window(a: np.ndarray, half: int, axis: int) -> np.ndarray:
+    """OR of ``a`` over the window ``i - half .. i + half`` along ``axis`` (clipped at the
+    ends), by doubling the window span: about log2(2 half + 1) passes."""
+    length = 2 * half + 1
+    n = a.shape[axis]
+    pad = [(0, 0)] * a.ndim
+    pad[axis] = (half, 0)
+    b = np.pad(a, pad)  # False before the start: the same as clipping the window
+    span = 1
+    while span < length:
+        step = min(span, length - span)
+        lo = [slice(None)] * a.ndim
+        hi = [slice(None)] * a.ndim
+        lo[axis], hi[axis] = slice(0, -step), slice(step, None)
+        b[tuple(lo)] |= b[tuple(hi)]  # b[i] = OR over a[i .. i + span + step - 1]
+        span += step
+    keep = [slice(None)] * a.ndim
+    keep[axis] = slice(0, n)
+    return b[tuple(keep)]
+
+
+def dilate_in_plane(mask: np.ndarray, half: int, chunk: int = 32) -> np.ndarray:
+    """``mask`` dilated by a (2 half + 1)-pixel square in every slice.
+
+    The same as ``ndimage.maximum_filter(mask, size=(1, 2 half + 1, 2 half + 1))``
+    (whose reflected border only repeats pixels already in the window), computed a few
+    slices at a time with shifted ORs.
+    """
+    out = np.empty(mask.shape, dtype=bool)
+    for z0 in range(0, mask.shape[0], chunk):
+        part = _or_window(mask[z0 : z0 + chunk], half, axis=2)
+        out[z0 : z0 + chunk] = _or_window(part, half, axis=1)
+    return out
 
 
 def fill_holes_in_plane(mask: np.ndarray) -> np.ndarray:
@@ -196,13 +233,13 @@ def find_regions(
     notes: list[str] = []
 
     dense = (hu > body_threshold_hu) & fov2d[None]
-    lab, n, sizes = _components(dense)
+    lab, n, sizes, objects = _components(dense)
+    del dense
     body = np.zeros(hu.shape, dtype=bool)
     table = np.zeros(hu.shape, dtype=bool)
     centroid = None
     if n:
         body_label = int(np.argmax(sizes))
-        objects = ndimage.find_objects(lab)
         body_bbox = objects[body_label - 1]
         body[body_bbox] = fill_holes_in_plane(lab[body_bbox] == body_label)
         for i, sl in enumerate(objects, start=1):
@@ -217,9 +254,9 @@ def find_regions(
         notes.append("no body found: nothing above %.0f HU inside the field of view" % body_threshold_hu)
 
     margin_px = max(1, int(round(margin_mm / min(volume.spacing_mm[1:]))))
-    solid = (body | table).view(np.uint8)
-    grown = ndimage.maximum_filter(solid, size=(1, 2 * margin_px + 1, 2 * margin_px + 1)).astype(bool)
-    air = fov2d[None] & ~grown
+    grown = dilate_in_plane(body | table, margin_px)
+    air = np.logical_not(grown, out=grown)
+    air &= fov2d[None]
     if volume.padding_mask is not None:
         air &= ~volume.padding_mask[None]
     return Regions(
