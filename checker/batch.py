@@ -23,7 +23,7 @@ from typing import Any, Callable, Iterable
 from . import __version__
 from .baseline import compare_to_baseline, protocol_key
 from .errors import ReconauditError
-from .fsutil import atomic_write_text, file_fingerprint, safe_name, short_hash
+from .fsutil import atomic_write_text, safe_name, short_hash
 from .profile import Profile
 from .results import SCHEMA, Finding, Severity, dumps, to_jsonable, worst_verdict
 

@@ -17,7 +17,6 @@ import json
 import logging
 import os
 import sys
-import time
 from pathlib import Path
 from typing import Any, Sequence
 

@@ -32,6 +32,7 @@ import sqlite3
 import uuid
 from pathlib import Path
 from typing import Any, Iterable, Mapping, Sequence
+from .results import finite_number
 
 #: Version of the table layout below; stored in ``schema_info``.
 SCHEMA_VERSION = 1
@@ -82,15 +83,6 @@ class HistoryError(Exception):
 
 
 # ----------------------------------------------------------------------------- metrics
-def _number(value: Any) -> float | None:
-    """``value`` as a finite float, or None (bools, strings, NaN and None are not numbers)."""
-    if isinstance(value, bool) or value is None:
-        return None
-    try:
-        f = float(value)
-    except (TypeError, ValueError):
-        return None
-    return f if math.isfinite(f) else None
 
 
 def _record_of(series_record: Mapping[str, Any], name: str) -> Mapping[str, Any] | None:
@@ -125,9 +117,9 @@ def _ttf_metrics(rec: Mapping[str, Any]) -> dict[str, float]:
     for edge in edges:
         if not isinstance(edge, Mapping):
             continue
-        key = _edge_key(_number(edge.get("contrast_hu")), seen)
+        key = _edge_key(finite_number(edge.get("contrast_hu")), seen)
         for metric in ("f50_per_mm", "f10_per_mm"):
-            v = _number(edge.get(metric))
+            v = finite_number(edge.get(metric))
             if v is not None:
                 out[f"ttf.{metric}@{key}"] = v
     return out
@@ -171,7 +163,7 @@ def flatten_metrics(series_record: Mapping[str, Any]) -> dict[str, float]:
         if rec is None:
             continue
         for key in keys:
-            v = _number(rec.get(key))
+            v = finite_number(rec.get(key))
             if v is not None:
                 out[f"{name}.{key}"] = v
     streaks = _record_of(series_record, "streaks")
@@ -203,7 +195,7 @@ def control_limits(values: Iterable[float]) -> tuple[float, float, float]:
     ----------
     .. [1] Shewhart, W. A., "Economic Control of Quality of Manufactured Product", 1931.
     """
-    finite = [float(v) for v in values if _number(v) is not None]
+    finite = [float(v) for v in values if finite_number(v) is not None]
     if len(finite) < 2:
         raise ValueError(f"control limits need at least 2 finite baseline values, got {len(finite)}")
     mean = math.fsum(finite) / len(finite)

@@ -144,5 +144,16 @@ def to_jsonable(obj: Any) -> Any:
     return obj
 
 
+def finite_number(value: Any) -> float | None:
+    """``value`` as a finite float, or None (bools, strings, NaN and None are not numbers)."""
+    if isinstance(value, bool) or value is None:
+        return None
+    try:
+        f = float(value)
+    except (TypeError, ValueError):
+        return None
+    return f if math.isfinite(f) else None
+
+
 def dumps(obj: Any) -> str:
     return json.dumps(to_jsonable(obj), indent=2, allow_nan=False)

@@ -27,6 +27,7 @@ from matplotlib.patches import Patch, Rectangle
 from ..regions import Regions
 from ..results import AnalysisResult
 from ..volume import Volume
+from ..results import finite_number
 
 log = logging.getLogger(__name__)
 
@@ -85,14 +86,6 @@ def _floats(seq: Any) -> np.ndarray | None:
     return arr if arr.ndim == 1 and arr.size > 0 and np.isfinite(arr).any() else None
 
 
-def _finite(value: Any) -> float | None:
-    if isinstance(value, bool) or value is None:
-        return None
-    try:
-        f = float(value)
-    except (TypeError, ValueError):
-        return None
-    return f if math.isfinite(f) else None
 
 
 def _new_figure(width_in: float, height_in: float) -> Figure:
@@ -115,7 +108,7 @@ def most_flagged_streak_slice(streaks: Mapping[str, Any] | None, nz: int) -> int
     """The flagged slice with the largest per-slice streak index, or None."""
     if not streaks:
         return None
-    flagged = [int(z) for z in streaks.get("flagged_slices") or [] if _finite(z) is not None and 0 <= int(z) < nz]
+    flagged = [int(z) for z in streaks.get("flagged_slices") or [] if finite_number(z) is not None and 0 <= int(z) < nz]
     if not flagged:
         return None
     per_slice = _floats(streaks.get("slice_index"))
@@ -134,7 +127,7 @@ def largest_air_structure_slice(air: Mapping[str, Any] | None, nz: int, *, flagg
     with_z = [s for s in structures if _floats(s.get("centroid_zyx_vox")) is not None]
     if not with_z:
         return None
-    best = max(with_z, key=lambda s: (bool(s.get("flagged")), _finite(s.get("volume_mm3")) or 0.0))
+    best = max(with_z, key=lambda s: (bool(s.get("flagged")), finite_number(s.get("volume_mm3")) or 0.0))
     z = int(round(float(_floats(best["centroid_zyx_vox"])[0])))
     return min(max(z, 0), nz - 1)
 
@@ -226,7 +219,7 @@ def draw_axial_thumbnail(volume: Volume, results: Mapping[str, Any], z: int, rea
 def _structure_flags(air: Mapping[str, Any]) -> dict[int, bool]:
     flags: dict[int, bool] = {}
     for s in air.get("structures") or []:
-        if isinstance(s, Mapping) and _finite(s.get("id")) is not None:
+        if isinstance(s, Mapping) and finite_number(s.get("id")) is not None:
             flags[int(s["id"])] = bool(s.get("flagged"))
     return flags
 
@@ -306,10 +299,10 @@ def draw_nps_curve(nps: Mapping[str, Any], baseline: Mapping[str, Any] | None, p
     if base is not None:
         ax.plot(*base, color=COLOURS["baseline"], lw=1.4, ls="--", label="baseline")
     for key, style, text in (("f_av_per_mm", ":", "f_av"), ("f_peak_per_mm", "-.", "f_peak")):
-        v = _finite(nps.get(key))
+        v = finite_number(nps.get(key))
         if v is not None:
             ax.axvline(v, color=COLOURS["current"], ls=style, lw=1.0, label=f"{text} {v:.3f} mm$^{{-1}}$")
-    noise = _finite(nps.get("noise_hu"))
+    noise = finite_number(nps.get("noise_hu"))
     title = "Noise power spectrum" + (f" (noise {noise:.1f} HU)" if noise is not None else "")
     ax.set_title(title, fontsize=10)
     ax.set_xlabel("spatial frequency (mm$^{-1}$)")
@@ -330,18 +323,18 @@ def _edges(rec: Mapping[str, Any] | None) -> list[Mapping[str, Any]]:
 
 
 def _matching_edge(edge: Mapping[str, Any], candidates: list[Mapping[str, Any]]) -> Mapping[str, Any] | None:
-    c = _finite(edge.get("contrast_hu"))
+    c = finite_number(edge.get("contrast_hu"))
     if c is None or not candidates:
         return None
-    scored = [(abs((_finite(b.get("contrast_hu")) or math.inf) - c), i) for i, b in enumerate(candidates)]
+    scored = [(abs((finite_number(b.get("contrast_hu")) or math.inf) - c), i) for i, b in enumerate(candidates)]
     diff, i = min(scored)
     return candidates[i] if diff <= max(20.0, 0.2 * abs(c)) else None
 
 
 def _edge_label(edge: Mapping[str, Any]) -> str:
-    c = _finite(edge.get("contrast_hu"))
+    c = finite_number(edge.get("contrast_hu"))
     text = f"{c:+.0f} HU" if c is not None else "edge"
-    f50 = _finite(edge.get("f50_per_mm"))
+    f50 = finite_number(edge.get("f50_per_mm"))
     if f50 is not None:
         text += f", f50 {f50:.3f}"
     if edge.get("reliable") is False:
@@ -368,7 +361,7 @@ def draw_ttf_curves(ttf: Mapping[str, Any], baseline: Mapping[str, Any] | None, 
         colour = palette[i % len(palette)]
         f, t = _curve(edge, "frequency_per_mm", "ttf")
         ax.plot(f, t, color=colour, lw=1.7, ls=":" if edge.get("reliable") is False else "-", label=_edge_label(edge))
-        f50 = _finite(edge.get("f50_per_mm"))
+        f50 = finite_number(edge.get("f50_per_mm"))
         if f50 is not None:
             ax.plot([f50], [0.5], marker="o", color=colour, ms=5)
         match = _matching_edge(edge, base_edges)
@@ -445,7 +438,7 @@ def draw_streak_polar(streaks: Mapping[str, Any], path: Path) -> Path | None:
 def _streak_tolerance(streaks: Mapping[str, Any], tolerances: Mapping[str, Any] | None) -> float | None:
     for source in (tolerances or {}, streaks):
         for key in ("index_tolerance", "index_review", "tolerance", "index_limit"):
-            v = _finite(source.get(key)) if isinstance(source, Mapping) else None
+            v = finite_number(source.get(key)) if isinstance(source, Mapping) else None
             if v is not None:
                 return v
     return None
@@ -460,7 +453,7 @@ def draw_streak_profile(streaks: Mapping[str, Any], tolerances: Mapping[str, Any
     fig = _new_figure(5.4, 2.8)
     ax = fig.add_subplot(111)
     ax.plot(z, per_slice, color=COLOURS["current"], lw=1.4, marker="." if z.size < 80 else None, label="streak index")
-    flagged = [int(f) for f in streaks.get("flagged_slices") or [] if _finite(f) is not None and 0 <= int(f) < z.size]
+    flagged = [int(f) for f in streaks.get("flagged_slices") or [] if finite_number(f) is not None and 0 <= int(f) < z.size]
     if flagged:
         ax.plot(flagged, per_slice[flagged], ls="none", marker="v", color=COLOURS["streak"], ms=6, label="flagged slice")
     tol = _streak_tolerance(streaks, tolerances)

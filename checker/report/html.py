@@ -12,7 +12,6 @@ named after a patient, for instance).
 from __future__ import annotations
 
 import datetime as _dt
-import math
 import os
 import tempfile
 from pathlib import Path
@@ -23,6 +22,7 @@ import jinja2
 from .. import SAFETY_NOTICE
 from ..history import flatten_metrics
 from ..volume import IDENTIFIER_KEYS, SAFE_METADATA_KEYS
+from ..results import finite_number
 
 _TEMPLATES = Path(__file__).with_name("templates")
 WITHHELD = "[withheld]"
@@ -70,19 +70,11 @@ FIGURE_CAPTIONS: dict[str, str] = {
 
 
 # ---------------------------------------------------------------------------- values
-def _num(value: Any) -> float | None:
-    if isinstance(value, bool) or value is None:
-        return None
-    try:
-        f = float(value)
-    except (TypeError, ValueError):
-        return None
-    return f if math.isfinite(f) else None
 
 
 def fmt(value: Any, digits: int = 4) -> str:
     """A number with ``digits`` significant digits, or an en dash when missing."""
-    f = _num(value)
+    f = finite_number(value)
     if f is None:
         return "–"
     if f == int(f) and abs(f) < 1e6:
@@ -111,11 +103,11 @@ def headline_f50(ttf: Mapping[str, Any] | None) -> tuple[float | None, float | N
     """f50 of the most trustworthy edge (reliable first, then highest contrast-to-noise)."""
     if ttf is None:
         return None, None
-    edges = [e for e in ttf.get("edges") or [] if isinstance(e, Mapping) and _num(e.get("f50_per_mm")) is not None]
+    edges = [e for e in ttf.get("edges") or [] if isinstance(e, Mapping) and finite_number(e.get("f50_per_mm")) is not None]
     if not edges:
         return None, None
-    best = max(edges, key=lambda e: (e.get("reliable") is not False, _num(e.get("contrast_to_noise")) or 0.0))
-    return _num(best.get("f50_per_mm")), _num(best.get("contrast_hu"))
+    best = max(edges, key=lambda e: (e.get("reliable") is not False, finite_number(e.get("contrast_to_noise")) or 0.0))
+    return finite_number(best.get("f50_per_mm")), finite_number(best.get("contrast_hu"))
 
 
 def _verdict_key(series: Mapping[str, Any]) -> str:
@@ -212,12 +204,12 @@ def _baseline_metrics(baseline: Any) -> dict[str, float]:
     changes = baseline.get("changes")
     if isinstance(changes, Mapping):
         for name, change in changes.items():
-            if isinstance(change, Mapping) and _num(change.get("baseline")) is not None:
+            if isinstance(change, Mapping) and finite_number(change.get("baseline")) is not None:
                 out[_BASELINE_NAMES.get(str(name), str(name))] = float(change["baseline"])
     metrics = baseline.get("metrics")
     if isinstance(metrics, Mapping):
         for name, value in metrics.items():
-            if _num(value) is not None:
+            if finite_number(value) is not None:
                 out.setdefault(_BASELINE_NAMES.get(str(name), str(name)), float(value))
     if not out:
         out = {k: v for k, v in flatten_metrics(baseline).items() if not k.startswith("ttf.")}
@@ -262,7 +254,7 @@ def _measurement_rows(series: Mapping[str, Any]) -> list[dict[str, str]]:
 def _nearest(edges: list[Mapping[str, Any]], contrast: float | None) -> Mapping[str, Any] | None:
     if contrast is None:
         return None
-    scored = [(abs(c - contrast), e) for e in edges if (c := _num(e.get("contrast_hu"))) is not None]
+    scored = [(abs(c - contrast), e) for e in edges if (c := finite_number(e.get("contrast_hu"))) is not None]
     if not scored:
         return None
     diff, edge = min(scored, key=lambda t: t[0])
@@ -279,10 +271,10 @@ def _edge_rows(series: Mapping[str, Any]) -> list[dict[str, str]]:
     for e in ttf.get("edges") or []:
         if not isinstance(e, Mapping):
             continue
-        contrast = _num(e.get("contrast_hu"))
-        f50 = _num(e.get("f50_per_mm"))
+        contrast = finite_number(e.get("contrast_hu"))
+        f50 = finite_number(e.get("f50_per_mm"))
         ref = _nearest(base_edges, contrast)
-        ref_f50 = _num(ref.get("f50_per_mm")) if ref else None
+        ref_f50 = finite_number(ref.get("f50_per_mm")) if ref else None
         reliable = e.get("reliable") is not False
         rows.append({
             "kind": str(e.get("kind") or "edge"),
@@ -354,10 +346,10 @@ def _headline(series: Mapping[str, Any]) -> dict[str, Any]:
         flagged_air = sum(1 for s in air["structures"] if isinstance(s, Mapping) and s.get("flagged"))
     f50, f50_contrast = headline_f50(ttf)
     return {
-        "streak_index": _num(streaks.get("index")) if streaks else None,
+        "streak_index": finite_number(streaks.get("index")) if streaks else None,
         "air_flagged": flagged_air,
-        "noise_hu": _num(nps.get("noise_hu")) if nps else None,
-        "f_av_per_mm": _num(nps.get("f_av_per_mm")) if nps else None,
+        "noise_hu": finite_number(nps.get("noise_hu")) if nps else None,
+        "f_av_per_mm": finite_number(nps.get("f_av_per_mm")) if nps else None,
         "f50_per_mm": f50,
         "f50_contrast_hu": f50_contrast,
     }
