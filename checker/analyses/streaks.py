@@ -309,10 +309,22 @@ def soft_weight(bad: np.ndarray, reach_px: float) -> np.ndarray:
     return w * w
 
 
+def smooth_box2(values: np.ndarray, sigma_px: float) -> np.ndarray:
+    """Two passes of a box filter with the variance of a Gaussian of SD ``sigma_px``.
+
+    Two boxes of width w have variance 2 (w^2 - 1) / 12 per axis (analytic); the cost
+    does not grow with the width, unlike a sampled Gaussian.
+    """
+    width = max(1, int(round(math.sqrt(6.0 * sigma_px * sigma_px + 1.0))))
+    out = ndimage.uniform_filter(values, width, mode="constant")
+    return ndimage.uniform_filter(out, width, mode="constant")
+
+
 def local_noise_gain(residual: np.ndarray, weight: np.ndarray, scale_hu: float, sigma_px: float) -> np.ndarray:
     """Factor that brings the local RMS of ``residual`` to the slice's robust level ``scale_hu``.
 
-    The local RMS is the weighted Gaussian mean (SD ``sigma_px``) of ``residual**2``;
+    The local RMS is the weighted mean of ``residual**2`` under a smooth window of SD
+    ``sigma_px`` (:func:`smooth_box2`);
     it is floored at a quarter of ``scale_hu`` so that nearly empty areas are not
     amplified. Quantum noise differs between regions (inside a wide body, behind bone,
     in the air beside it) and, in an elongated object, between directions; without this
@@ -326,9 +338,9 @@ def local_noise_gain(residual: np.ndarray, weight: np.ndarray, scale_hu: float, 
        attenuation along each ray).
     """
     w = weight.astype(np.float32) if weight.dtype != np.float32 else weight
-    num = ndimage.gaussian_filter(residual * residual, sigma_px, truncate=2.5)
-    den = ndimage.gaussian_filter(w, sigma_px, truncate=2.5)
-    local = np.sqrt(num / np.maximum(den, np.float32(1e-3)))
+    num = smooth_box2(residual * residual, sigma_px)
+    den = smooth_box2(w, sigma_px)
+    local = np.sqrt(np.maximum(num, np.float32(0.0)) / np.maximum(den, np.float32(1e-3)))
     return (np.float32(scale_hu) / np.maximum(local, np.float32(0.25 * scale_hu))).astype(np.float32)
 
 
