@@ -9,12 +9,14 @@ A series whose worker dies is retried once, then recorded as an error.
 """
 from __future__ import annotations
 
+import contextlib
 import json
 import logging
 import os
+import tempfile
 import time
 import traceback
-from concurrent.futures import FIRST_COMPLETED, ProcessPoolExecutor, wait
+from concurrent.futures import ProcessPoolExecutor, as_completed
 from concurrent.futures.process import BrokenProcessPool
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -177,33 +179,72 @@ def _crash_record(task: SeriesTask, why: str) -> dict[str, Any]:
 
 def run_local(tasks: list[SeriesTask], on_done: Callable[[dict[str, Any]], None], *, workers: int = 1,
               max_attempts: int = 2) -> None:
-    """Run tasks in ``workers`` processes (in-process when workers == 1)."""
+    """Run tasks in ``workers`` processes (in-process when workers == 1).
+
+    When a worker dies the whole pool breaks and every unfinished task fails with it, so
+    the death is charged only to the tasks that had started (each worker marks the task
+    it runs); the others are resubmitted free. A charged task is retried alone in its
+    own process, so a second death is unambiguously its own and it is recorded as an
+    error (``worker_died``) after ``max_attempts`` attempts.
+    """
     if workers <= 1:
         for task in tasks:
             on_done(_safe_run(task))
         return
     attempts = {t.series_id: 0 for t in tasks}
-    pending = list(tasks)
-    while pending:
-        with ProcessPoolExecutor(max_workers=workers, max_tasks_per_child=25) as pool:
-            futures = {}
-            for task in pending:
-                attempts[task.series_id] += 1
-                futures[pool.submit(_safe_run, task)] = task
-            pending = []
-            not_done = set(futures)
-            while not_done:
-                done, not_done = wait(not_done, return_when=FIRST_COMPLETED)
-                for fut in done:
-                    task = futures[fut]
-                    try:
-                        on_done(fut.result())
-                    except BrokenProcessPool as exc:
-                        if attempts[task.series_id] < max_attempts:
-                            log.warning("%s: worker died; retrying once", task.series_id)
-                            pending.append(task)
-                        else:
-                            on_done(_crash_record(task, str(exc) or "process pool broken"))
+    shared, alone = list(tasks), []
+    with tempfile.TemporaryDirectory(prefix="reconaudit-running-") as marks:
+        while shared or alone:
+            groups = ([(shared, workers)] if shared else []) + [([t], 1) for t in alone]
+            shared, alone = [], []
+            for group, n_proc in groups:
+                lost = _pool_round(group, on_done, n_proc, marks)
+                if lost and not any(started for _, _, started in lost):  # broke before any task ran
+                    lost = [(task, why, True) for task, why, _ in lost]
+                for task, why, started in lost:
+                    if not started:
+                        shared.append(task)  # never ran: resubmitted, no attempt charged
+                    elif attempts[task.series_id] + 1 < max_attempts:
+                        attempts[task.series_id] += 1
+                        log.warning("%s: worker died; retrying once, alone", task.series_id)
+                        alone.append(task)
+                    else:
+                        on_done(_crash_record(task, why))
+
+
+def _pool_round(tasks: list[SeriesTask], on_done: Callable[[dict[str, Any]], None], workers: int,
+                marks: str) -> list[tuple[SeriesTask, str, bool]]:
+    """Run ``tasks`` in one pool; return (task, reason, started) for those lost with the pool."""
+    lost = []
+    with ProcessPoolExecutor(max_workers=min(workers, len(tasks)), max_tasks_per_child=25) as pool:
+        futures = {pool.submit(_marked_run, task, marks): task for task in tasks}
+        for fut in as_completed(futures):
+            task = futures[fut]
+            try:
+                record = fut.result()
+            except BrokenProcessPool as exc:
+                started = os.path.exists(_mark_path(marks, task))
+                lost.append((task, str(exc) or "process pool broken", started))
+                continue
+            on_done(record)
+    for task, _, _ in lost:
+        with contextlib.suppress(FileNotFoundError):
+            os.unlink(_mark_path(marks, task))
+    return lost
+
+
+def _mark_path(marks: str, task: SeriesTask) -> str:
+    return os.path.join(marks, f"{short_hash(task.series_id, length=16)}.running")
+
+
+def _marked_run(task: SeriesTask, marks: str) -> dict[str, Any]:
+    """_safe_run in a pool worker, with a marker file present while the task runs."""
+    path = _mark_path(marks, task)
+    with open(path, "w"):
+        pass
+    record = _safe_run(task)
+    os.unlink(path)
+    return record
 
 
 def run_dask(tasks: list[SeriesTask], on_done: Callable[[dict[str, Any]], None], *, address: str,
