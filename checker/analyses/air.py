@@ -155,11 +155,16 @@ def _air_sample(hu: np.ndarray, air: np.ndarray, max_samples: int = 2_000_000) -
     return hu[sl][air[sl]].astype(np.float64)
 
 
-def robust_mean_and_noise(values: np.ndarray, clip_sigma: float = 4.0, iterations: int = 3) -> tuple[float, float]:
+def robust_mean_and_noise(
+    values: np.ndarray, clip_sigma: float = 4.0, iterations: int = 3, max_median_samples: int = 250_000
+) -> tuple[float, float]:
     """Mean and standard deviation of ``values`` after iterative robust clipping.
 
     Values farther than ``clip_sigma`` robust standard deviations (1.4826 x MAD) from the
-    median are left out, so structures in the air do not bias the air's statistics.
+    median are left out, so structures in the air do not bias the air's statistics. The
+    median and MAD that set the clipping bounds come from a regular subsample of at most
+    ``max_median_samples`` values (their relative standard error is then about 0.2 %,
+    which moves a 4-SD bound by less than 0.01 SD); the mean and SD use every value kept.
 
     References
     ----------
@@ -171,13 +176,33 @@ def robust_mean_and_noise(values: np.ndarray, clip_sigma: float = 4.0, iteration
     if v.size == 0:
         return float("nan"), float("nan")
     keep = v
+    lo, hi = -np.inf, np.inf
     for _ in range(iterations):
-        med = float(np.median(keep))
-        mad = 1.4826 * float(np.median(np.abs(keep - med)))
+        part = _subsample(keep, max_median_samples)
+        med = float(np.median(part))
+        mad = 1.4826 * float(np.median(np.abs(part - med)))
         if mad <= 0:
             break
-        keep = v[np.abs(v - med) <= clip_sigma * mad]
+        lo, hi = med - clip_sigma * mad, med + clip_sigma * mad
+        keep = v[(v >= lo) & (v <= hi)]
     return float(keep.mean()), float(keep.std())
+
+
+def _padded_box(mask2d: np.ndarray, pad: int) -> tuple[slice, slice] | None:
+    """Bounding box of a (y, x) mask grown by ``pad`` pixels (clipped); None when empty.
+
+    Erosions and local filters of the mask's pixels computed on this box equal those of
+    the whole image: everything within ``pad`` of the mask lies inside it.
+    """
+    rows = np.flatnonzero(mask2d.any(axis=1))
+    if rows.size == 0:
+        return None
+    cols = np.flatnonzero(mask2d.any(axis=0))
+    ny, nx = mask2d.shape
+    return (
+        slice(max(0, int(rows[0]) - pad), min(ny, int(rows[-1]) + 1 + pad)),
+        slice(max(0, int(cols[0]) - pad), min(nx, int(cols[-1]) + 1 + pad)),
+    )
 
 
 def body_noise_hu(volume: Volume, regions: Regions, max_slices: int = 8) -> float:
@@ -185,7 +210,8 @@ def body_noise_hu(volume: Volume, regions: Regions, max_slices: int = 8) -> floa
 
     Local SD over about 6 mm squares, on up to ``max_slices`` evenly spaced slices, at
     soft-tissue pixels (-100..+200 HU) of the body eroded by 6 mm. NaN when there are
-    too few such pixels.
+    too few such pixels. Each slice is worked on the body's bounding box grown by the
+    filter and erosion sizes (the same values as on the whole slice).
 
     References
     ----------
@@ -199,8 +225,11 @@ def body_noise_hu(volume: Volume, regions: Regions, max_slices: int = 8) -> floa
     zs = np.unique(np.linspace(0, hu.shape[0] - 1, min(max_slices, hu.shape[0])).round().astype(int))
     sds = []
     for z in zs:
-        inner = ndimage.binary_erosion(regions.body[z], iterations=erode)
-        img = hu[z].astype(np.float64)
+        box = _padded_box(regions.body[z], size + erode + 2)
+        if box is None:
+            continue
+        inner = ndimage.binary_erosion(regions.body[z][box], iterations=erode)
+        img = hu[z][box].astype(np.float64)
         tissue = inner & (img > -100) & (img < 200)
         if tissue.sum() < 50:
             continue
