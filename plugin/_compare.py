@@ -20,7 +20,7 @@ from reconaudit.checker.results import Severity
 from reconaudit.checker.volume import Volume
 
 from ._geometry import LayerGeometry, layer_geometry
-from ._layers import LayerData, ResultView, TableRow, _meta, format_value
+from ._layers import LayerData, ResultView, TableRow, _meta, format_value, short_source
 
 Progress = tuple[str, float]
 
@@ -118,7 +118,10 @@ def difference_colours(record: Mapping[str, Any]) -> dict[Any, str]:
 
 def comparison_name(what: str, test_name: str, reference_name: str) -> str:
     """'<what> · <test> vs <reference>': the layer names of one comparison."""
-    return f"{what} · {test_name} vs {reference_name}"
+    test, ref = short_source(test_name), short_source(reference_name)
+    if test.startswith("series ") and ref.startswith("series "):
+        ref = ref[len("series "):]
+    return f"{what} · {test} vs {ref}"
 
 
 def differences_layer(result: ComparisonResult, geometry: LayerGeometry, test_name: str, reference_name: str) -> LayerData:
@@ -157,7 +160,7 @@ def centres_layer(record: Mapping[str, Any], geometry: LayerGeometry, test_name:
     colours = [COLOUR_ONLY_IN_TEST if kind == "only_in_test" else COLOUR_ONLY_IN_REFERENCE for kind, _ in items]
     size_vox = max(3.0, 5.0 / max(min(geometry.scale[1:]), 1e-6))
     kwargs = {
-        "name": comparison_name("difference centres", test_name, reference_name),
+        "name": comparison_name("centres", test_name, reference_name),
         "scale": geometry.scale,
         "translate": geometry.translate,
         "size": size_vox,
@@ -194,21 +197,22 @@ def shift_rows(record: Mapping[str, Any], geometry: LayerGeometry) -> list[Table
     """Rows of the body-surface shift statistics and the rigid offset."""
     shift = record.get("body_surface_shift_mm") or {}
     rows = []
-    for key, what in (("mean", "surface shift, mean (signed)"), ("p95", "surface shift, 95th percentile of |shift|")):
-        rows.append(TableRow(COMPARE, what, format_value(shift.get(key)), what, unit="mm" if shift.get(key) is not None else ""))
+    for key, what, note in (("mean", "surface shift, mean", "signed: + = test surface outside the reference's"),
+                            ("p95", "surface shift, p95", "95th percentile of |shift| over both surfaces")):
+        rows.append(TableRow(COMPARE, what, format_value(shift.get(key)), note, unit="mm" if shift.get(key) is not None else ""))
     at = shift.get("max_at_zyx_vox")
     centre = tuple(float(v) for v in at) if at is not None else None
     rows.append(TableRow(COMPARE, "surface shift, largest", format_value(shift.get("max")),
-                         f"largest surface shift, at {_lps_text(shift.get('max_at_mm'))}", centre,
+                         f"at {_lps_text(shift.get('max_at_mm'))}", centre,
                          unit="mm" if shift.get("max") is not None else "", geometry=geometry))
     frac = shift.get("beyond_tolerance_fraction")
     if frac is not None:
         rows.append(TableRow(COMPARE, "surface beyond tolerance", f"{100.0 * float(frac):.1f}",
-                             "share of surface voxels displaced beyond the tolerance", unit="%"))
+                             "share of the surface voxels displaced beyond the tolerance", unit="%"))
     offset = record.get("rigid_offset_mm")
     if offset is not None:
         text = ", ".join(f"{a} {format_signed(v, 1)}" for a, v in zip("xyz", offset))
-        rows.append(TableRow(COMPARE, "rigid offset", "", f"rigid offset of the test (LPS mm): {text}"))
+        rows.append(TableRow(COMPARE, "rigid offset", "", f"of the test, LPS: {text} mm"))
     return rows
 
 
@@ -237,7 +241,7 @@ def texture_rows(record: Mapping[str, Any]) -> list[TableRow]:
             rows.append(TableRow(COMPARE, what, format_value(item["ratio"]), what + " (test / reference)", unit="ratio"))
     sd = (record.get("difference_statistics") or {}).get("sd_diff_hu")
     if sd is not None:
-        rows.append(TableRow(COMPARE, "difference noise", format_value(sd), "SD of the smoothed difference image", unit="HU"))
+        rows.append(TableRow(COMPARE, "difference noise", format_value(sd), "SD of the smoothed difference image (inside the body)", unit="HU"))
     return rows
 
 

@@ -48,7 +48,7 @@ EDITABLE = {("nps", "rois"), ("ttf", "points")}
 
 # Colours (our own choice).
 COLOUR_LABELS = "#f5d90a"  # flagged structures in the air
-COLOUR_LABELS_OTHER = "#7f8c99"  # structures of kinds not flagged (touching the body, table, ...)
+COLOUR_LABELS_OTHER = "#7f8c9966"  # structures of kinds not flagged (touching the body, table, ...): faint
 COLOUR_SEGMENTS = "#ff7b39"
 COLOUR_ROIS = "#35d0ff"
 COLOUR_POINTS = "#ff4fd8"
@@ -83,12 +83,30 @@ class ResultView:
     rows: list[TableRow] = field(default_factory=list)
 
 
+SHORT_SOURCE_CHARS = 26
+
+
+def short_source(source: str) -> str:
+    """A short tag of the image layer name for overlay names: the series number if it has one.
+
+    ``"Torso FH-T1, 120 deg arc (series 4)"`` -> ``"series 4"``; a short name stays as it
+    is; a long one is cut to :data:`SHORT_SOURCE_CHARS` characters with an ellipsis. The
+    full name stays in the layer's metadata.
+    """
+    import re
+
+    found = re.search(r"\((series [^)]+)\)(\s*\[\d+/\d+\])?\s*$", source)
+    if found:
+        return found.group(1) + (found.group(2) or "")
+    return source if len(source) <= SHORT_SOURCE_CHARS else source[: SHORT_SOURCE_CHARS - 1].rstrip() + "…"
+
+
 def layer_name(source: str, analysis: str, role: str, key: str = "") -> str:
-    """'<what> · <image>': short, the role first, unique per image, analysis and role."""
+    """'<what> · <image tag>': short, the role first, unique per image, analysis and role."""
     what = SPECIFIC_NAMES.get((analysis, role)) if role != "map" or key == "streak_strength" else None
     if what is None:
         what = f"{analysis} {key.replace('_', ' ') if key else ROLE_NAMES[role]}"
-    return f"{what} · {source}"
+    return f"{what} · {short_source(source)}"
 
 
 def _meta(role: str, analysis: str, source: str, z_offset: int, **extra: Any) -> dict[str, Any]:
@@ -96,9 +114,11 @@ def _meta(role: str, analysis: str, source: str, z_offset: int, **extra: Any) ->
 
 
 def format_value(value: Any) -> str:
-    """A number as a short readable string (4 significant digits); other values as str."""
-    if isinstance(value, bool) or value is None:
-        return str(value)
+    """A number as a short readable string (4 significant digits); yes/no; '—' for no value."""
+    if value is None:
+        return "—"
+    if isinstance(value, (bool, np.bool_)):
+        return "yes" if value else "no"
     if isinstance(value, (int, np.integer)):
         return str(int(value))
     if isinstance(value, (float, np.floating)):
@@ -190,16 +210,17 @@ def map_layer(values: np.ndarray, key: str, geometry: LayerGeometry, analysis: s
     g = geometry.shifted(z_offset)
     values = np.asarray(values, dtype=np.float32)
     finite = values[np.isfinite(values)]
-    high = float(np.percentile(finite, 99.5)) if finite.size else 1.0
-    high = high if high > 0 else 1.0
+    low, high = (float(v) for v in np.percentile(finite, [50.0, 99.5])) if finite.size else (0.0, 1.0)
+    low = max(low, 0.0)
+    high = high if high > low else low + 1.0
     kwargs = {
         "name": layer_name(source, analysis, "map", key),
         "scale": g.scale,
         "translate": g.translate,
         "blending": "additive",
         "colormap": MAP_COLORMAP,
-        "opacity": 0.45,
-        "contrast_limits": (0.0, high),
+        "opacity": 0.35,
+        "contrast_limits": (low, high),  # additive: values below the median add nothing
         "metadata": _meta("map", analysis, source, z_offset, map_key=key),
     }
     return (values, kwargs, "image")
@@ -300,17 +321,41 @@ def overlay_rows(analysis: str, result: AnalysisResult, z_offset: int, centroids
         st = kinds.get(lab, {})
         note = ", ".join(str(v) for v in (st.get("kind"), "flagged" if st.get("flagged") else "") if v)
         rows.append(TableRow(analysis, f"structure {lab}", str(count), note or "label", shift_zyx(centre, z_offset), unit="voxels"))
-    for i, s in enumerate(ov.segments, start=1):
-        mid = 0.5 * (np.asarray(s.start_zyx_vox, float) + np.asarray(s.end_zyx_vox, float))
-        rows.append(TableRow(analysis, s.label or f"line {i}", format_value(s.value), "line, value = relative strength", shift_zyx(tuple(mid), z_offset)))
+    rows += segment_rows(analysis, ov.segments, z_offset)
     for i, r in enumerate(ov.rois, start=1):
         centre = (0.5 * (r.z0 + r.z1), 0.5 * (r.y0 + r.y1 - 1), 0.5 * (r.x0 + r.x1 - 1))
         note = f"slices {r.z0 + z_offset}-{r.z1 + z_offset}, {r.y1 - r.y0}x{r.x1 - r.x0} px"
         rows.append(TableRow(analysis, r.label or f"ROI {i}", "", note, shift_zyx(centre, z_offset)))
     for i, p in enumerate(ov.points, start=1):
-        what, unit = ("edge centre, value f50", "cycles/mm") if analysis == "ttf" else ("centre", "")
+        what, unit = POINT_MEANINGS.get(analysis, ("centre", ""))
         rows.append(TableRow(analysis, p.label or f"point {i}", format_value(p.value), what, shift_zyx(p.zyx_vox, z_offset), unit=unit))
     return rows
+
+
+def segment_rows(analysis: str, segments: list[Segment], z_offset: int) -> list[TableRow]:
+    """One row per slice with lines: how many, and the strongest (clicking goes to it)."""
+    by_slice: dict[int, list[Segment]] = {}
+    for s in segments:
+        by_slice.setdefault(int(round(0.5 * (s.start_zyx_vox[0] + s.end_zyx_vox[0]))), []).append(s)
+    rows = []
+    for z in sorted(by_slice):
+        group = by_slice[z]
+        best = max(group, key=lambda s: float(s.value))
+        mid = 0.5 * (np.asarray(best.start_zyx_vox, float) + np.asarray(best.end_zyx_vox, float))
+        kinds = sorted({s.label for s in group if s.label})
+        note = f"{len(group)} line{'s' if len(group) != 1 else ''}"
+        note += f" ({', '.join(kinds)})" if kinds else ""
+        note += f"; strongest: {best.label or 'line'}"
+        rows.append(TableRow(analysis, "lines", format_value(best.value), note, shift_zyx(tuple(mid), z_offset),
+                             unit="relative"))
+    return rows
+
+
+#: what the value of an analysis' points means: analysis -> (note, unit)
+POINT_MEANINGS: dict[str, tuple[str, str]] = {
+    "ttf": ("edge centre, value f50", "cycles/mm"),
+    "air": ("centre, value contrast-to-noise", "CNR"),
+}
 
 
 def finding_rows(analysis: str, result: AnalysisResult) -> list[TableRow]:

@@ -9,6 +9,7 @@ from typing import Any, Callable, Mapping
 
 import numpy as np
 from matplotlib.figure import Figure
+from matplotlib.ticker import MaxNLocator
 
 _LINE = "#1b6ca8"
 _MARK = "#d1495b"
@@ -95,7 +96,9 @@ def draw_ttf(fig: Figure, record: Mapping[str, Any] | None) -> bool:
     for i, edge in enumerate(edges, start=1):
         f, t = _edge_curve(edge)  # type: ignore[misc]
         f50 = _scalar(edge.get("f50_per_mm"))
-        label = str(edge.get("label") or f"edge {i}") + (f", f50 {f50:.3f}" if f50 is not None else "")
+        label = str(edge.get("label") or f"edge {i}")
+        if f50 is not None and "f50" not in label:
+            label += f", f50 {f50:.3f} /mm"
         line = ax.plot(f, t, lw=1.5, label=label)[0]
         if f50 is not None:
             ax.plot([f50], [0.5], "o", color=line.get_color(), ms=4)
@@ -165,7 +168,9 @@ def draw_streak_polar(fig: Figure, record: Mapping[str, Any] | None) -> bool:
             for t in (d, d + 180.0):
                 ax.plot([np.deg2rad(t)] * 2, [0, peak], color=_MARK, lw=1.8)
     ax.set_yticklabels([])
-    ax.set_title("streak orientation", fontsize=9)
+    ax.set_title("streak orientation: relative directional energy", fontsize=9)
+    ax.text(0.5, -0.12, "0° = along a row (left-right), counter-clockwise on screen; red: dominant",
+            transform=ax.transAxes, ha="center", va="top", fontsize=7, color="#555555")
     return True
 
 
@@ -187,9 +192,14 @@ def draw_streak_slices(fig: Figure, record: Mapping[str, Any] | None) -> bool:
     if flagged:
         ax.plot(z[flagged], per_slice[flagged], "v", color=_MARK, ms=5, label="flagged")
         ax.legend(fontsize=7)
+    tolerance = _scalar(record.get("tolerance", record.get("tolerance_index")))
+    if tolerance is not None:
+        ax.axhline(tolerance, color=_MARK, ls="--", lw=1.0, label=f"tolerance {tolerance:g}")
+        ax.legend(fontsize=7)
     ax.set_title("streak index per slice", fontsize=9)
     ax.set_xlabel("slice (z index)", fontsize=8)
-    ax.set_ylabel("streak index", fontsize=8)
+    ax.set_ylabel("streak index (relative, no unit)", fontsize=8)
+    ax.xaxis.set_major_locator(MaxNLocator(integer=True))
     ax.set_ylim(bottom=0)
     ax.grid(**_GRID)
     return True

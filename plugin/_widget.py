@@ -64,6 +64,8 @@ SCOPE_VOLUME = "whole volume"
 SCOPE_SLICE = "displayed slice"
 TABLE_COLUMNS = ("Check", "Slice", "Value", "Unit", "What")
 EDIT_DELAY_MS = 300
+#: longest text shown in a table cell; the full text is in the tooltip and the detail line
+CELL_CHARS = 150
 _SEVERITY_COLOURS = {"fail": "#ffb3b3", "review": "#ffe3a3"}
 
 
@@ -224,7 +226,11 @@ class AuditBench(QWidget):
         scope_row.addStretch(1)
         lay.addLayout(scope_row)
         settings_row = QHBoxLayout()
-        settings_row.addWidget(QLabel("settings of:"))
+        self.settings_toggle = QPushButton("settings…")
+        self.settings_toggle.setCheckable(True)
+        self.settings_toggle.setToolTip("show or hide the settings of each check (JSON)")
+        settings_row.addWidget(self.settings_toggle)
+        settings_row.addWidget(QLabel("of:"))
         self.settings_choice = mg.ComboBox(choices=self.names or [""])
         self.settings_choice.changed.connect(self._show_settings)
         settings_row.addWidget(self.settings_choice.native, stretch=1)
@@ -239,6 +245,8 @@ class AuditBench(QWidget):
         self.settings_edit.setMaximumHeight(120)
         self.settings_edit.textChanged.connect(self._keep_settings_text)
         lay.addWidget(self.settings_edit)
+        self.settings_edit.setVisible(False)
+        self.settings_toggle.toggled.connect(self.settings_edit.setVisible)
         self._current_settings_name = self.names[0] if self.names else ""
         self._show_settings()
         return box
@@ -281,7 +289,17 @@ class AuditBench(QWidget):
         header.resizeSection(2, 80)
         self.table.cellClicked.connect(self.go_to_row)
         self.table.setMinimumHeight(200)
-        self.tabs.addTab(self.table, "Findings and values")
+        findings = QWidget()
+        flay = QVBoxLayout(findings)
+        flay.setContentsMargins(0, 0, 0, 0)
+        flay.addWidget(self.table, stretch=1)
+        self.detail = QLabel("Click a row to go to its place in the image; its full text shows here.")
+        self.detail.setWordWrap(True)
+        self.detail.setObjectName("reconaudit_detail")
+        self.detail.setTextInteractionFlags(Qt.TextInteractionFlag.TextSelectableByMouse)
+        self.detail.setStyleSheet("QLabel#reconaudit_detail { padding: 3px; }")
+        flay.addWidget(self.detail)
+        self.tabs.addTab(findings, "Findings and values")
         plots = QWidget()
         play = QVBoxLayout(plots)
         self.plot_choice = mg.ComboBox(choices=list(PLOTS), label="curve")
@@ -311,6 +329,7 @@ class AuditBench(QWidget):
 
     def _refresh_images(self, *_: Any) -> None:
         self.image_choice.reset_choices()
+        self._image_changed()
         self.test_choice.reset_choices()
         self.reference_choice.reset_choices()
         names = self._image_layer_names()
@@ -326,10 +345,10 @@ class AuditBench(QWidget):
 
     def _image_changed(self, *_: Any) -> None:
         layer = self.image_layer()
-        if layer is not None and layer.ndim == 3:
+        if layer is not None and layer.ndim == 3 and self.viewer.dims.ndim == 3:
             axes = layer.metadata.get("reconaudit_geometry", {}).get("world_axes_zyx")
             if axes:
-                self.viewer.dims.axis_labels = [f"z {axes[0]} mm", f"y {axes[1]} mm", f"x {axes[2]} mm"]
+                self.viewer.dims.axis_labels = world_axis_labels(axes)
 
     def apply_window(self, name: str) -> None:
         """Set the chosen image's contrast limits to the window preset ``name``."""
@@ -679,10 +698,11 @@ class AuditBench(QWidget):
             else:
                 what = row.note if row.note.startswith(row.item) else (f"{row.item}: {row.note}" if row.note else row.item)
             value = row.value or row.severity
-            cells = (row.analysis, "" if row.slice_index is None else str(row.slice_index), value, row.unit, what)
+            cells = (row.analysis, "" if row.slice_index is None else str(row.slice_index), value, row.unit,
+                     shorten(what, CELL_CHARS))
             for c, text in enumerate(cells):
                 item = QTableWidgetItem(text)
-                item.setToolTip(row.tooltip or text if c == len(cells) - 1 else text)
+                item.setToolTip(row.tooltip or what if c == len(cells) - 1 else text)
                 if row.severity in _SEVERITY_COLOURS:
                     item.setBackground(_qcolor(_SEVERITY_COLOURS[row.severity]))
                     item.setForeground(_qcolor("#1a1a1a"))
@@ -694,6 +714,7 @@ class AuditBench(QWidget):
         if not (0 <= row < len(self._rows)):
             return
         entry = self._rows[row]
+        self.detail.setText(row_detail(entry))
         geometry = entry.geometry or (self.outcome.geometry if self.outcome is not None else None)
         centre = entry.centre_zyx_vox
         if centre is None or geometry is None:
@@ -757,6 +778,32 @@ class AuditBench(QWidget):
         worker.errored.connect(self._on_error)
         worker.start()
         return worker
+
+
+def world_axis_labels(axes: list[str]) -> list[str]:
+    """Slider labels naming each world axis' patient direction: ``"z (mm, +S)"``."""
+    return [f"{name} (mm, {axis})" for name, axis in zip("zyx", axes)]
+
+
+def shorten(text: str, limit: int) -> str:
+    """``text`` cut at a word boundary to at most ``limit`` characters, with an ellipsis."""
+    if len(text) <= limit:
+        return text
+    cut = text[: limit - 1].rsplit(" ", 1)[0].rstrip(" ,;:")
+    return cut + " …"
+
+
+def row_detail(row: TableRow) -> str:
+    """The full text of a table row for the detail line under the table."""
+    parts = [row.analysis]
+    if row.slice_index is not None:
+        parts.append(f"slice {row.slice_index}")
+    head = " · ".join(parts)
+    value = f"{row.value} {row.unit}".strip()
+    body = row.tooltip or row.note or row.item
+    if row.item and row.item not in body and not row.severity:
+        body = f"{row.item}: {body}"
+    return f"{head} — {value + ' — ' if value else ''}{body}"
 
 
 def _report_job(outcome: RunOutcome, folder: str) -> Any:
