@@ -33,6 +33,12 @@ from .results import dumps
 log = logging.getLogger(__name__)
 
 
+class OutputWriteError(ReconauditError):
+    """An output file (CSV, report) could not be written; the results are on disk."""
+
+    kind = "output_not_written"
+
+
 @dataclass
 class CheckOptions:
     inputs: list[Path]
@@ -98,11 +104,22 @@ def _write_outputs(out_dir: Path, doc: dict[str, Any], *, final: bool, include_i
     atomic_write_text(out_dir / "results.json", dumps(doc))
     if not final:
         return
-    atomic_write_text(out_dir / "results.csv", _headline_rows(doc["series"]))
     from .report import write_report
 
     figures = {r["id"]: r.get("figures") or {} for r in doc["series"]}
-    write_report(doc, out_dir, figures=figures, trends=trends, include_identifiers=include_identifiers)
+    writers = (
+        ("results.csv", lambda: atomic_write_text(out_dir / "results.csv", _headline_rows(doc["series"]))),
+        ("report.html", lambda: write_report(doc, out_dir, figures=figures, trends=trends,
+                                             include_identifiers=include_identifiers)),
+    )
+    for name, write in writers:
+        try:
+            write()
+        except OSError as exc:  # a full disk, a read-only folder: say so, keep what is written
+            raise OutputWriteError(
+                f"cannot write {name} ({exc.strerror or exc}); results.json and series/*.json are complete "
+                "and intact; free space and rerun with the same --out to finish", source=str(out_dir),
+            ) from exc
 
 
 def _trend_figures(history, records: list[dict[str, Any]], out_dir: Path) -> dict[str, str]:
