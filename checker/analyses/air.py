@@ -282,10 +282,34 @@ def _masked_block_sums(
     for z0 in range(0, hu.shape[0], chunk):
         a = air[z0 : z0 + chunk]
         v = hu[z0 : z0 + chunk] - np.float32(offset)
-        v[~a] = 0.0
-        sums.append(block_sum(v, factors))
-        counts.append(block_sum(a.view(np.uint8), factors))
+        np.multiply(v, a, out=v)  # zero outside the air (bool as 0/1)
+        part = block_sum(v, factors)
+        if not np.isfinite(part).all():  # inf * 0 outside the air: zero by assignment instead
+            v = hu[z0 : z0 + chunk] - np.float32(offset)
+            v[~a] = 0.0
+            part = block_sum(v, factors)
+        sums.append(part)
+        counts.append(block_count(a, factors))
     return np.concatenate(sums), np.concatenate(counts)
+
+
+def block_count(mask: np.ndarray, factors: tuple[int, int, int]) -> np.ndarray:
+    """Number of True voxels of ``mask`` in blocks of ``factors`` (z, y, x), as float32.
+
+    Integer sums of strided views, one axis at a time (exact; the edges are zero-padded).
+    """
+    cells = int(np.prod(factors))
+    dtype = np.uint8 if cells < 256 else (np.uint16 if cells < 65536 else np.int64)
+    t = _pad_to(mask, factors).view(np.uint8)
+    for axis, f in enumerate(factors):
+        if f == 1:
+            continue
+        parts = [t[(slice(None),) * axis + (slice(o, None, f),)] for o in range(f)]
+        acc = parts[0].astype(dtype)
+        for q in parts[1:]:
+            np.add(acc, q, out=acc, casting="unsafe")
+        t = acc
+    return t.astype(np.float32)
 
 
 def level_factors(
