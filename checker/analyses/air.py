@@ -241,6 +241,9 @@ def body_noise_hu(volume: Volume, regions: Regions, max_slices: int = 8) -> floa
     if not sds:
         return float("nan")
     sd = np.concatenate(sds)
+    sd = sd[np.isfinite(sd)]  # non-finite CT numbers nearby spoil a local SD
+    if sd.size == 0:
+        return float("nan")
     hist, edges = np.histogram(sd, bins=max(10, min(200, sd.size // 20)))
     i = int(np.argmax(hist))
     return float(0.5 * (edges[i] + edges[i + 1]))
@@ -282,7 +285,8 @@ def _masked_block_sums(
     for z0 in range(0, hu.shape[0], chunk):
         a = air[z0 : z0 + chunk]
         v = hu[z0 : z0 + chunk] - np.float32(offset)
-        np.multiply(v, a, out=v)  # zero outside the air (bool as 0/1)
+        with np.errstate(invalid="ignore"):
+            np.multiply(v, a, out=v)  # zero outside the air (bool as 0/1)
         part = block_sum(v, factors)
         if not np.isfinite(part).all():  # inf * 0 outside the air: zero by assignment instead
             v = hu[z0 : z0 + chunk] - np.float32(offset)
