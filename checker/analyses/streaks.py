@@ -47,6 +47,17 @@ Dominant directions: the two boundaries of a missing wedge (streaks of a missing
 run along its boundary rays), then the local maxima of the profile above
 ``peak_level``, strongest first, at most ``max_directions``.
 
+Dense-object pairs (flagged slices only). Rays through two dense objects (metal) are
+starved and hardened most, which leaves a band along the line joining them (dark for
+photon starvation and beam hardening) that can be as wide as the objects, i.e. mostly
+below the screen's frequency band, and whose steps exceed ``edge_step_hu`` so that it
+is masked as an edge. It is therefore measured directly: components of at least
+``dense_hu`` (at most ``max_dense_objects``, largest first) are paired; the median HU
+on the segment between each pair (outside the objects) is compared with the medians on
+the two parallel segments offset by the larger object's diameter plus 3 px on either
+side. A pair whose band differs by at least ``dense_band_hu`` is a *dense-pair line*;
+its orientation is reported before the profile peaks.
+
 Localisation (flagged slices only). For each dominant direction the residual's spectrum
 is kept in a Gaussian angular window around it and transformed back: a directional
 component. Its local RMS, divided by the RMS isotropic noise of the measured level would
@@ -107,6 +118,9 @@ DEFAULTS: dict[str, Any] = {
     "segment_min_px": 16,
     "max_segments_per_slice": 6,
     "max_localised_slices": 64,
+    "dense_hu": 3000.0,
+    "dense_band_hu": 100.0,
+    "max_dense_objects": 6,
 }
 
 SOURCES: dict[str, str] = {
@@ -122,6 +136,8 @@ SOURCES: dict[str, str] = {
     "noise_equalise_sigma_px": "site choice (about 10 binned pixels: larger than a streak's width)",
     "table_band_px": "site choice",
     "neighbour_weight": "site choice",
+    "dense_hu": "site choice, above cortical bone (about 2000 HU or less, from memory); metal reads far higher",
+    "dense_band_hu": "site choice (several times the noise SD of a routine body series)",
 }
 
 _SEVERITIES = {"info": Severity.INFO, "review": Severity.REVIEW, "fail": Severity.FAIL}
@@ -482,14 +498,17 @@ def angle_distance(a: float, b: float) -> float:
     return min(d, 180.0 - d)
 
 
-def dominant_angles(profile: np.ndarray, wedge: dict[str, float] | None, cfg: dict[str, Any]) -> list[float]:
-    """Wedge boundaries first (if any), then profile peaks; strongest first."""
+def dominant_angles(profile: np.ndarray, wedge: dict[str, float] | None, cfg: dict[str, Any], pair_angles: list[float] | None = None) -> list[float]:
+    """Wedge boundaries first (if any), then dense-pair lines, then profile peaks."""
     bin_deg = float(cfg["angle_bin_deg"])
     chosen: list[float] = []
     if wedge is not None:
         edges = [wedge["from_deg"], wedge["to_deg"]]
         strength = [_outside_strength(profile, e, bin_deg, wedge) for e in edges]
         chosen = [e for _, e in sorted(zip(strength, edges), key=lambda p: -p[0])]
+    for angle in pair_angles or []:
+        if all(angle_distance(angle, c) > 2.5 * bin_deg for c in chosen):
+            chosen.append(angle)
     for angle, _ in profile_peaks(profile, bin_deg, float(cfg["peak_level"])):
         if all(angle_distance(angle, c) > 2.5 * bin_deg for c in chosen):
             chosen.append(angle)
@@ -503,6 +522,119 @@ def _outside_strength(profile: np.ndarray, edge_deg: float, bin_deg: float, wedg
     outward = 1 if angle_distance(edge_deg + 1.0, centre) > angle_distance(edge_deg, centre) else -1
     idx = [int(round((edge_deg + outward * d) / bin_deg)) % n for d in np.arange(0.0, 10.0 + 1e-9, bin_deg)]
     return float(profile[idx].max())
+
+
+# --------------------------------------------------------------------------- dense pairs
+@dataclass(frozen=True)
+class DenseObject:
+    """A connected component of dense pixels on a (binned) slice."""
+
+    centre_yx: tuple[float, float]
+    radius_px: float  # radius of the disc of the same area
+
+
+def dense_objects(image: np.ndarray, dense_hu: float, max_objects: int) -> list[DenseObject]:
+    """Components of ``image >= dense_hu`` (at least 2 px), largest first, at most ``max_objects``."""
+    mask = np.isfinite(image) & (image >= np.float32(dense_hu))
+    if not mask.any():
+        return []
+    labels, n = ndimage.label(mask)
+    areas = np.bincount(labels.ravel(), minlength=n + 1)[1:]
+    order = [i for i in np.argsort(-areas) if areas[i] >= 2][: max(0, int(max_objects))]
+    if not order:
+        return []
+    centres = ndimage.center_of_mass(mask, labels, [int(i) + 1 for i in order])
+    return [DenseObject((float(c[0]), float(c[1])), math.sqrt(float(areas[i]) / math.pi)) for c, i in zip(centres, order)]
+
+
+def segment_median(image: np.ndarray, start: np.ndarray, end: np.ndarray, exclude: np.ndarray) -> float:
+    """Median of ``image`` sampled every pixel on a segment (bilinear), skipping ``exclude``d or non-finite samples; NaN if none."""
+    length = float(np.hypot(*(end - start)))
+    n = max(2, int(math.ceil(length)) + 1)
+    f = np.linspace(0.0, 1.0, n)
+    pts = start[:, None] + (end - start)[:, None] * f[None, :]
+    ny, nx = image.shape
+    inside = (pts[0] >= 0) & (pts[0] <= ny - 1) & (pts[1] >= 0) & (pts[1] <= nx - 1)
+    pts = pts[:, inside]
+    if pts.shape[1] == 0:
+        return float("nan")
+    values = ndimage.map_coordinates(image, pts, order=1, mode="nearest")
+    bad = ndimage.map_coordinates(exclude.astype(np.float32), pts, order=1, mode="nearest") > 0.0
+    keep = np.isfinite(values) & ~bad
+    return float(np.median(values[keep])) if keep.sum() >= 2 else float("nan")
+
+
+def dense_pair_lines(image: np.ndarray, cfg: dict[str, Any]) -> list[tuple[float, float]]:
+    """(orientation_deg, band contrast HU) of every dense-object pair with a band between them.
+
+    The contrast is the band's median minus the mean of the two flanking medians
+    (negative for a dark band); see the module docstring. Orientation in the GUIDE
+    convention, ``atan2(-dy, dx)`` mod 180.
+
+    References
+    ----------
+    .. [1] J. Hsieh, *Computed Tomography*, SPIE Press (dark streaks between metal objects
+       from beam hardening and photon starvation).
+    .. [2] Kak & Slaney (1988), ch. 4 (polychromaticity artefacts).
+    """
+    objects = dense_objects(image, float(cfg["dense_hu"]), int(cfg["max_dense_objects"]))
+    exclude = ndimage.binary_dilation(np.isfinite(image) & (image >= np.float32(cfg["dense_hu"])), iterations=2)
+    out = []
+    for i, a in enumerate(objects):
+        for b in objects[i + 1 :]:
+            found = pair_band_contrast(image, exclude, a, b)
+            if found is not None and abs(found[1]) >= float(cfg["dense_band_hu"]):
+                out.append(found)
+    out.sort(key=lambda p: -abs(p[1]))
+    return out
+
+
+def pair_band_contrast(image: np.ndarray, exclude: np.ndarray, a: DenseObject, b: DenseObject) -> tuple[float, float] | None:
+    """Orientation and band contrast between two dense objects, or None if too close or unmeasurable."""
+    ca, cb = np.array(a.centre_yx), np.array(b.centre_yx)
+    d = cb - ca
+    dist = float(np.hypot(*d))
+    gap = dist - a.radius_px - b.radius_px - 4.0
+    if gap < 4.0:
+        return None
+    u = d / dist
+    normal = np.array([u[1], -u[0]])
+    start, end = ca + u * (a.radius_px + 2.0), cb - u * (b.radius_px + 2.0)
+    offset = 2.0 * max(a.radius_px, b.radius_px) + 3.0
+    band = segment_median(image, start, end, exclude)
+    sides = [segment_median(image, start + s * offset * normal, end + s * offset * normal, exclude) for s in (-1.0, 1.0)]
+    if not all(math.isfinite(v) for v in [band, *sides]):
+        return None
+    angle = math.degrees(math.atan2(-d[0], d[1])) % 180.0
+    return round(angle, 1) % 180.0, round(band - 0.5 * (sides[0] + sides[1]), 1)
+
+
+def pool_pair_lines(per_slice: dict[int, list[tuple[float, float]]], tol_deg: float = 3.0) -> list[dict[str, Any]]:
+    """Group dense-pair lines of several slices by orientation (within ``tol_deg``).
+
+    Each group reports its median orientation and contrast and its slices; groups are
+    ordered by the number of slices, then by the contrast's magnitude.
+    """
+    groups: list[list[tuple[int, float, float]]] = []
+    for z in sorted(per_slice):
+        for angle, contrast in per_slice[z]:
+            for g in groups:
+                if angle_distance(g[0][1], angle) <= tol_deg:
+                    g.append((z, angle, contrast))
+                    break
+            else:
+                groups.append([(z, angle, contrast)])
+    out = []
+    for g in groups:
+        ref = g[0][1]
+        unwrapped = [ref + ((a - ref + 90.0) % 180.0 - 90.0) for _, a, _ in g]
+        out.append({
+            "angle_deg": round(float(np.median(unwrapped)) % 180.0, 1),
+            "contrast_hu": round(float(np.median([c for _, _, c in g])), 1),
+            "slices": sorted({z for z, _, _ in g}),
+        })
+    out.sort(key=lambda r: (-len(r["slices"]), -abs(r["contrast_hu"])))
+    return out
 
 
 # --------------------------------------------------------------------------- localisation
@@ -721,7 +853,7 @@ def analyse(volume: Volume, regions: Regions | None, settings: dict[str, Any] | 
     -------
     AnalysisResult
         ``record``: index, flagged, tolerance, dominant_angles_deg, slice_index,
-        flagged_slices, missing_wedge_deg, angular_profile; overlays: segments and
+        flagged_slices, missing_wedge_deg, dense_pair_lines, angular_profile; overlays: segments and
         ``maps["streak_strength"]``. See the module docstring for the definitions.
 
     References
@@ -827,10 +959,13 @@ def summarise(volume: Volume, regions: Regions | None, screen: Screen, cfg: dict
     index = max(screen.indices[z] for z in valid)
     angles: list[float] = []
     overlays = Overlays(maps={"streak_strength": np.zeros(volume.shape, dtype=np.float32)})
+    pair_lines: list[dict[str, Any]] = []
     if flagged_slices:
+        per_slice = {z: dense_pair_lines(bin_slice(volume.hu[z], screen.factor), cfg) for z in flagged_slices}
+        pair_lines = pool_pair_lines({z: v for z, v in per_slice.items() if v})
         flagged_mean = np.mean([screen.profiles[z] for z in flagged_slices], axis=0)
-        angles = dominant_angles(flagged_mean, wedge, cfg)
-        localise(volume, regions, screen, flagged_slices, wedge, cfg, overlays)
+        angles = dominant_angles(flagged_mean, wedge, cfg, [p["angle_deg"] for p in pair_lines])
+        localise(volume, regions, screen, flagged_slices, wedge, cfg, overlays, per_slice)
     record = {
         "applicable": True,
         "index": round(index, 3),
@@ -840,6 +975,7 @@ def summarise(volume: Volume, regions: Regions | None, screen: Screen, cfg: dict
         "slice_index": screen.indices,
         "flagged_slices": flagged_slices,
         "missing_wedge_deg": wedge,
+        "dense_pair_lines": pair_lines,
         "angular_profile": {
             "angles_deg": [round(i * bin_deg, 3) for i in range(all_mean.size)],
             "relative_energy": [round(float(v), 4) for v in all_mean],
@@ -849,7 +985,7 @@ def summarise(volume: Volume, regions: Regions | None, screen: Screen, cfg: dict
     return AnalysisResult(analysis=NAME, record=record, findings=findings, overlays=overlays)
 
 
-def localise(volume: Volume, regions: Regions | None, screen: Screen, flagged: list[int], wedge: dict[str, float] | None, cfg: dict[str, Any], overlays: Overlays) -> None:
+def localise(volume: Volume, regions: Regions | None, screen: Screen, flagged: list[int], wedge: dict[str, float] | None, cfg: dict[str, Any], overlays: Overlays, pair_lines: dict[int, list[tuple[float, float]]] | None = None) -> None:
     """Streak map and segments on the flagged slices (the strongest ones first, capped)."""
     bins = spectral_bins(screen.shape_b, tuple(float(v) for v in cfg["band_cycles_per_px"]), float(cfg["angle_bin_deg"]))
     order = sorted(flagged, key=lambda z: -screen.indices[z])[: int(cfg["max_localised_slices"])]
@@ -860,7 +996,7 @@ def localise(volume: Volume, regions: Regions | None, screen: Screen, flagged: l
         texture = slice_texture(bin_slice(volume.hu[z], f), allowed, cfg)
         if texture is None:
             continue
-        angles = dominant_angles(screen.profiles[z], wedge, cfg)
+        angles = dominant_angles(screen.profiles[z], wedge, cfg, [a for a, _ in (pair_lines or {}).get(z, [])])
         found = localise_slice(texture, bins, angles, cfg)
         full = np.repeat(np.repeat(found.strength, f, axis=0), f, axis=1)
         overlays.maps["streak_strength"][z, : full.shape[0], : full.shape[1]] = full[:ny, :nx]
@@ -894,6 +1030,12 @@ def build_findings(record: dict[str, Any], screen: Screen, cfg: dict[str, Any], 
         if record["dominant_angles_deg"]:
             dirs = ", ".join(f"{a:.0f}" for a in record["dominant_angles_deg"])
             text += f"; strongest directions {dirs} deg (0 = along a row, counter-clockwise on screen)"
+        for line in record["dense_pair_lines"][:2]:
+            kind = "dark" if line["contrast_hu"] < 0 else "bright"
+            text += (
+                f"; {kind} band ({line['contrast_hu']:+.0f} HU) along the line joining dense objects at "
+                f"{line['angle_deg']:.0f} deg on {len(line['slices'])} slices"
+            )
         wedge = record["missing_wedge_deg"]
         if wedge:
             text += (

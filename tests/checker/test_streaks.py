@@ -227,11 +227,64 @@ def test_demo_sparse_views_not_a_wedge(demo_results):
     assert rec["dominant_angles_deg"]
 
 
-@pytest.mark.xfail(strict=True, reason="known gap: the band between the implants is excluded as strong edges, "
-                                       "so the joining-line streak is not the strongest direction")
 def test_demo_metal_direction_along_joining_line(demo_results):
     from reconaudit.checker import demo
 
     rec = demo_results["torso_metal"].record
     assert rec["dominant_angles_deg"]
     assert streaks.angle_distance(rec["dominant_angles_deg"][0], demo.METAL_LINE_ANGLE_DEG) <= 5.0
+    line = rec["dense_pair_lines"][0]
+    assert line["contrast_hu"] < -100.0  # a dark band between the implants
+    assert len(line["slices"]) >= len(rec["flagged_slices"]) // 2
+
+
+def test_demo_no_dense_pair_lines_without_metal(demo_results):
+    for name in ("torso_limited_angle", "torso_sparse_views"):
+        assert demo_results[name].record["dense_pair_lines"] == []
+
+
+def dense_pair_image(angle_deg: float, band_hu: float, n: int = 128, seed: int = 3) -> np.ndarray:
+    """Noise (SD 10 HU) on 40 HU, two 5000 HU discs 60 px apart along ``angle_deg``, and
+    a band of ``band_hu`` as wide as the discs on the segment between them."""
+    rng = np.random.default_rng(seed)
+    img = (40.0 + rng.normal(0.0, 10.0, (n, n))).astype(np.float32)
+    yy, xx = np.mgrid[0:n, 0:n].astype(float)
+    c = (n - 1) / 2.0
+    a = math.radians(angle_deg)
+    u = (-math.sin(a), math.cos(a))  # (dy, dx) of display orientation a
+    along = (yy - c) * u[0] + (xx - c) * u[1]
+    across = (yy - c) * math.cos(a) + (xx - c) * math.sin(a)
+    img[(np.abs(across) <= 5.0) & (np.abs(along) <= 30.0)] += band_hu
+    for s in (-30.0, 30.0):
+        img[(yy - c - s * u[0]) ** 2 + (xx - c - s * u[1]) ** 2 <= 25.0] = 5000.0
+    return img
+
+
+@pytest.mark.parametrize("angle", [0.0, 35.0, 90.0, 150.0])
+def test_dense_pair_line_orientation_and_contrast(angle):
+    lines = streaks.dense_pair_lines(dense_pair_image(angle, -300.0), streaks.resolve_settings(None))
+    assert len(lines) == 1
+    got, contrast = lines[0]
+    assert streaks.angle_distance(got, angle) <= 2.0 and 0.0 <= got < 180.0
+    assert -330.0 <= contrast <= -270.0
+
+
+def test_dense_pair_without_band_not_reported():
+    assert streaks.dense_pair_lines(dense_pair_image(20.0, 0.0), streaks.resolve_settings(None)) == []
+
+
+def test_dense_pair_lines_ignore_single_and_bone_level_objects():
+    cfg = streaks.resolve_settings(None)
+    img = dense_pair_image(0.0, -300.0)
+    assert streaks.dense_pair_lines(np.minimum(img, 1500.0), cfg) == []  # bone-level objects: not dense
+    one = img.copy()
+    one[:, :64][one[:, :64] > 3000] = 40.0
+    assert streaks.dense_pair_lines(one, cfg) == []
+
+
+def test_dense_pair_lines_put_first_in_directions():
+    img = dense_pair_image(0.0, -600.0) + line_image(60.0, contrast=40.0, seed=4)
+    rec = analyse(img).record
+    assert rec["flagged"]
+    assert streaks.angle_distance(rec["dominant_angles_deg"][0], 0.0) <= 2.0
+    assert any(streaks.angle_distance(a, 60.0) <= 2.0 for a in rec["dominant_angles_deg"])
