@@ -142,17 +142,26 @@ def napari_get_reader(path: str | Sequence[str]) -> Callable[[Any], list[LayerDa
     return read_ct
 
 
-def volume_from_layer(layer: Any) -> Volume:
+def volume_from_layer(layer: Any, z_index: int | None = None) -> Volume:
     """The Volume behind an Image layer: the reader's own, or one built from the layer.
 
     A layer that did not come from the reconaudit reader is taken as HU with its scale as
     spacing (z, y, x) and its translate as the position of voxel [0, 0, 0] on an axial
     identity orientation; the volume's notes say so.
+
+    Parameters
+    ----------
+    layer : napari Image layer
+    z_index : int, optional
+        For a layer not from the reader: build only this slice (a one-slice Volume placed
+        at that slice), so a one-slice run neither reads a lazy (dask) array whole nor
+        converts the whole array to float32. Ignored for the reader's layers, whose
+        Volume is returned as it is (the caller takes a view of the slice).
     """
     vol = layer.metadata.get(VOLUME_KEY) if hasattr(layer, "metadata") else None
     if isinstance(vol, Volume):
         return vol
-    data = np.asarray(layer.data)
+    data = layer.data
     if data.ndim == 2:
         data = data[None]
     if data.ndim != 3:
@@ -163,7 +172,15 @@ def volume_from_layer(layer: Any) -> Volume:
         )
     scale = tuple(float(s) for s in layer.scale[-3:]) if len(layer.scale) >= 3 else (1.0, *map(float, layer.scale[-2:]))
     translate = tuple(float(t) for t in layer.translate[-3:]) if len(layer.translate) >= 3 else (0.0, *map(float, layer.translate[-2:]))
+    notes = ["built from a napari layer: values taken as HU, axial orientation assumed"]
+    if z_index is not None:
+        if not 0 <= z_index < data.shape[0]:
+            raise IndexError(f"slice {z_index} is outside the layer (0..{data.shape[0] - 1})")
+        data = data[z_index : z_index + 1]
+        translate = (translate[0] + z_index * scale[0], translate[1], translate[2])
+        notes.append(f"one slice (index {z_index}) of the layer")
+    hu = np.asarray(data).astype(np.float32, copy=False)
     origin = (translate[2], translate[1], translate[0])  # world (z, y, x) -> LPS (x, y, z)
-    vol = Volume.from_array(data.astype(np.float32), spacing_mm=scale, origin_mm=origin, source=str(layer.name))
-    vol.notes.append("built from a napari layer: values taken as HU, axial orientation assumed")
+    vol = Volume.from_array(hu, spacing_mm=scale, origin_mm=origin, source=str(layer.name))
+    vol.notes.extend(notes)
     return vol

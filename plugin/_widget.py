@@ -42,11 +42,12 @@ from reconaudit.checker import SAFETY_NOTICE
 from reconaudit.checker import analyses as _analyses
 from reconaudit.checker.errors import ReconauditError
 from reconaudit.checker.pipeline import Cancelled
+from reconaudit.checker.volume import Volume
 
 from ._compare import COMPARE, ComparisonOutcome, run_comparison, surface_summary
 from ._export import write_html_report, write_results_json
 from ._geometry import LayerGeometry, layer_geometry
-from ._jobs import RunOutcome, remeasure, run_checks
+from ._jobs import RegionsCache, RunOutcome, remeasure, run_checks
 from ._layers import (
     EDITABLE,
     OFFSET_KEY,
@@ -58,7 +59,7 @@ from ._layers import (
 )
 from ._plots import PLOTS
 from ._presets import WINDOW_PRESETS, preset_limits
-from ._reader import volume_from_layer
+from ._reader import VOLUME_KEY, volume_from_layer
 
 SCOPE_VOLUME = "whole volume"
 SCOPE_SLICE = "displayed slice"
@@ -99,6 +100,7 @@ class AuditBench(QWidget):
         self.viewer = napari_viewer
         self.outcome: RunOutcome | None = None
         self.comparison: ComparisonOutcome | None = None
+        self.regions_cache = RegionsCache(size=4)  # regions of recently analysed volumes/slices
         self.worker: Any = None
         self._stop = threading.Event()
         self._rows: list[TableRow] = []
@@ -433,16 +435,24 @@ class AuditBench(QWidget):
         if not names:
             show_error("reconaudit: tick at least one check")
             return None
+        z = self.current_slice(layer) if self.scope.value == SCOPE_SLICE else None
+        from_reader = isinstance(layer.metadata.get(VOLUME_KEY), Volume)
         try:
-            volume = volume_from_layer(layer)
+            # a layer from elsewhere is converted slice-only in slice scope (no whole-volume copy)
+            volume = volume_from_layer(layer, z_index=None if from_reader else z)
             settings = self.settings_for(names)
         except ReconauditError as exc:
             show_error(f"reconaudit: {exc}")
             return None
-        geometry = layer_geometry(volume)
-        z = self.current_slice(layer) if self.scope.value == SCOPE_SLICE else None
         job = thread_worker(run_checks, start_thread=False, ignore_errors=True)
-        return self._start(job(volume, names, settings, geometry, layer.name, z_index=z, stop=self._new_stop()), "run")
+        if z is not None and not from_reader:
+            geometry = layer_geometry(volume).shifted(-z)  # the full layer's geometry
+            work = job(volume, names, settings, geometry, layer.name, z_offset=z,
+                       regions_cache=self.regions_cache, stop=self._new_stop())
+        else:
+            work = job(volume, names, settings, layer_geometry(volume), layer.name, z_index=z,
+                       regions_cache=self.regions_cache, stop=self._new_stop())
+        return self._start(work, "run")
 
     def _new_stop(self) -> threading.Event:
         self._stop = threading.Event()

@@ -210,3 +210,19 @@ def test_screenshot_of_the_panel(bench, qtbot):
     assert out.exists()
     assert shot.shape[0] > 500 and shot.shape[1] > 1000
     assert shot[..., :3].std() > 10  # not a blank window
+
+
+def test_slice_scope_on_a_layer_from_elsewhere(make_napari_viewer, phantom, qtbot):
+    """A plain numpy layer (no reader metadata): the slice run lands on the blob; a re-run reuses the regions."""
+    viewer = make_napari_viewer()
+    viewer.add_image(phantom.hu.copy(), name="plain P1", scale=SPACING, translate=ORIGIN_LPS[::-1])
+    panel = AuditBench(viewer)
+    viewer.dims.set_point(0, BLOB_ZYX[0] * SPACING[0] + ORIGIN_LPS[2])
+    choose(panel, ["air"])
+    panel.scope.value = SCOPE_SLICE
+    run_and_wait(qtbot, panel)
+    assert panel.outcome.volume.shape[0] == 1 and panel.outcome.z_offset == int(BLOB_ZYX[0])
+    layer = layers_with(panel, "air", "labels")[0]
+    assert label_world_centroid(layer) == pytest.approx(blob_world_mm(), abs=1.0)
+    run_and_wait(qtbot, panel)
+    assert panel.regions_cache.hits == 1
