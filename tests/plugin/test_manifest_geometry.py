@@ -77,3 +77,32 @@ def test_window_presets_are_the_usual_ones():
         contrast_limits(0.0, 40.0)
     with pytest.raises(KeyError):
         preset_limits("brain")
+
+
+def test_manifest_sample_data_are_the_demo_series():
+    """Every demo series (reconaudit.checker.demo.SERIES) is a sample, and nothing else is."""
+    from npe2 import PluginManifest
+
+    from reconaudit.checker import demo
+    from reconaudit.plugin import _sample_data
+
+    pm = PluginManifest.from_file(MANIFEST)
+    keys = [s.key for s in pm.contributions.sample_data]
+    assert sorted(keys) == sorted(demo.SERIES)
+    assert set(_sample_data.SAMPLE_TITLES) == set(demo.SERIES)
+    commands = {c.id: c.python_name for c in pm.contributions.commands}
+    for sample in pm.contributions.sample_data:
+        module, func = commands[sample.command].split(":")
+        assert func == f"sample_{sample.key}" and callable(getattr(_sample_data, func))
+
+
+def test_installed_plugin_offers_reader_samples_and_panel():
+    """What `napari` sees once the package is installed: npe2's plugin manager finds all three."""
+    from npe2 import PluginManager
+
+    pm = PluginManager.instance()
+    pm.discover()
+    assert "reconaudit" in pm._manifests
+    manifest = pm.get_manifest("reconaudit")
+    assert manifest.contributions.readers and manifest.contributions.widgets
+    assert {s.key for s in manifest.contributions.sample_data} >= {"torso_air_structure", "torso_limited_angle"}
