@@ -40,7 +40,7 @@ from typing import Any
 import numpy as np
 from scipy import ndimage
 
-from ..errors import InconsistentGeometryError, ProfileError
+from ..errors import InconsistentGeometryError, InvalidVolumeError, ProfileError
 from ..regions import Regions, find_regions
 from ..results import Finding, Overlays, Point, Severity, worst_verdict
 from ..volume import Volume, to_sitk
@@ -363,12 +363,28 @@ def nps_ttf_comparison(test: Volume, reference: Volume, rt: Regions, rr: Regions
 
 
 # ---------------------------------------------------------------------- entry point
+MIN_INPLANE_VOXELS = 16
+
+
+def _check_comparable(volume: Volume, role: str) -> None:
+    """Refuse volumes the comparison cannot measure, with the reason."""
+    name = volume.source or role
+    if min(volume.shape[1:]) < MIN_INPLANE_VOXELS:
+        raise InvalidVolumeError(f"the {role} is {volume.shape[2]} x {volume.shape[1]} pixels in-plane; "
+                                 f"comparing needs at least {MIN_INPLANE_VOXELS} x {MIN_INPLANE_VOXELS}", source=name)
+    bad = int(volume.hu.size - np.count_nonzero(np.isfinite(volume.hu)))
+    if bad:
+        raise InvalidVolumeError(f"the {role} holds {bad} non-finite (NaN or infinite) voxels; expected CT numbers in HU",
+                                 source=name)
+
 def compare_volumes(test: Volume, reference: Volume, settings: dict[str, Any] | None = None) -> ComparisonResult:
     """Compare ``test`` with ``reference``; see the module docstring.
 
     Returns a :class:`ComparisonResult` whose ``record`` is the comparison.json content.
     """
     s = _settings(settings)
+    for role, vol in (("test", test), ("reference", reference)):
+        _check_comparable(vol, role)
     notes = []
     if same_grid(test, reference):
         on_grid = test

@@ -96,9 +96,6 @@ def test_regions_result_or_typed_error(volume):
         assert regions.fov.shape == volume.shape[1:]
 
 
-@pytest.mark.xfail(strict=True, raises=ValueError,
-                   reason="compare_volumes raises ValueError (numpy gradient / skimage phase_cross_correlation) on "
-                          "volumes with an in-plane axis of 1 voxel or with NaN voxels; fix asked of its owner")
 @settings(max_examples=15, deadline=None, suppress_health_check=[HealthCheck.too_slow], derandomize=True,
           phases=[Phase.explicit, Phase.generate])
 @given(test=volumes(), same_grid=st.booleans(), seed=st.integers(0, 1000))
