@@ -492,6 +492,11 @@ def profile_peaks(profile: np.ndarray, bin_deg: float, level: float) -> list[tup
     return peaks
 
 
+def display_angle(angle_deg: float) -> str:
+    """Whole degrees in [0, 180) for messages and labels (179.7 reads 0, not 180)."""
+    return f"{round(float(angle_deg)) % 180:d}"
+
+
 def angle_distance(a: float, b: float) -> float:
     """Distance between two line orientations in degrees (period 180)."""
     d = abs(a - b) % 180.0
@@ -1005,7 +1010,7 @@ def localise(volume: Volume, regions: Regions | None, screen: Screen, flagged: l
                 Segment(
                     start_zyx_vox=(float(z), float(_unbin(y0, f)), float(_unbin(x0, f))),
                     end_zyx_vox=(float(z), float(_unbin(y1, f)), float(_unbin(x1, f))),
-                    label=f"streak {angle:.0f} deg",
+                    label=f"streak {display_angle(angle)} deg",
                     value=round(float(zscore), 2),
                 )
             )
@@ -1028,7 +1033,7 @@ def build_findings(record: dict[str, Any], screen: Screen, cfg: dict[str, Any], 
             f"{n_valid} slices (slices {describe_slices(fl)})"
         )
         if record["dominant_angles_deg"]:
-            dirs = ", ".join(f"{a:.0f}" for a in record["dominant_angles_deg"])
+            dirs = ", ".join(display_angle(a) for a in record["dominant_angles_deg"])
             text += f"; strongest directions {dirs} deg (0 = along a row, counter-clockwise on screen)"
         for line in record["dense_pair_lines"][:2]:
             kind = "dark" if line["contrast_hu"] < 0 else "bright"

@@ -139,3 +139,30 @@ def test_robust_mean_and_noise_ignores_outliers():
     v = np.concatenate([rng.normal(-1000, 10, 20000), np.full(500, 40.0)])
     mean, sd = air.robust_mean_and_noise(v)
     assert mean == pytest.approx(-1000, abs=0.5) and sd == pytest.approx(10, rel=0.05)
+
+
+def test_gaussian_3d_equals_scipy_gaussian_filter():
+    """The banded-matrix Gaussian is scipy.ndimage.gaussian_filter (reflect, truncate 3)."""
+    from scipy import ndimage as ndi
+
+    from reconaudit.checker.analyses.air import gaussian_3d
+
+    rng = np.random.default_rng(3)
+    a = rng.normal(0, 1, (7, 33, 29)).astype(np.float32)
+    for sigma in [(1.0, 2.0, 1.5), (0.0, 3.0, 3.0), (2.5, 0.7, 0.0)]:
+        want = ndi.gaussian_filter(a.astype(np.float64), sigma, mode="reflect", truncate=3.0)
+        got = gaussian_3d(a.copy(), sigma, np.empty_like(a), np.empty_like(a))
+        assert np.max(np.abs(got - want)) < 1e-5, sigma
+
+
+def test_block_count_equals_a_plain_block_sum():
+    from reconaudit.checker.analyses.air import block_count
+
+    rng = np.random.default_rng(4)
+    mask = rng.random((5, 17, 23)) > 0.6
+    f = (1, 4, 3)
+    got = block_count(mask, f)
+    pad = [(0, (-n) % k) for n, k in zip(mask.shape, f)]
+    m = np.pad(mask, pad).astype(int)
+    want = m.reshape(m.shape[0], m.shape[1] // 4, 4, m.shape[2] // 3, 3).sum(axis=(2, 4))
+    assert np.array_equal(got, want.astype(np.float32))
