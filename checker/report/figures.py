@@ -136,7 +136,7 @@ def choose_slice(volume: Volume, results: Mapping[str, Any]) -> tuple[int, str]:
     """The most relevant axial slice and why it was chosen.
 
     Order: the most-flagged streak slice, the slice of the largest flagged air
-    structure, else the middle slice.
+    structure, the slice of the measured insert edges, else the middle slice.
     """
     nz = volume.shape[0]
     z = most_flagged_streak_slice(_record(results, "streaks"), nz)
@@ -145,7 +145,24 @@ def choose_slice(volume: Volume, results: Mapping[str, Any]) -> tuple[int, str]:
     z = largest_air_structure_slice(_record(results, "air"), nz, flagged_only=True)
     if z is not None:
         return z, "largest flagged air structure"
+    z = edge_slice(_record(results, "ttf"), nz)
+    if z is not None:
+        return z, "slice of the measured edges"
     return nz // 2, "middle slice"
+
+
+def edge_slice(ttf: Mapping[str, Any] | None, nz: int) -> int | None:
+    """The middle of the slices the circular-edge (insert) measurements used, or None."""
+    mids = []
+    for edge in (ttf or {}).get("edges") or []:
+        if not isinstance(edge, Mapping) or edge.get("kind", "circular") != "circular":
+            continue
+        sl = _floats(edge.get("slices"))
+        if sl is not None and sl.size >= 1:
+            mids.append(float(np.nanmean(sl[:2])))
+    if not mids:
+        return None
+    return min(max(int(round(float(np.median(mids)))), 0), nz - 1)
 
 
 # ------------------------------------------------------------------------- thumbnails

@@ -364,3 +364,13 @@ def test_report_renders_in_headless_chromium(tmp_path, phantom_and_results):
     assert float(grey.var()) > 1e-3, "the screenshot is blank"
     # the top band holds the masthead text and the overview, not an empty page
     assert float(grey[:400].std()) > 0.02
+
+
+def test_thumbnail_slice_falls_back_to_the_measured_inserts():
+    from reconaudit.checker.report.figures import edge_slice
+
+    ttf = {"edges": [{"kind": "circular", "slices": [0, 7]}, {"kind": "circular", "slices": [0, 7]},
+                     {"kind": "skin", "slices": [0, 15]}]}
+    assert edge_slice(ttf, 16) == 4  # middle of slices 0-7 (round half to even of 3.5)
+    assert edge_slice({"edges": [{"kind": "skin", "slices": [0, 15]}]}, 16) is None
+    assert edge_slice(None, 16) is None
