@@ -177,8 +177,7 @@ def test_demo_nonlinear_reconstruction_has_lower_f_av():
     (Solomon, Christianson, Samei, Med Phys 39(10) 2012) must show it by the margin the
     demo documents in ``demo.F_AV_PER_MM`` (its own 100 px mean-subtracted ROIs): our
     ratio f_av(nonlinear) / f_av(FBP) must not exceed the documented ratio by more than
-    0.1 (our ROIs are 64 px and poly2-detrended). While the documented values are not yet
-    filled in (zeros), the ratio must be below 0.9."""
+    0.1 (our ROIs are 64 px and poly2-detrended)."""
     from reconaudit.checker import demo
 
     f_av = {}
@@ -190,8 +189,5 @@ def test_demo_nonlinear_reconstruction_has_lower_f_av():
         f_av[name] = res.record["f_av_per_mm"]
     ratio = f_av["qa_phantom_nonlinear"] / f_av["qa_phantom"]
     doc = demo.F_AV_PER_MM
-    if doc["qa_phantom"] > 0 and doc["qa_phantom_nonlinear"] > 0:
-        limit = doc["qa_phantom_nonlinear"] / doc["qa_phantom"] + 0.1
-    else:
-        limit = 0.9
+    limit = doc["qa_phantom_nonlinear"] / doc["qa_phantom"] + 0.1
     assert ratio < min(limit, 1.0), (f_av, limit)
