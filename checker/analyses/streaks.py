@@ -79,8 +79,10 @@ from __future__ import annotations
 
 import functools
 import math
+import os
+from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass, field
-from typing import Any
+from typing import Any, Callable
 
 import numpy as np
 import scipy.fft as sfft
@@ -282,11 +284,24 @@ def bin_mask(mask: np.ndarray, factor: int) -> np.ndarray:
     if factor == 1:
         return mask
     ny, nx = (n // factor * factor for n in mask.shape)
-    out = np.zeros((ny // factor, nx // factor), dtype=bool)
-    for dy in range(factor):
-        for dx in range(factor):
-            out |= mask[dy:ny:factor, dx:nx:factor]
-    return out
+    blocks = mask[:ny, :nx].reshape(ny // factor, factor, nx // factor, factor)
+    return blocks.any(axis=(1, 3))
+
+
+def inner_boundary(mask: np.ndarray) -> np.ndarray:
+    """Pixels of ``mask`` with a 4-neighbour outside it (or on the array border).
+
+    Equal to ``mask ^ binary_erosion(mask)`` with the cross-shaped structuring element
+    and a False border, computed with shifted views instead of a filter.
+    """
+    kept = mask.copy()
+    kept[0] = kept[-1] = False
+    kept[:, 0] = kept[:, -1] = False
+    kept[1:] &= mask[:-1]
+    kept[:-1] &= mask[1:]
+    kept[:, 1:] &= mask[:, :-1]
+    kept[:, :-1] &= mask[:, 1:]
+    return mask & ~kept
 
 
 def strong_edges(smoothed: np.ndarray, step_hu: float, sigma_px: float) -> np.ndarray:
@@ -304,10 +319,22 @@ def strong_edges(smoothed: np.ndarray, step_hu: float, sigma_px: float) -> np.nd
 
 
 def grow(mask: np.ndarray, radius_px: int) -> np.ndarray:
-    """Square dilation of a boolean mask by ``radius_px`` (for masks that are only binned)."""
+    """Square dilation of a boolean mask by ``radius_px`` (for masks that are only binned).
+
+    Separable: the OR of shifted copies along y, then along x (pixels outside count as
+    False).
+    """
     if radius_px <= 0 or not mask.any():
         return mask
-    return ndimage.maximum_filter(mask.view(np.uint8), size=2 * radius_px + 1).astype(bool)
+    out = mask.copy()
+    for d in range(1, radius_px + 1):
+        out[d:] |= mask[:-d]
+        out[:-d] |= mask[d:]
+    rows = out.copy()
+    for d in range(1, radius_px + 1):
+        out[:, d:] |= rows[:, :-d]
+        out[:, :-d] |= rows[:, d:]
+    return out
 
 
 def soft_weight(bad: np.ndarray, reach_px: float) -> np.ndarray:
@@ -772,23 +799,34 @@ def screen_factor(shape: tuple[int, int], max_px: int) -> int:
     return max(1, int(math.ceil(max(shape) / float(max_px))))
 
 
-def allowed_mask(regions: Regions | None, z: int, factor: int, shape_b: tuple[int, int], cfg: dict[str, Any]) -> np.ndarray:
-    """Pixels that may count on binned slice ``z``: FOV minus border, table, body outline."""
+def base_allowed_mask(regions: Regions | None, factor: int, shape_b: tuple[int, int], cfg: dict[str, Any]) -> np.ndarray:
+    """Pixels that may count on every binned slice: inside the FOV, away from the border."""
     allowed = np.ones(shape_b, dtype=bool)
     m = int(cfg["border_margin_px"])
     if m > 0:
         allowed[:m] = allowed[-m:] = False
         allowed[:, :m] = allowed[:, -m:] = False
+    if regions is not None:
+        allowed &= ~bin_mask(~regions.fov, factor)
+    return allowed
+
+
+def allowed_mask(regions: Regions | None, z: int, factor: int, shape_b: tuple[int, int], cfg: dict[str, Any],
+                 base: np.ndarray | None = None) -> np.ndarray:
+    """Pixels that may count on binned slice ``z``: FOV minus border, table, body outline.
+
+    ``base`` is :func:`base_allowed_mask` when the caller has it already (once per volume).
+    """
+    allowed = (base_allowed_mask(regions, factor, shape_b, cfg) if base is None else base).copy()
     if regions is None:
         return allowed
-    allowed &= ~bin_mask(~regions.fov, factor)
     if regions.table[z].any():
         table = bin_mask(regions.table[z], factor)
         allowed &= ~grow(table, 2)
         allowed &= ~table_band(table, int(cfg["table_band_px"]))
     body = bin_mask(regions.body[z], factor)
     if body.any():
-        allowed &= ~(body ^ ndimage.binary_erosion(body))
+        allowed &= ~inner_boundary(body)
     return allowed
 
 
@@ -894,34 +932,54 @@ class Screen:
         return f"no slice has texture to analyse ({what})"
 
 
+#: threads of the per-slice screen (the numpy/scipy filters release the GIL)
+SCREEN_THREADS = max(1, min(2, os.cpu_count() or 1))
+
+
 def screen_volume(volume: Volume, regions: Regions | None, cfg: dict[str, Any]) -> Screen:
-    """Angular profile and streak index of every axial slice (binned screen)."""
+    """Angular profile and streak index of every axial slice (binned screen).
+
+    Slices are independent; they are screened by :data:`SCREEN_THREADS` threads and the
+    outcomes gathered in slice order, so the result does not depend on the thread count.
+    """
     nz, ny, nx = volume.shape
     factor = screen_factor((ny, nx), int(cfg["screen_max_px"]))
     shape_b = (ny // factor, nx // factor)
     bins = spectral_bins(shape_b, tuple(float(v) for v in cfg["band_cycles_per_px"]), float(cfg["angle_bin_deg"]))
+    base = base_allowed_mask(regions, factor, shape_b, cfg)
+
+    def one(z: int) -> np.ndarray | str:
+        allowed = base if _fov_only(regions, z) else allowed_mask(regions, z, factor, shape_b, cfg, base)
+        return screen_slice(volume.hu[z], allowed, factor, bins, cfg)
+
+    outcomes = map_slices(one, nz, SCREEN_THREADS)
     profiles: dict[int, np.ndarray] = {}
-    indices: list[float | None] = []
     skipped = {"constant": 0, "non-finite": 0, "without usable pixels": 0}
-    base_allowed = allowed_mask(regions, 0, factor, shape_b, cfg) if regions is not None else None
-    for z in range(nz):
-        image = volume.hu[z]
-        kind = _unusable(image)
-        if kind:
-            skipped[kind] += 1
-            indices.append(None)
-            continue
-        allowed = base_allowed if (base_allowed is not None and _fov_only(regions, z)) else allowed_mask(regions, z, factor, shape_b, cfg)
-        texture = slice_texture(bin_slice(image, factor), allowed, cfg)
-        profile = angular_profile(power(texture.spectrum), bins) if texture is not None else None
-        if profile is None:
-            skipped["without usable pixels"] += 1
-            indices.append(None)
-            continue
-        profiles[z] = profile
-        indices.append(None)
+    for z, outcome in enumerate(outcomes):
+        if isinstance(outcome, str):
+            skipped[outcome] += 1
+        else:
+            profiles[z] = outcome
     indices = [None if z not in profiles else round(slice_index_with_neighbours(profiles, z, float(cfg["neighbour_weight"])), 3) for z in range(nz)]
     return Screen(factor=factor, shape_b=shape_b, profiles=profiles, indices=indices, skipped=skipped)
+
+
+def screen_slice(image: np.ndarray, allowed: np.ndarray, factor: int, bins: SpectralBins, cfg: dict[str, Any]) -> np.ndarray | str:
+    """Angular profile of one full-resolution slice, or why it was skipped (a ``Screen.skipped`` key)."""
+    kind = _unusable(image)
+    if kind:
+        return kind
+    texture = slice_texture(bin_slice(image, factor), allowed, cfg)
+    profile = angular_profile(power(texture.spectrum), bins) if texture is not None else None
+    return "without usable pixels" if profile is None else profile
+
+
+def map_slices(fn: Callable[[int], Any], nz: int, threads: int) -> list[Any]:
+    """``[fn(z) for z in range(nz)]``, computed by ``threads`` threads when that helps."""
+    if threads <= 1 or nz < 2:
+        return [fn(z) for z in range(nz)]
+    with ThreadPoolExecutor(max_workers=min(threads, nz)) as pool:
+        return list(pool.map(fn, range(nz)))
 
 
 def slice_index_with_neighbours(profiles: dict[int, np.ndarray], z: int, neighbour_weight: float) -> float:

@@ -288,3 +288,45 @@ def test_dense_pair_lines_put_first_in_directions():
     assert rec["flagged"]
     assert streaks.angle_distance(rec["dominant_angles_deg"][0], 0.0) <= 2.0
     assert any(streaks.angle_distance(a, 60.0) <= 2.0 for a in rec["dominant_angles_deg"])
+
+
+def random_masks(count: int = 60, seed: int = 5):
+    """Blobby boolean masks of odd sizes, plus an all-True and an all-False one."""
+    from scipy import ndimage
+
+    rng = np.random.default_rng(seed)
+    out = [np.ones((9, 11), bool), np.zeros((9, 11), bool)]
+    for _ in range(count):
+        shape = tuple(int(v) for v in rng.integers(5, 40, 2))
+        out.append(ndimage.gaussian_filter(rng.normal(size=shape), 1.5) > rng.uniform(-0.2, 0.3))
+    return out
+
+
+def test_mask_helpers_equal_their_filter_definitions():
+    """The shifted-view mask helpers equal scipy.ndimage's erosion and maximum filter."""
+    from scipy import ndimage
+
+    for m in random_masks():
+        assert np.array_equal(streaks.inner_boundary(m), m ^ ndimage.binary_erosion(m))
+        for r in (1, 2, 3):
+            expected = ndimage.maximum_filter(m.view(np.uint8), size=2 * r + 1).astype(bool)
+            assert np.array_equal(streaks.grow(m, r), expected)
+        ny, nx = (n // 2 * 2 for n in m.shape)
+        if ny and nx:
+            expected = m[0:ny:2, 0:nx:2] | m[1:ny:2, 0:nx:2] | m[0:ny:2, 1:nx:2] | m[1:ny:2, 1:nx:2]
+            assert np.array_equal(streaks.bin_mask(m, 2), expected)
+
+
+def test_screen_does_not_depend_on_thread_count(monkeypatch):
+    """Threads only share the slices out: one thread and two give the same record."""
+    rng = np.random.default_rng(2)
+    hu = np.stack([line_image(30.0 + 20 * k, n=96, seed=k) for k in range(5)])
+    hu[2] = 7.0  # a constant slice is skipped in both
+    hu += rng.normal(0.0, 1.0, hu.shape).astype(np.float32)
+    hu[2] = 7.0
+    records = []
+    for threads in (1, 2):
+        monkeypatch.setattr(streaks, "SCREEN_THREADS", threads)
+        records.append(analyse(hu).record)
+    assert records[0] == records[1]
+    assert records[0]["slice_index"][2] is None
