@@ -125,9 +125,52 @@ def _circle_of(mask2d: np.ndarray) -> tuple[tuple[float, float], float]:
     return (float(ys.mean()), float(xs.mean())), float(np.sqrt(ys.size / np.pi))
 
 
-def _components(mask: np.ndarray) -> tuple[np.ndarray, int, np.ndarray, list]:
-    """Labels, count, size of every label (index 0 unused) and the bounding boxes."""
-    lab, n = ndimage.label(mask)
+def label_compact(mask: np.ndarray, structure: np.ndarray | None = None) -> tuple[np.ndarray, int]:
+    """``ndimage.label`` into uint16 labels (half the memory traffic of int32), falling
+    back to the default label type when there are more than 65535 components.
+
+    The labels are the same as ``ndimage.label(mask, structure)`` gives.
+
+    References
+    ----------
+    .. [1] Common practice, no source (connected-component labelling).
+    """
+    try:
+        lab, n = ndimage.label(mask, structure=structure, output=np.uint16)
+    except RuntimeError:  # more components than uint16 holds
+        lab, n = ndimage.label(mask, structure=structure)
+    return lab, int(n)
+
+
+def bounding_box(mask: np.ndarray) -> tuple[slice, ...] | None:
+    """The smallest box (one slice per axis) holding every True voxel; None when empty."""
+    box = []
+    for axis in range(mask.ndim):
+        others = tuple(a for a in range(mask.ndim) if a != axis)
+        hit = np.flatnonzero(mask.any(axis=others))
+        if hit.size == 0:
+            return None
+        box.append(slice(int(hit[0]), int(hit[-1]) + 1))
+    return tuple(box)
+
+
+def _shifted(sl: tuple[slice, ...], offset: tuple[int, ...]) -> tuple[slice, ...]:
+    return tuple(slice(s.start + o, s.stop + o) for s, o in zip(sl, offset))
+
+
+def _components(mask: np.ndarray) -> tuple[np.ndarray, int, np.ndarray, list, tuple[slice, ...]]:
+    """Labels, count, size of every label (index 0 unused), the bounding boxes (in the
+    coordinates of ``mask``) and the box of ``mask`` the labels cover.
+
+    Only the bounding box of ``mask`` is labelled: every component lies inside it, and
+    labelling a box keeps the raster order of its voxels, so the labels are those of
+    labelling the whole of ``mask``.
+    """
+    box = bounding_box(mask)
+    if box is None:
+        box = tuple(slice(0, 0) for _ in mask.shape)
+        return np.zeros((0,) * mask.ndim, dtype=np.uint16), 0, np.zeros(1, dtype=np.int64), [], box
+    lab, n = label_compact(mask[box])
     objects = ndimage.find_objects(lab)
     if n > 64:
         sizes = np.bincount(lab.ravel(), minlength=n + 1)
@@ -137,7 +180,9 @@ def _components(mask: np.ndarray) -> tuple[np.ndarray, int, np.ndarray, list]:
             if sl is not None:
                 sizes[i] = np.count_nonzero(lab[sl] == i)
     sizes[0] = 0
-    return lab, n, sizes, objects
+    offset = tuple(s.start for s in box)
+    objects = [None if sl is None else _shifted(sl, offset) for sl in objects]
+    return lab, n, sizes, objects, box
 
 
 def _or_window(a: np.ndarray, half: int, axis: int) -> np.ndarray:
@@ -181,7 +226,7 @@ def fill_holes_in_plane(mask: np.ndarray) -> np.ndarray:
     One in-plane labelling of the background for all slices, much faster than iterative
     filling of a 3-D volume.
     """
-    lab, n = ndimage.label(~mask, structure=_INPLANE)
+    lab, n = label_compact(~mask, structure=_INPLANE)
     if n == 0:
         return mask
     outside = np.zeros(n + 1, dtype=bool)
@@ -191,15 +236,34 @@ def fill_holes_in_plane(mask: np.ndarray) -> np.ndarray:
     return mask | ~outside[lab]
 
 
-def centroid_of(mask: np.ndarray) -> tuple[float, float, float]:
-    """Centre of mass (z, y, x) of a boolean volume from its axis projections."""
-    total = float(np.count_nonzero(mask))
+def centroid_of(mask: np.ndarray, box: tuple[slice, ...] | None = None) -> tuple[float, float, float]:
+    """Centre of mass (z, y, x) of a boolean volume from its axis projections.
+
+    ``box``, when given, must hold every True voxel; only it is read. The sums are exact
+    integers either way, so the result does not depend on ``box``.
+    """
+    if box is None:
+        box = tuple(slice(0, n) for n in mask.shape)
+    part = mask[box]
+    total = float(np.count_nonzero(part))
     out = []
     for axis in range(3):
         others = tuple(a for a in range(3) if a != axis)
-        profile = np.count_nonzero(mask, axis=others)
-        out.append(float((profile * np.arange(mask.shape[axis])).sum() / total))
+        profile = np.count_nonzero(part, axis=others).astype(np.int64)
+        index = np.arange(box[axis].start, box[axis].start + part.shape[axis], dtype=np.int64)
+        out.append(float((profile * index).sum() / total))
     return tuple(out)  # type: ignore[return-value]
+
+
+def _union_box(a: tuple[slice, ...], b: tuple[slice, ...]) -> tuple[slice, ...]:
+    return tuple(slice(min(p.start, q.start), max(p.stop, q.stop)) for p, q in zip(a, b))
+
+
+def _widened_in_plane(box: tuple[slice, ...], half: int, shape: tuple[int, ...]) -> tuple[slice, ...]:
+    """``box`` widened by ``half`` pixels in y and x, clipped to ``shape``."""
+    zs, ys, xs = box
+    return (zs, slice(max(0, ys.start - half), min(shape[1], ys.stop + half)),
+            slice(max(0, xs.start - half), min(shape[2], xs.stop + half)))
 
 
 def _is_table(comp_slices: tuple[slice, ...], comp: np.ndarray, body_bbox: tuple[slice, ...], nz: int) -> bool:
@@ -232,33 +296,41 @@ def find_regions(
     centre, radius = _circle_of(fov2d)
     notes: list[str] = []
 
-    dense = (hu > body_threshold_hu) & fov2d[None]
-    lab, n, sizes, objects = _components(dense)
+    dense = np.greater(hu, body_threshold_hu)
+    dense &= fov2d[None]
+    lab, n, sizes, objects, box = _components(dense)
     del dense
+    offset = tuple(-s.start for s in box)
     body = np.zeros(hu.shape, dtype=bool)
     table = np.zeros(hu.shape, dtype=bool)
     centroid = None
+    grown_box: tuple[slice, ...] | None = None
     if n:
         body_label = int(np.argmax(sizes))
         body_bbox = objects[body_label - 1]
-        body[body_bbox] = fill_holes_in_plane(lab[body_bbox] == body_label)
+        body[body_bbox] = fill_holes_in_plane(lab[_shifted(body_bbox, offset)] == body_label)
+        grown_box = body_bbox
         for i, sl in enumerate(objects, start=1):
             if i == body_label or sl is None or sizes[i] < 20:
                 continue
-            comp = lab[sl] == i
+            comp = lab[_shifted(sl, offset)] == i
             if _is_table(sl, comp, body_bbox, nz):
                 table[sl] |= comp
+                grown_box = _union_box(grown_box, sl)
         del lab
-        centroid = centroid_of(body)
+        centroid = centroid_of(body, body_bbox)
     else:
         notes.append("no body found: nothing above %.0f HU inside the field of view" % body_threshold_hu)
 
     margin_px = max(1, int(round(margin_mm / min(volume.spacing_mm[1:]))))
-    grown = dilate_in_plane(body | table, margin_px)
-    air = np.logical_not(grown, out=grown)
-    air &= fov2d[None]
+    air = np.empty(hu.shape, dtype=bool)
+    air[:] = fov2d[None]
     if volume.padding_mask is not None:
         air &= ~volume.padding_mask[None]
+    if grown_box is not None:  # outside the grown box nothing of the body or table is near
+        near = _widened_in_plane(grown_box, margin_px, hu.shape)
+        grown = dilate_in_plane(body[near] | table[near], margin_px)
+        air[near] &= np.logical_not(grown, out=grown)
     return Regions(
         fov=fov2d,
         body=body,

@@ -1,0 +1,145 @@
+"""The fast paths of the shared regions against a plain full-resolution reference.
+
+The reference below labels the whole volume with int32 labels, fills holes slice by
+slice with ``ndimage.binary_fill_holes``, dilates with ``ndimage.maximum_filter`` over
+the whole volume and takes the centroid with ``ndimage.center_of_mass``: the method of
+the module docstring written the simplest way. The fast path must give the same masks.
+"""
+from __future__ import annotations
+
+import numpy as np
+import pytest
+from scipy import ndimage
+
+from reconaudit.checker.regions import (
+    _is_table,
+    bounding_box,
+    centroid_of,
+    fill_holes_in_plane,
+    find_fov,
+    find_regions,
+    label_compact,
+)
+from reconaudit.checker.volume import Volume
+
+
+def reference_regions(volume: Volume, body_threshold_hu: float = -500.0, margin_mm: float = 4.0):
+    """(body, table, air, centroid) computed at full resolution with plain scipy calls."""
+    hu = volume.hu
+    fov, _ = find_fov(volume)
+    dense = (hu > body_threshold_hu) & fov[None]
+    lab, n = ndimage.label(dense)
+    body = np.zeros(hu.shape, dtype=bool)
+    table = np.zeros(hu.shape, dtype=bool)
+    centroid = None
+    if n:
+        sizes = np.bincount(lab.ravel(), minlength=n + 1)
+        sizes[0] = 0
+        body_label = int(np.argmax(sizes))
+        objects = ndimage.find_objects(lab)
+        body_bbox = objects[body_label - 1]
+        raw = lab == body_label
+        body = np.stack([ndimage.binary_fill_holes(s) for s in raw])
+        for i, sl in enumerate(objects, start=1):
+            if i == body_label or sl is None or sizes[i] < 20:
+                continue
+            comp = lab[sl] == i
+            if _is_table(sl, comp, body_bbox, hu.shape[0]):
+                table[sl] |= comp
+        centroid = tuple(float(c) for c in ndimage.center_of_mass(body))
+    half = max(1, int(round(margin_mm / min(volume.spacing_mm[1:]))))
+    grown = ndimage.maximum_filter(body | table, size=(1, 2 * half + 1, 2 * half + 1))
+    air = ~grown & fov[None]
+    if volume.padding_mask is not None:
+        air &= ~volume.padding_mask[None]
+    return body, table, air, centroid
+
+
+def random_phantom(seed: int, nz: int = 6, n: int = 64) -> Volume:
+    """A noisy slab with a random body (ellipse with holes), a table and small blobs."""
+    rng = np.random.default_rng(seed)
+    y, x = np.mgrid[0:n, 0:n]
+    hu = np.full((nz, n, n), -1000.0, dtype=np.float32)
+    cy, cx = n * rng.uniform(0.35, 0.5), n * rng.uniform(0.4, 0.6)
+    ay, ax = n * rng.uniform(0.15, 0.25), n * rng.uniform(0.2, 0.35)
+    for k in range(nz):
+        grow = 1.0 + 0.05 * rng.standard_normal()
+        body = ((y - cy) / (ay * grow)) ** 2 + ((x - cx) / (ax * grow)) ** 2 <= 1.0
+        hu[k][body] = 40.0
+        for _ in range(rng.integers(0, 4)):  # lungs and other holes
+            hy, hx = cy + rng.uniform(-0.5, 0.5) * ay, cx + rng.uniform(-0.5, 0.5) * ax
+            r = rng.uniform(1.5, 0.3 * ay)
+            hu[k][(y - hy) ** 2 + (x - hx) ** 2 <= r * r] = -850.0
+    if rng.random() < 0.8:  # a flat table under the body
+        top = int(min(n - 6, cy + ay * 1.3 + 2))
+        hu[:, top : top + 3, int(0.15 * n) : int(0.85 * n)] = 200.0
+    for _ in range(rng.integers(0, 6)):  # small dense blobs in the air
+        hu[rng.integers(0, nz), rng.integers(0, n), rng.integers(0, n)] = 300.0
+    hu += rng.normal(0.0, 10.0, hu.shape).astype(np.float32)
+    pad = (y - n / 2 + 0.5) ** 2 + (x - n / 2 + 0.5) ** 2 > (n / 2 - 1) ** 2
+    if rng.random() < 0.5:
+        hu[:, pad] = -3024.0
+    else:
+        pad = None
+    return Volume.from_array(hu, spacing_mm=(2.0, 1.0, 1.0), padding_mask=pad)
+
+
+@pytest.mark.parametrize("seed", range(12))
+def test_fast_regions_equal_full_resolution_reference(seed: int) -> None:
+    volume = random_phantom(seed)
+    fast = find_regions(volume)
+    body, table, air, centroid = reference_regions(volume)
+    assert np.array_equal(fast.body, body)
+    assert np.array_equal(fast.table, table)
+    assert np.array_equal(fast.air, air)
+    if centroid is None:
+        assert fast.body_centroid_zyx_vox is None
+    else:
+        assert np.allclose(fast.body_centroid_zyx_vox, centroid, atol=1e-9)
+
+
+def test_one_slice_volume_equals_reference() -> None:
+    volume = random_phantom(3, nz=1, n=96)
+    fast = find_regions(volume)
+    body, table, air, _ = reference_regions(volume)
+    assert np.array_equal(fast.body, body) and np.array_equal(fast.air, air)
+    assert np.array_equal(fast.table, table)
+
+
+def test_no_body_gives_empty_masks_and_full_air() -> None:
+    hu = np.random.default_rng(2).normal(-1000.0, 5.0, (3, 32, 32)).astype(np.float32)  # noisy air only
+    volume = Volume.from_array(hu, spacing_mm=(1.0, 1.0, 1.0))
+    reg = find_regions(volume)
+    assert not reg.body.any() and not reg.table.any()
+    assert reg.fov.all() and reg.air.all()
+    assert reg.body_centroid_zyx_vox is None and reg.notes
+
+
+def test_label_compact_equals_ndimage_label_and_falls_back_beyond_uint16() -> None:
+    rng = np.random.default_rng(5)
+    mask = rng.random((4, 40, 40)) < 0.3
+    lab, n = label_compact(mask)
+    ref, n_ref = ndimage.label(mask)
+    assert lab.dtype == np.uint16 and n == n_ref and np.array_equal(lab, ref)
+    many = np.zeros((1, 600, 600), dtype=bool)
+    many[0, ::2, ::2] = True  # 90 000 isolated pixels: more labels than uint16 holds
+    lab, n = label_compact(many)
+    assert n == 90000 and lab.max() == 90000
+
+
+def test_bounding_box_and_boxed_centroid() -> None:
+    mask = np.zeros((5, 20, 30), dtype=bool)
+    mask[1:3, 4:9, 10:25] = True
+    mask[4, 15, 2] = True
+    box = bounding_box(mask)
+    assert box == (slice(1, 5), slice(4, 16), slice(2, 25))
+    assert bounding_box(np.zeros((2, 3, 4), dtype=bool)) is None
+    assert centroid_of(mask, box) == centroid_of(mask)
+    assert np.allclose(centroid_of(mask), ndimage.center_of_mass(mask))
+
+
+def test_fill_holes_with_many_components_falls_back_and_stays_exact() -> None:
+    mask = np.ones((1, 600, 600), dtype=bool)
+    mask[0, 1:-1:2, 1:-1:2] = False  # about 90 000 one-pixel holes
+    filled = fill_holes_in_plane(mask)
+    assert filled.all()
