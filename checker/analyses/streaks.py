@@ -284,8 +284,11 @@ def bin_mask(mask: np.ndarray, factor: int) -> np.ndarray:
     if factor == 1:
         return mask
     ny, nx = (n // factor * factor for n in mask.shape)
-    blocks = mask[:ny, :nx].reshape(ny // factor, factor, nx // factor, factor)
-    return blocks.any(axis=(1, 3))
+    out = np.zeros((ny // factor, nx // factor), dtype=bool)
+    for dy in range(factor):
+        for dx in range(factor):
+            out |= mask[dy:ny:factor, dx:nx:factor]
+    return out
 
 
 def inner_boundary(mask: np.ndarray) -> np.ndarray:
@@ -337,6 +340,50 @@ def grow(mask: np.ndarray, radius_px: int) -> np.ndarray:
     return out
 
 
+@functools.lru_cache(maxsize=8)
+def gaussian_taps(sigma_px: float, truncate: float) -> tuple[float, ...]:
+    """Normalised taps of a sampled Gaussian, radius ``int(truncate * sigma + 0.5)``."""
+    radius = int(truncate * float(sigma_px) + 0.5)
+    x = np.arange(-radius, radius + 1, dtype=np.float64)
+    taps = np.exp(-0.5 * x * x / (float(sigma_px) ** 2))
+    return tuple(float(v) for v in taps / taps.sum())
+
+
+def gaussian_blur(image: np.ndarray, sigma_px: float, truncate: float) -> np.ndarray:
+    """Separable Gaussian blur of a 2-D float32 image, mirror-extended at the borders.
+
+    The same sampled kernel and border rule (``d c b a | a b c d``) as
+    ``scipy.ndimage.gaussian_filter(image, sigma_px, truncate=truncate)``, accumulated
+    in float32 from the symmetric pairs of taps (equal to it up to float32 rounding).
+    """
+    taps = gaussian_taps(float(sigma_px), float(truncate))
+    out = _blur_axis(np.asarray(image, dtype=np.float32), taps, 0)
+    return _blur_axis(out, taps, 1)
+
+
+def _blur_axis(image: np.ndarray, taps: tuple[float, ...], axis: int) -> np.ndarray:
+    radius = len(taps) // 2
+    n = image.shape[axis]
+    if radius == 0:
+        return image.copy()
+    if radius > n:  # the mirror would need more than one reflection
+        return ndimage.correlate1d(image, np.asarray(taps), axis=axis, mode="reflect")
+    pad = [(0, 0), (0, 0)]
+    pad[axis] = (radius, radius)
+    ext = np.pad(image, pad, mode="symmetric")
+
+    def shifted(k: int) -> np.ndarray:
+        return ext[k : k + n] if axis == 0 else ext[:, k : k + n]
+
+    out = shifted(radius) * np.float32(taps[radius])
+    pair = np.empty_like(out)
+    for k in range(radius):
+        np.add(shifted(k), shifted(2 * radius - k), out=pair)
+        pair *= np.float32(taps[k])
+        out += pair
+    return out
+
+
 def soft_weight(bad: np.ndarray, reach_px: float) -> np.ndarray:
     """A weight that is 0 on and near ``bad`` pixels and rises smoothly to 1 away from them.
 
@@ -347,7 +394,7 @@ def soft_weight(bad: np.ndarray, reach_px: float) -> np.ndarray:
     """
     if not bad.any():
         return np.ones(bad.shape, dtype=np.float32)
-    blur = ndimage.gaussian_filter(bad.astype(np.float32), 0.5 * reach_px, truncate=2.5)
+    blur = gaussian_blur(bad.astype(np.float32), 0.5 * reach_px, 2.5)
     w = np.clip(1.0 - blur * np.float32(20.0), 0.0, 1.0)
     return w * w
 
@@ -401,7 +448,7 @@ def slice_texture(image: np.ndarray, allowed: np.ndarray, cfg: dict[str, Any]) -
         fill = float(np.median(image[valid]))
         img = np.where(valid, image, np.float32(fill)).astype(np.float32, copy=False)
     sigma = float(cfg["highpass_sigma_px"])
-    smoothed = ndimage.gaussian_filter(img, sigma, truncate=3.0)
+    smoothed = gaussian_blur(img, sigma, 3.0)
     residual = img - smoothed
     reach = 2.0 * sigma + 2.0
     weight = soft_weight(~valid | strong_edges(smoothed, float(cfg["edge_step_hu"]), sigma), reach)

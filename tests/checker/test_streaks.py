@@ -330,3 +330,16 @@ def test_screen_does_not_depend_on_thread_count(monkeypatch):
         records.append(analyse(hu).record)
     assert records[0] == records[1]
     assert records[0]["slice_index"][2] is None
+
+
+@pytest.mark.parametrize("shape", [(64, 64), (7, 90), (3, 5)])
+@pytest.mark.parametrize("sigma,truncate", [(1.5, 3.0), (2.5, 2.5), (0.3, 3.0)])
+def test_gaussian_blur_equals_scipy_up_to_float32_rounding(shape, sigma, truncate):
+    """Same sampled kernel and mirror border as scipy.ndimage.gaussian_filter."""
+    from scipy import ndimage
+
+    image = (np.random.default_rng(4).normal(size=shape) * 100.0).astype(np.float32)
+    expected = ndimage.gaussian_filter(image, sigma, truncate=truncate)
+    got = streaks.gaussian_blur(image, sigma, truncate)
+    assert got.dtype == np.float32 and got.shape == image.shape
+    assert np.max(np.abs(got - expected)) <= 1e-5 * np.max(np.abs(image))
