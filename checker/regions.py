@@ -323,10 +323,9 @@ def find_regions(
         notes.append("no body found: nothing above %.0f HU inside the field of view" % body_threshold_hu)
 
     margin_px = max(1, int(round(margin_mm / min(volume.spacing_mm[1:]))))
+    open_2d = fov2d if volume.padding_mask is None else fov2d & ~volume.padding_mask
     air = np.empty(hu.shape, dtype=bool)
-    air[:] = fov2d[None]
-    if volume.padding_mask is not None:
-        air &= ~volume.padding_mask[None]
+    air[:] = open_2d[None]  # the field of view less the padding, on every slice
     if grown_box is not None:  # outside the grown box nothing of the body or table is near
         near = _widened_in_plane(grown_box, margin_px, hu.shape)
         grown = dilate_in_plane(body[near] | table[near], margin_px)
