@@ -158,19 +158,25 @@ def _shifted(sl: tuple[slice, ...], offset: tuple[int, ...]) -> tuple[slice, ...
     return tuple(slice(s.start + o, s.stop + o) for s, o in zip(sl, offset))
 
 
-def _components(mask: np.ndarray) -> tuple[np.ndarray, int, np.ndarray, list, tuple[slice, ...]]:
-    """Labels, count, size of every label (index 0 unused), the bounding boxes (in the
-    coordinates of ``mask``) and the box of ``mask`` the labels cover.
+@dataclass
+class _Component:
+    """One 3-D connected component: its size, box (volume coordinates) and where its
+    labels are (``labels[local_box] == label`` is its mask inside ``box``)."""
 
-    Only the bounding box of ``mask`` is labelled: every component lies inside it, and
-    labelling a box keeps the raster order of its voxels, so the labels are those of
-    labelling the whole of ``mask``.
-    """
-    box = bounding_box(mask)
-    if box is None:
-        box = tuple(slice(0, 0) for _ in mask.shape)
-        return np.zeros((0,) * mask.ndim, dtype=np.uint16), 0, np.zeros(1, dtype=np.int64), [], box
-    lab, n = label_compact(mask[box])
+    size: int
+    box: tuple[slice, ...]
+    labels: np.ndarray
+    local_box: tuple[slice, ...]
+    label: int
+
+    def mask(self) -> np.ndarray:
+        return self.labels[self.local_box] == self.label
+
+
+def _components_of(mask: np.ndarray, offset: tuple[int, ...]) -> list[_Component]:
+    """The components of ``mask`` in the order ``ndimage.label`` numbers them; ``offset``
+    is the position of ``mask`` in the volume."""
+    lab, n = label_compact(mask)
     objects = ndimage.find_objects(lab)
     if n > 64:
         sizes = np.bincount(lab.ravel(), minlength=n + 1)
@@ -179,10 +185,36 @@ def _components(mask: np.ndarray) -> tuple[np.ndarray, int, np.ndarray, list, tu
         for i, sl in enumerate(objects, start=1):
             if sl is not None:
                 sizes[i] = np.count_nonzero(lab[sl] == i)
-    sizes[0] = 0
-    offset = tuple(s.start for s in box)
-    objects = [None if sl is None else _shifted(sl, offset) for sl in objects]
-    return lab, n, sizes, objects, box
+    return [_Component(int(sizes[i]), _shifted(sl, offset), lab, sl, i)
+            for i, sl in enumerate(objects, start=1) if sl is not None]
+
+
+def _components(mask: np.ndarray) -> list[_Component]:
+    """The 3-D components (6-connected) of ``mask``.
+
+    Only the bounding box of ``mask`` is labelled, split by the 4-connected components of
+    its footprint along z: two voxels adjacent in 3-D have the same or 4-adjacent
+    footprint pixels, so every component lies over one footprint component and each can
+    be labelled apart, in its own smaller box. The order of the list then follows the
+    footprints; when two components share the largest size (the only case where the
+    order matters, see :func:`find_regions`) the box is labelled as one, in the order
+    ``ndimage.label`` gives.
+    """
+    box = bounding_box(mask)
+    if box is None:
+        return []
+    part = mask[box]
+    footprint, m = ndimage.label(part.any(axis=0))
+    found: list[_Component] = []
+    for g, yx in enumerate(ndimage.find_objects(footprint), start=1):
+        sub = part[(slice(None),) + yx]
+        if m > 1:
+            sub = sub & (footprint[yx] == g)[None]
+        found += _components_of(sub, (box[0].start, box[1].start + yx[0].start, box[2].start + yx[1].start))
+    sizes = [c.size for c in found]
+    if m > 1 and sizes.count(max(sizes)) > 1:
+        found = _components_of(part, tuple(s.start for s in box))
+    return found
 
 
 def _or_window(a: np.ndarray, half: int, axis: int) -> np.ndarray:
@@ -298,26 +330,25 @@ def find_regions(
 
     dense = np.greater(hu, body_threshold_hu)
     dense &= fov2d[None]
-    lab, n, sizes, objects, box = _components(dense)
+    comps = _components(dense)
     del dense
-    offset = tuple(-s.start for s in box)
     body = np.zeros(hu.shape, dtype=bool)
     table = np.zeros(hu.shape, dtype=bool)
     centroid = None
     grown_box: tuple[slice, ...] | None = None
-    if n:
-        body_label = int(np.argmax(sizes))
-        body_bbox = objects[body_label - 1]
-        body[body_bbox] = fill_holes_in_plane(lab[_shifted(body_bbox, offset)] == body_label)
+    if comps:
+        largest = comps[int(np.argmax([c.size for c in comps]))]
+        body_bbox = largest.box
+        body[body_bbox] = fill_holes_in_plane(largest.mask())
         grown_box = body_bbox
-        for i, sl in enumerate(objects, start=1):
-            if i == body_label or sl is None or sizes[i] < 20:
+        for c in comps:
+            if c is largest or c.size < 20:
                 continue
-            comp = lab[_shifted(sl, offset)] == i
-            if _is_table(sl, comp, body_bbox, nz):
-                table[sl] |= comp
-                grown_box = _union_box(grown_box, sl)
-        del lab
+            comp = c.mask()
+            if _is_table(c.box, comp, body_bbox, nz):
+                table[c.box] |= comp
+                grown_box = _union_box(grown_box, c.box)
+        del comps
         centroid = centroid_of(body, body_bbox)
     else:
         notes.append("no body found: nothing above %.0f HU inside the field of view" % body_threshold_hu)

@@ -143,3 +143,16 @@ def test_fill_holes_with_many_components_falls_back_and_stays_exact() -> None:
     mask[0, 1:-1:2, 1:-1:2] = False  # about 90 000 one-pixel holes
     filled = fill_holes_in_plane(mask)
     assert filled.all()
+
+
+def test_two_equal_components_pick_the_one_ndimage_labels_first() -> None:
+    """Equal sizes: the body is the component ``ndimage.label`` numbers first (the first in
+    z, y, x order), though the other one comes first in the footprint along z."""
+    hu = np.random.default_rng(9).normal(-1000.0, 5.0, (3, 64, 64)).astype(np.float32)
+    hu[0:2, 30:40, 5:15] = 40.0  # first in 3-D raster order (starts on slice 0)
+    hu[1:3, 10:20, 40:50] = 40.0  # first in the footprint (smaller y)
+    volume = Volume.from_array(hu, spacing_mm=(1.0, 1.0, 1.0))
+    fast = find_regions(volume)
+    body, table, air, _ = reference_regions(volume)
+    assert fast.body[0, 35, 10] and not fast.body[1, 15, 45]
+    assert np.array_equal(fast.body, body) and np.array_equal(fast.air, air)
