@@ -31,6 +31,9 @@ from .results import SCHEMA, Finding, Severity, dumps, to_jsonable, worst_verdic
 
 log = logging.getLogger(__name__)
 
+#: Series one worker process checks before it is replaced by a fresh one.
+TASKS_PER_WORKER = 25
+
 RESULT_KEYS = ("streaks", "air", "nps", "uniformity", "ttf")
 
 
@@ -186,6 +189,11 @@ def run_local(tasks: list[SeriesTask], on_done: Callable[[dict[str, Any]], None]
     it runs); the others are resubmitted free. A charged task is retried alone in its
     own process, so a second death is unambiguously its own and it is recorded as an
     error (``worker_died``) after ``max_attempts`` attempts.
+
+    Workers are recycled by giving each pool at most ``TASKS_PER_WORKER`` tasks per
+    worker (memory stays bounded over a long batch). The executor's own
+    ``max_tasks_per_child`` is not used: on Python 3.11 a pool given more tasks than
+    ``max_workers * max_tasks_per_child`` hangs once its first workers retire.
     """
     if workers <= 1:
         for task in tasks:
@@ -195,7 +203,8 @@ def run_local(tasks: list[SeriesTask], on_done: Callable[[dict[str, Any]], None]
     shared, alone = list(tasks), []
     with tempfile.TemporaryDirectory(prefix="reconaudit-running-") as marks:
         while shared or alone:
-            groups = ([(shared, workers)] if shared else []) + [([t], 1) for t in alone]
+            chunks = [shared[i:i + workers * TASKS_PER_WORKER] for i in range(0, len(shared), workers * TASKS_PER_WORKER)]
+            groups = [(chunk, workers) for chunk in chunks] + [([t], 1) for t in alone]
             shared, alone = [], []
             for group, n_proc in groups:
                 lost = _pool_round(group, on_done, n_proc, marks)
@@ -216,7 +225,7 @@ def _pool_round(tasks: list[SeriesTask], on_done: Callable[[dict[str, Any]], Non
                 marks: str) -> list[tuple[SeriesTask, str, bool]]:
     """Run ``tasks`` in one pool; return (task, reason, started) for those lost with the pool."""
     lost = []
-    with ProcessPoolExecutor(max_workers=min(workers, len(tasks)), max_tasks_per_child=25) as pool:
+    with ProcessPoolExecutor(max_workers=min(workers, len(tasks))) as pool:
         futures = {pool.submit(_marked_run, task, marks): task for task in tasks}
         for fut in as_completed(futures):
             task = futures[fut]
