@@ -80,6 +80,28 @@ def _unique_ids(sources) -> dict[str, str]:
     return ids
 
 
+def _remove_partial_files(out_dir: Path) -> list[Path]:
+    """Delete the temporary files a killed run left behind (atomic writes in progress).
+
+    Only names our own writers make: ``.<name>.<random>.part`` (fsutil) and
+    ``.report-<random>.html.tmp`` (the report). They were never renamed into place, so
+    nothing that was complete is lost.
+    """
+    removed = []
+    for path in out_dir.rglob(".*"):
+        if path.is_file() and (path.name.endswith(".part") or
+                               (path.name.startswith(".report-") and path.name.endswith(".html.tmp"))):
+            try:
+                path.unlink()
+            except OSError as exc:
+                log.warning("could not remove the partial file %s: %s", path, exc)
+                continue
+            removed.append(path)
+    if removed:
+        log.info("removed %d partial file(s) left by an interrupted run", len(removed))
+    return removed
+
+
 def _run_id(out_dir: Path) -> str:
     """Reuse the run id of an unfinished run in the same folder (a resume)."""
     state = out_dir / "run.json"
@@ -148,6 +170,7 @@ def check(opts: CheckOptions, progress_factory: Callable[[int], Any] | None = No
     profile: Profile = load_profile(opts.profile_path)
     out_dir = opts.out_dir
     out_dir.mkdir(parents=True, exist_ok=True)
+    _remove_partial_files(out_dir)
     run_id = _run_id(out_dir)
     started = time.strftime("%Y-%m-%dT%H:%M:%S%z")
     _write_run_state(out_dir, run_id, finished=False)
