@@ -47,6 +47,24 @@ def test_local_pool_retries_a_killed_worker_once(four_series, tmp_path, monkeypa
     assert json.loads((tmp_path / "out" / "results.json").read_text())["series"] == outcome.document["series"]
 
 
+def test_pool_recycles_workers_without_hanging(four_series, tmp_path, monkeypatch):
+    """More series than workers x TASKS_PER_WORKER: fresh pools take over and every series completes.
+
+    (Python 3.11's own max_tasks_per_child hung in exactly this situation.)
+    """
+    from reconaudit.checker import batch
+
+    monkeypatch.setattr(batch, "TASKS_PER_WORKER", 1)
+    pids = []
+    real = batch._safe_run
+    monkeypatch.setattr(batch, "_safe_run", lambda task: dict(real(task), worker_pid=os.getpid()))
+    doc = check(_options(four_series, tmp_path / "out", workers=2)).document
+    assert len(doc["series"]) == 4 and all(r["status"] == "ok" for r in doc["series"])
+    pids = {r["worker_pid"] for r in doc["series"]}
+    assert len(pids) >= 3, "each pool of two tasks had its own worker processes"
+    assert os.getpid() not in pids
+
+
 def test_two_workers_equal_one_worker(four_series, tmp_path):
     one = check(_options(four_series, tmp_path / "one", workers=1)).document["series"]
     two = check(_options(four_series, tmp_path / "two", workers=2)).document["series"]
@@ -160,3 +178,17 @@ def test_full_disk_while_writing_the_report(four_series, tmp_path, monkeypatch):
     assert len(doc["series"]) == 4 and all(r["status"] == "ok" for r in doc["series"])
     assert not (out / "report.html").exists()
     assert not json.loads((out / "run.json").read_text())["finished"]
+
+
+def test_rerun_removes_partial_files_of_a_killed_run(four_series, tmp_path):
+    """Temporary files of atomic writes interrupted by a kill are removed by the rerun."""
+    out = tmp_path / "out"
+    (out / "series").mkdir(parents=True)
+    stale = [out / ".results.json.k1ll3d.part", out / "series" / ".x-1234.json.abcd.part", out / ".report-zz.html.tmp"]
+    for p in stale:
+        p.write_text('{"half": ')
+    keep = out / "notes-by-the-physicist.txt"
+    keep.write_text("not ours")
+    check(_options(four_series, out, workers=1))
+    assert not [p for p in stale if p.exists()]
+    assert keep.exists()
