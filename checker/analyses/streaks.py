@@ -430,8 +430,12 @@ def local_noise_gain(residual: np.ndarray, weight: np.ndarray, scale_hu: float, 
     w = weight.astype(np.float32) if weight.dtype != np.float32 else weight
     num = smooth_box2(residual * residual, sigma_px)
     den = smooth_box2(w, sigma_px)
-    local = np.sqrt(np.maximum(num, np.float32(0.0)) / np.maximum(den, np.float32(1e-3)))
-    return (np.float32(scale_hu) / np.maximum(local, np.float32(0.25 * scale_hu))).astype(np.float32)
+    np.maximum(num, np.float32(0.0), out=num)
+    np.maximum(den, np.float32(1e-3), out=den)
+    np.divide(num, den, out=num)
+    np.sqrt(num, out=num)  # the local RMS
+    np.maximum(num, np.float32(0.25 * scale_hu), out=num)
+    return np.divide(np.float32(scale_hu), num, out=num)
 
 
 def slice_texture(image: np.ndarray, allowed: np.ndarray, cfg: dict[str, Any]) -> SliceTexture | None:
@@ -441,7 +445,7 @@ def slice_texture(image: np.ndarray, allowed: np.ndarray, cfg: dict[str, Any]) -
     """
     finite = np.isfinite(image)
     valid = allowed & finite
-    if valid.sum() < cfg["min_weight_fraction"] * image.size:
+    if np.count_nonzero(valid) < cfg["min_weight_fraction"] * image.size:
         return None
     img = image
     if not finite.all() or not allowed.all():
@@ -453,14 +457,16 @@ def slice_texture(image: np.ndarray, allowed: np.ndarray, cfg: dict[str, Any]) -
     reach = 2.0 * sigma + 2.0
     weight = soft_weight(~valid | strong_edges(smoothed, float(cfg["edge_step_hu"]), sigma), reach)
     inside = weight > 0.5
-    if inside.sum() < cfg["min_weight_fraction"] * image.size:
+    if np.count_nonzero(inside) < cfg["min_weight_fraction"] * image.size:
         return None
     values = residual[inside]
-    scale = 1.4826 * float(np.median(np.abs(values[:: max(1, values.size // 20000)])))
+    sample = np.abs(values[:: max(1, values.size // 20000)])
+    scale = 1.4826 * float(np.median(sample))
     if not scale > 0 or not math.isfinite(scale):
         return None
     limit = np.float32(cfg["clip_sigma"] * scale)
-    clipped = np.clip(residual, -limit, limit)
+    clipped = np.minimum(residual, limit, out=residual)  # residual is not used again
+    np.maximum(clipped, -limit, out=clipped)
     clipped *= weight
     reach_eq = float(cfg["noise_equalise_sigma_px"])
     if reach_eq > 0:
