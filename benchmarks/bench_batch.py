@@ -1,0 +1,151 @@
+"""Batch benchmark: memory over a long batch, and the throughput of 2 workers vs 1.
+
+1. ``--series`` (default 200) small generated CT series (water cylinders of the invented
+   Fernhollow scenario, 6 x 64 x 64) checked in one batch with 2 local workers. A sampler
+   thread records the resident set size (RSS) of the main process and of every worker
+   every 50 ms; printed: the peak RSS of the main process in the first and the last
+   quarter of the batch (flat = bounded), the peak RSS of any one worker, and
+   ``ru_maxrss`` of this process and of its children.
+2. The 8 first committed demo series (``sample_volumes/fernhollow/...``, 256 x 256 x 16)
+   checked with 1 worker and with 2 workers (fresh ``--out`` each, no history); printed:
+   the wall times and the throughput ratio t(1 worker) / t(2 workers). The target of the
+   design guide is at least 1.8.
+
+Prints, never asserts (machines differ; the CI machine is shared). Run:
+
+    python benchmarks/bench_batch.py [--series 200] [--figures] [--skip-memory] [--skip-throughput]
+"""
+from __future__ import annotations
+
+import argparse
+import resource
+import shutil
+import sys
+import tempfile
+import threading
+import time
+from pathlib import Path
+
+HERE = Path(__file__).resolve().parent
+REPO = HERE.parent
+sys.path.insert(0, str(REPO / "tests" / "corpus"))
+
+import make_corpus  # noqa: E402  (the small-series writer of the test corpus)
+
+MiB = 2**20
+
+
+class RssSampler:
+    """Samples the RSS of this process and its children every ``interval`` seconds."""
+
+    def __init__(self, count_done, interval: float = 0.05) -> None:
+        import psutil
+
+        self.me = psutil.Process()
+        self.count_done = count_done
+        self.interval = interval
+        self.main: list[tuple[int, int]] = []  # (series done, rss)
+        self.workers: dict[int, int] = {}  # pid -> peak rss
+        self._stop = threading.Event()
+        self._thread = threading.Thread(target=self._run, daemon=True)
+
+    def _run(self) -> None:
+        import psutil
+
+        while not self._stop.is_set():
+            self.main.append((self.count_done(), self.me.memory_info().rss))
+            for child in self.me.children(recursive=True):
+                try:
+                    rss = child.memory_info().rss
+                except psutil.Error:
+                    continue
+                self.workers[child.pid] = max(rss, self.workers.get(child.pid, 0))
+            time.sleep(self.interval)
+
+    def __enter__(self) -> "RssSampler":
+        self._thread.start()
+        return self
+
+    def __exit__(self, *exc) -> None:
+        self._stop.set()
+        self._thread.join()
+
+
+def _check(inputs: Path, out: Path, workers: int, figures: bool):
+    from reconaudit.checker.runner import CheckOptions, check
+
+    return check(CheckOptions(inputs=[inputs], out_dir=out, workers=workers, figures=figures))
+
+
+def memory_run(n_series: int, figures: bool, work: Path) -> None:
+    inputs = work / "many"
+    t0 = time.perf_counter()
+    for i in range(n_series):
+        make_corpus.write_series(inputs / f"s{i:04d}", f"bench-{i}", nz=6, n=64, description=f"Fernhollow bench {i}")
+    print(f"wrote {n_series} series of 6 x 64 x 64 in {time.perf_counter() - t0:.1f} s")
+    out = work / "many_out"
+    series_dir = out / "series"
+
+    def done() -> int:
+        return len(list(series_dir.glob("*.json"))) if series_dir.is_dir() else 0
+
+    t0 = time.perf_counter()
+    with RssSampler(done) as sampler:
+        outcome = _check(inputs, out, 2, figures)
+    wall = time.perf_counter() - t0
+    records = outcome.document["series"]
+    ok = sum(r["status"] == "ok" for r in records)
+    q = max(1, n_series // 4)
+    first = max((rss for n, rss in sampler.main if n < q), default=0)
+    last = max((rss for n, rss in sampler.main if n >= n_series - q), default=0)
+    print(f"{n_series} series, 2 workers: {wall:.1f} s ({n_series / wall:.2f} series/s), {ok} ok, "
+          f"{len(records) - ok} not ok")
+    print(f"peak RSS main process: first quarter {first / MiB:.0f} MiB, last quarter {last / MiB:.0f} MiB "
+          f"(growth {(last - first) / MiB:+.0f} MiB)")
+    if sampler.workers:
+        print(f"peak RSS of one worker: {max(sampler.workers.values()) / MiB:.0f} MiB over {len(sampler.workers)} "
+              "worker processes (a fresh pool every 25 series per worker)")
+    self_max = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024
+    child_max = resource.getrusage(resource.RUSAGE_CHILDREN).ru_maxrss / 1024
+    print(f"ru_maxrss: main {self_max:.0f} MiB, largest finished child {child_max:.0f} MiB")
+
+
+def sample_series(n: int = 8) -> list[Path]:
+    day = REPO / "sample_volumes" / "fernhollow" / "20240611"
+    folders = sorted(p for p in day.iterdir() if p.is_dir())[:n]
+    if len(folders) < n:
+        raise SystemExit(f"expected {n} committed sample series in {day}, found {len(folders)}")
+    return folders
+
+
+def throughput_run(figures: bool, work: Path) -> None:
+    inputs = work / "eight"
+    for folder in sample_series(8):
+        shutil.copytree(folder, inputs / folder.name)
+    times = {}
+    for workers in (1, 2):
+        t0 = time.perf_counter()
+        outcome = _check(inputs, work / f"eight_out_{workers}", workers, figures)
+        times[workers] = time.perf_counter() - t0
+        print(f"8 sample series, {workers} worker(s): {times[workers]:.1f} s, "
+              f"{sum(r['status'] == 'ok' for r in outcome.document['series'])} ok")
+    print(f"throughput ratio 2 workers / 1 worker: {times[1] / times[2]:.2f} (target >= 1.8)")
+
+
+def main(argv: list[str] | None = None) -> None:
+    p = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    p.add_argument("--series", type=int, default=200)
+    p.add_argument("--figures", action="store_true", help="draw the per-series figures too")
+    p.add_argument("--skip-memory", action="store_true")
+    p.add_argument("--skip-throughput", action="store_true")
+    args = p.parse_args(argv)
+    with tempfile.TemporaryDirectory(prefix="reconaudit-bench-batch-") as tmp:
+        work = Path(tmp)
+        if not args.skip_memory:
+            memory_run(args.series, args.figures, work)
+        if not args.skip_throughput:
+            throughput_run(args.figures, work)
+
+
+if __name__ == "__main__":
+    main()
