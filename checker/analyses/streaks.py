@@ -406,8 +406,18 @@ def smooth_box2(values: np.ndarray, sigma_px: float) -> np.ndarray:
     does not grow with the width, unlike a sampled Gaussian.
     """
     width = max(1, int(round(math.sqrt(6.0 * sigma_px * sigma_px + 1.0))))
-    out = ndimage.uniform_filter(values, width, mode="constant")
-    return ndimage.uniform_filter(out, width, mode="constant")
+    if width == 1:
+        return values.copy()
+    # Both passes along x, then both along y on a transposed copy (filters along the
+    # contiguous axis are the fast ones); the same sums as two 2-D box passes.
+    out = _box_rows_twice(values, width)
+    out = _box_rows_twice(np.ascontiguousarray(out.T), width)
+    return np.ascontiguousarray(out.T)
+
+
+def _box_rows_twice(values: np.ndarray, width: int) -> np.ndarray:
+    out = ndimage.uniform_filter1d(values, width, axis=-1, mode="constant")
+    return ndimage.uniform_filter1d(out, width, axis=-1, mode="constant", output=out)
 
 
 def local_noise_gain(residual: np.ndarray, weight: np.ndarray, scale_hu: float, sigma_px: float) -> np.ndarray:
@@ -449,7 +459,7 @@ def slice_texture(image: np.ndarray, allowed: np.ndarray, cfg: dict[str, Any]) -
         return None
     img = image
     if not finite.all() or not allowed.all():
-        fill = float(np.median(image[valid]))
+        fill = float(np.median(image[valid], overwrite_input=True))
         img = np.where(valid, image, np.float32(fill)).astype(np.float32, copy=False)
     sigma = float(cfg["highpass_sigma_px"])
     smoothed = gaussian_blur(img, sigma, 3.0)
@@ -461,7 +471,7 @@ def slice_texture(image: np.ndarray, allowed: np.ndarray, cfg: dict[str, Any]) -
         return None
     values = residual[inside]
     sample = np.abs(values[:: max(1, values.size // 20000)])
-    scale = 1.4826 * float(np.median(sample))
+    scale = 1.4826 * float(np.median(sample, overwrite_input=True))
     if not scale > 0 or not math.isfinite(scale):
         return None
     limit = np.float32(cfg["clip_sigma"] * scale)

@@ -343,3 +343,17 @@ def test_gaussian_blur_equals_scipy_up_to_float32_rounding(shape, sigma, truncat
     got = streaks.gaussian_blur(image, sigma, truncate)
     assert got.dtype == np.float32 and got.shape == image.shape
     assert np.max(np.abs(got - expected)) <= 1e-5 * np.max(np.abs(image))
+
+
+@pytest.mark.parametrize("shape", [(64, 64), (40, 33), (5, 7)])
+@pytest.mark.parametrize("sigma", [10.0, 3.0, 0.1])
+def test_smooth_box2_equals_two_2d_box_passes(shape, sigma):
+    """Row passes then column passes give the sums of two zero-padded 2-D box passes."""
+    from scipy import ndimage
+
+    values = (np.random.default_rng(6).normal(size=shape) ** 2).astype(np.float32)
+    width = max(1, int(round(math.sqrt(6.0 * sigma * sigma + 1.0))))
+    expected = ndimage.uniform_filter(ndimage.uniform_filter(values, width, mode="constant"), width, mode="constant")
+    got = streaks.smooth_box2(values, sigma)
+    assert got.shape == shape and got.dtype == np.float32
+    assert np.max(np.abs(got - expected)) <= 1e-6 * np.max(np.abs(expected))
