@@ -13,7 +13,7 @@ import warnings
 
 import numpy as np
 import pytest
-from hypothesis import HealthCheck, Phase, given, settings
+from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
 from reconaudit.checker import analyses
@@ -96,8 +96,7 @@ def test_regions_result_or_typed_error(volume):
         assert regions.fov.shape == volume.shape[1:]
 
 
-@settings(max_examples=15, deadline=None, suppress_health_check=[HealthCheck.too_slow], derandomize=True,
-          phases=[Phase.explicit, Phase.generate])
+@settings(max_examples=15, deadline=None, suppress_health_check=[HealthCheck.too_slow], derandomize=True)
 @given(test=volumes(), same_grid=st.booleans(), seed=st.integers(0, 1000))
 def test_compare_result_or_typed_error(test, same_grid, seed):
     compare = pytest.importorskip("reconaudit.checker.analyses.compare")
