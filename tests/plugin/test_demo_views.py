@@ -65,7 +65,6 @@ def caution_is_visible(panel: AuditBench) -> bool:
     return label.isVisible() and not label.visibleRegion().isEmpty()
 
 
-@pytest.mark.skipif(not (SERIES / "torso_air_structure").is_dir(), reason="demo series not committed")
 def test_air_structure_series(make_napari_viewer, qtbot):
     """The +30 HU structure documented at LPS x = +45, y = -118 mm (slices 4-9) is labelled and flagged."""
     viewer, panel = open_series(make_napari_viewer, "torso_air_structure")
@@ -92,7 +91,6 @@ def test_air_structure_series(make_napari_viewer, qtbot):
     screenshot(viewer, qtbot, "demo_torso_air_structure.png")
 
 
-@pytest.mark.skipif(not (SERIES / "torso_limited_angle").is_dir(), reason="demo series not committed")
 def test_limited_angle_series(make_napari_viewer, qtbot):
     """Streak lines lie on the image, one summary row per slice with lines, curves labelled."""
     viewer, panel = open_series(make_napari_viewer, "torso_limited_angle")
