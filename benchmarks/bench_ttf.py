@@ -14,7 +14,6 @@ from __future__ import annotations
 
 import argparse
 import sys
-import tempfile
 import time
 from pathlib import Path
 
@@ -24,6 +23,9 @@ from scipy import ndimage
 from reconaudit.checker.analyses import ttf
 from reconaudit.checker.regions import find_regions
 from reconaudit.checker.volume import Volume
+
+sys.path.insert(0, str(Path(__file__).resolve().parent))
+import harness  # noqa: E402  (benchmarks/ is not a package)
 
 RODS_HU = (-1000.0, -100.0, 120.0, 340.0, 900.0)
 
@@ -48,33 +50,8 @@ def make_phantom(nz: int, n: int = 512, pixel_mm: float = 0.45, seed: int = 11) 
 
 
 def read_time_s(volume: Volume) -> tuple[float, str]:
-    """Seconds to read the series; from the harness when available."""
-    here = Path(__file__).resolve().parent
-    sys.path.insert(0, str(here))
-    try:
-        import harness  # type: ignore[import-not-found]
-
-        if hasattr(harness, "read_limit"):
-            return float(harness.read_limit(volume)), "benchmarks/harness.py read_limit"
-    except Exception as exc:  # the harness is optional; report and fall back
-        print(f"harness read_limit unavailable ({exc!r}); timing a DICOM read instead")
-    return _dicom_read_time(volume), "pydicom read of the written series"
-
-
-def _dicom_read_time(volume: Volume) -> float:
-    import pydicom
-
-    from reconaudit.checker.dicom_write import write_ct_series
-
-    with tempfile.TemporaryDirectory() as tmp:
-        files = write_ct_series(volume, tmp, series_description="BENCH TTF RODS")
-        t0 = time.perf_counter()
-        slices = []
-        for f in files:
-            ds = pydicom.dcmread(f)
-            slices.append(ds.pixel_array.astype(np.float32) * float(ds.RescaleSlope) + float(ds.RescaleIntercept))
-        np.stack(slices)
-        return time.perf_counter() - t0
+    """Seconds to read the series as DICOM (benchmarks/harness.py read_limit)."""
+    return float(harness.read_limit(volume)), "benchmarks/harness.py read_limit"
 
 
 def main() -> None:
