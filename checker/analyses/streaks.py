@@ -1089,7 +1089,9 @@ def summarise(volume: Volume, regions: Regions | None, screen: Screen, cfg: dict
     overlays = Overlays(maps={"streak_strength": np.zeros(volume.shape, dtype=np.float32)})
     pair_lines: list[dict[str, Any]] = []
     if flagged_slices:
-        per_slice = {z: dense_pair_lines(bin_slice(volume.hu[z], screen.factor), cfg) for z in flagged_slices}
+        found = map_slices(lambda i: dense_pair_lines(bin_slice(volume.hu[flagged_slices[i]], screen.factor), cfg),
+                           len(flagged_slices), SCREEN_THREADS)
+        per_slice = dict(zip(flagged_slices, found))
         pair_lines = pool_pair_lines({z: v for z, v in per_slice.items() if v})
         flagged_mean = np.mean([screen.profiles[z] for z in flagged_slices], axis=0)
         angles = dominant_angles(flagged_mean, wedge, cfg, [p["angle_deg"] for p in pair_lines])
@@ -1114,18 +1116,28 @@ def summarise(volume: Volume, regions: Regions | None, screen: Screen, cfg: dict
 
 
 def localise(volume: Volume, regions: Regions | None, screen: Screen, flagged: list[int], wedge: dict[str, float] | None, cfg: dict[str, Any], overlays: Overlays, pair_lines: dict[int, list[tuple[float, float]]] | None = None) -> None:
-    """Streak map and segments on the flagged slices (the strongest ones first, capped)."""
+    """Streak map and segments on the flagged slices (the strongest ones first, capped).
+
+    The slices are localised by :data:`SCREEN_THREADS` threads; overlays are written in
+    slice order afterwards, so they do not depend on the thread count.
+    """
     bins = spectral_bins(screen.shape_b, tuple(float(v) for v in cfg["band_cycles_per_px"]), float(cfg["angle_bin_deg"]))
     order = sorted(flagged, key=lambda z: -screen.indices[z])[: int(cfg["max_localised_slices"])]
     f = screen.factor
     ny, nx = volume.shape[1:]
-    for z in sorted(order):
-        allowed = allowed_mask(regions, z, f, screen.shape_b, cfg)
-        texture = slice_texture(bin_slice(volume.hu[z], f), allowed, cfg)
+    chosen = sorted(order)
+
+    def one(i: int) -> SliceStreaks | None:
+        z = chosen[i]
+        texture = slice_texture(bin_slice(volume.hu[z], f), allowed_mask(regions, z, f, screen.shape_b, cfg), cfg)
         if texture is None:
-            continue
+            return None
         angles = dominant_angles(screen.profiles[z], wedge, cfg, [a for a, _ in (pair_lines or {}).get(z, [])])
-        found = localise_slice(texture, bins, angles, cfg)
+        return localise_slice(texture, bins, angles, cfg)
+
+    for z, found in zip(chosen, map_slices(one, len(chosen), SCREEN_THREADS)):
+        if found is None:
+            continue
         full = np.repeat(np.repeat(found.strength, f, axis=0), f, axis=1)
         overlays.maps["streak_strength"][z, : full.shape[0], : full.shape[1]] = full[:ny, :nx]
         for angle, (y0, x0), (y1, x1), zscore in found.lines:

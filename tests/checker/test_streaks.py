@@ -318,18 +318,24 @@ def test_mask_helpers_equal_their_filter_definitions():
 
 
 def test_screen_does_not_depend_on_thread_count(monkeypatch):
-    """Threads only share the slices out: one thread and two give the same record."""
+    """Threads only share the slices out: one thread and two give the same record and overlays."""
     rng = np.random.default_rng(2)
     hu = np.stack([line_image(30.0 + 20 * k, n=96, seed=k) for k in range(5)])
     hu[2] = 7.0  # a constant slice is skipped in both
     hu += rng.normal(0.0, 1.0, hu.shape).astype(np.float32)
     hu[2] = 7.0
-    records = []
+    records, segments, maps = [], [], []
     for threads in (1, 2):
         monkeypatch.setattr(streaks, "SCREEN_THREADS", threads)
-        records.append(analyse(hu).record)
+        res = analyse(hu)
+        records.append(res.record)
+        segments.append(res.overlays.segments)
+        maps.append(res.overlays.maps["streak_strength"])
     assert records[0] == records[1]
     assert records[0]["slice_index"][2] is None
+    assert records[0]["flagged"] and segments[0]  # the localisation ran on both
+    assert segments[0] == segments[1]
+    assert np.array_equal(maps[0], maps[1])
 
 
 @pytest.mark.parametrize("shape", [(64, 64), (7, 90), (3, 5)])
