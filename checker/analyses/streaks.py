@@ -773,7 +773,7 @@ def localise_slice(texture: SliceTexture, bins: SpectralBins, angles: list[float
     smooth_px = max(2.0, 2.0 * float(cfg["highpass_sigma_px"]))
     for angle in angles:
         comp, expected = directional_component(texture, bins, angle, float(cfg["direction_window_deg"]))
-        local = np.sqrt(ndimage.gaussian_filter(comp * comp, smooth_px, truncate=3.0) / expected)
+        local = np.sqrt(gaussian_blur(comp * comp, smooth_px, 3.0) / np.float32(expected))
         np.maximum(strength, local * texture.weight, out=strength)
         lines += lines_at_angle(comp, texture.weight, angle, cfg)
     lines.sort(key=lambda ln: -ln[3])
@@ -790,10 +790,19 @@ def line_frame(shape: tuple[int, int], angle_deg: float) -> tuple[np.ndarray, np
     u = np.array([-math.sin(a), math.cos(a)])
     n = np.array([math.cos(a), math.sin(a)])
     cy, cx = (shape[0] - 1) / 2.0, (shape[1] - 1) / 2.0
-    yy, xx = np.mgrid[0 : shape[0], 0 : shape[1]].astype(np.float32)
-    yy -= cy
-    xx -= cx
+    yy, xx = centred_grid(tuple(shape))
     return yy * n[0] + xx * n[1], yy * u[0] + xx * u[1], u, n, (cy, cx)
+
+
+@functools.lru_cache(maxsize=4)
+def centred_grid(shape: tuple[int, int]) -> tuple[np.ndarray, np.ndarray]:
+    """Row and column offsets (float32) of every pixel from the centre of ``shape`` (read-only, cached)."""
+    yy, xx = np.mgrid[0 : shape[0], 0 : shape[1]].astype(np.float32)
+    yy -= np.float32((shape[0] - 1) / 2.0)
+    xx -= np.float32((shape[1] - 1) / 2.0)
+    yy.flags.writeable = False
+    xx.flags.writeable = False
+    return yy, xx
 
 
 def lines_at_angle(comp: np.ndarray, weight: np.ndarray, angle_deg: float, cfg: dict[str, Any]) -> list:
