@@ -316,10 +316,15 @@ def strong_edges(smoothed: np.ndarray, step_hu: float, sigma_px: float) -> np.nd
     """
     gy = np.zeros_like(smoothed)
     gx = np.zeros_like(smoothed)
-    gy[1:-1] = 0.5 * (smoothed[2:] - smoothed[:-2])
-    gx[:, 1:-1] = 0.5 * (smoothed[:, 2:] - smoothed[:, :-2])
+    np.subtract(smoothed[2:], smoothed[:-2], out=gy[1:-1])
+    np.subtract(smoothed[:, 2:], smoothed[:, :-2], out=gx[:, 1:-1])
+    gy *= 0.5
+    gx *= 0.5
+    gy *= gy
+    gx *= gx
+    gy += gx  # squared gradient magnitude
     threshold = step_hu / (max(sigma_px, 0.5) * math.sqrt(2.0 * math.pi))
-    return gy * gy + gx * gx > threshold * threshold
+    return gy > threshold * threshold
 
 
 def grow(mask: np.ndarray, radius_px: int) -> np.ndarray:
@@ -397,9 +402,12 @@ def soft_weight(bad: np.ndarray, reach_px: float) -> np.ndarray:
     """
     if not bad.any():
         return np.ones(bad.shape, dtype=np.float32)
-    blur = gaussian_blur(bad.astype(np.float32), 0.5 * reach_px, 2.5)
-    w = np.clip(1.0 - blur * np.float32(20.0), 0.0, 1.0)
-    return w * w
+    w = gaussian_blur(bad.astype(np.float32), 0.5 * reach_px, 2.5)
+    w *= np.float32(-20.0)
+    w += np.float32(1.0)  # 1 - 20 blur
+    np.clip(w, 0.0, 1.0, out=w)
+    w *= w
+    return w
 
 
 def smooth_box2(values: np.ndarray, sigma_px: float) -> np.ndarray:
