@@ -49,6 +49,17 @@ class SeriesTask:
     baselines: dict[str, dict[str, Any]] = field(default_factory=dict)
     include_identifiers: bool = False
     figures: bool = True
+    #: threads an analysis may use inside this worker (0: the analyses' own default);
+    #: 1 when several worker processes already share the cores
+    threads: int = 0
+
+
+def _limit_threads(n: int) -> None:
+    """Keep the analyses that use threads to ``n`` in this process."""
+    if n > 0:
+        from .analyses import streaks
+
+        streaks.SCREEN_THREADS = n
 
 
 def series_id_for(description: str, key: str) -> str:
@@ -277,6 +288,7 @@ def run_dask(tasks: list[SeriesTask], on_done: Callable[[dict[str, Any]], None],
 def _safe_run(task: SeriesTask) -> dict[str, Any]:
     """run_series, turning any unexpected exception into an error record."""
     try:
+        _limit_threads(task.threads)
         return run_series(task)
     except Exception as exc:
         log.debug("%s failed:\n%s", task.series_id, traceback.format_exc())

@@ -190,6 +190,8 @@ def check(opts: CheckOptions, progress_factory: Callable[[int], Any] | None = No
         records[rec["id"]] = rec
     ids = _unique_ids(found.series)
     tasks, skipped = [], []
+    workers = opts.workers or default_workers()
+    threads = 1 if (opts.scheduler or workers > 1) else 0
     digest = profile.digest()
     for src in found.series:
         sid = ids[src.key]
@@ -205,7 +207,7 @@ def check(opts: CheckOptions, progress_factory: Callable[[int], Any] | None = No
             continue
         tasks.append(SeriesTask(series_id=sid, source=src, content_hash=content, out_dir=str(out_dir),
                                 profile=profile, baselines=baselines, include_identifiers=opts.include_identifiers,
-                                figures=opts.figures))
+                                figures=opts.figures, threads=threads))
 
     progress = progress_factory(len(tasks)) if progress_factory else None
 
@@ -221,7 +223,7 @@ def check(opts: CheckOptions, progress_factory: Callable[[int], Any] | None = No
     if opts.scheduler:
         run_dask(tasks, on_done, address=opts.scheduler)
     else:
-        run_local(tasks, on_done, workers=opts.workers or default_workers())
+        run_local(tasks, on_done, workers=workers)
 
     doc = _document(records, profile, skipped, started)
     trends = _trend_figures(history, list(records.values()), out_dir) if history else None
