@@ -1,6 +1,7 @@
 """Loading one DICOM CT series (classic single-frame or Enhanced CT multi-frame)."""
 from __future__ import annotations
 
+import math
 from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
@@ -268,6 +269,25 @@ def _same_mask(a: np.ndarray | None, b: np.ndarray | None) -> bool:
     return bool(np.array_equal(a, b))
 
 
+def _padding_mask(stored: np.ndarray, pad: tuple[float, float]) -> np.ndarray | None:
+    """Pixels of ``stored`` whose stored value lies in ``pad`` (DICOM PS3.3 C.7.5.1.1.2).
+
+    Integer pixels are compared in their own type (no float64 temporary); a padding range
+    outside the type's range marks nothing (None).
+    """
+    lo, hi = pad
+    if not np.issubdtype(stored.dtype, np.integer):
+        return (stored == lo) if lo == hi else (stored >= lo) & (stored <= hi)
+    info = np.iinfo(stored.dtype)
+    first, last = max(math.ceil(lo), info.min), min(math.floor(hi), info.max)
+    if first > last:
+        return None
+    kind = stored.dtype.type
+    if first == last:
+        return stored == kind(first)
+    return (stored >= kind(first)) & (stored <= kind(last))
+
+
 class _PaddingTracker:
     """Keeps the padding mask while slices are filled; tells whether it is the same everywhere."""
 
@@ -281,8 +301,8 @@ class _PaddingTracker:
         if pad is None:
             mask = None
         else:
-            mask = (stored == pad[0]) if pad[0] == pad[1] else (stored >= pad[0]) & (stored <= pad[1])
-            if mask.any():
+            mask = _padding_mask(stored, pad)
+            if mask is not None and mask.any():
                 self.hu_values.add(round(pad[0] * slope + intercept, 3))
             else:
                 mask = None

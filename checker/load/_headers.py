@@ -85,7 +85,7 @@ def read_header(path: Path) -> Dataset:
 
 
 def read_dataset(path: Path) -> Dataset:
-    """The whole header; pixel data stay on disk (deferred) until used.
+    """The whole file, pixel data included, in one read (no deferred second open).
 
     Raises
     ------
@@ -93,7 +93,7 @@ def read_dataset(path: Path) -> Dataset:
         The file cannot be opened or parsed as DICOM.
     """
     try:
-        return _dcmread(path, defer_size=DEFER_SIZE)
+        return _dcmread(path)
     except UnreadableFileError:
         raise
     except Exception as exc:
