@@ -618,6 +618,15 @@ def hysteresis_structures(m: ScaleMap, grow_sigma: float) -> tuple[np.ndarray, d
     return out, snr
 
 
+def scaled_box(sl: tuple[slice, ...], factors: tuple[int, ...], shape: tuple[int, ...]) -> tuple[slice, ...]:
+    """The box ``sl`` of a coarse grid on a grid ``factors`` times finer, clipped to ``shape``.
+
+    A nearest-neighbour enlargement (:func:`_upsample`) of what lies in ``sl`` lies exactly
+    in the returned box, and a label's tight box enlarges to the label's tight box there.
+    """
+    return tuple(slice(x.start * f, min(x.stop * f, n)) for x, f, n in zip(sl, factors, shape))
+
+
 def combine_scales(
     maps: list[ScaleMap], grow_sigma: float, well_measured_snr: float = 10.0
 ) -> tuple[np.ndarray, tuple[int, int, int]]:
@@ -638,12 +647,13 @@ def combine_scales(
         if not snr:
             continue
         rel = tuple(a // b for a, b in zip(m.factors, base))
-        if rel != (1, 1, 1):
-            level = _upsample(level, rel, shape0)
-        for lbl, sl in enumerate(ndimage.find_objects(level), start=1):
-            if sl is None:
+        for lbl, csl in enumerate(ndimage.find_objects(level), start=1):
+            if csl is None:
                 continue
-            region = level[sl] == lbl
+            sl = scaled_box(csl, rel, shape0)
+            region = level[csl] == lbl
+            if rel != (1, 1, 1):
+                region = _upsample(region, rel, tuple(x.stop - x.start for x in sl))
             existing = np.unique(combined[sl][region])
             existing = existing[existing > 0]
             if existing.size and any(quality[int(e)] >= well_measured_snr for e in existing):
@@ -756,12 +766,45 @@ def describe(st: dict[str, Any], body_centre_mm: np.ndarray | None) -> str:
     )
 
 
+def tight_boxes(labels: np.ndarray, n: int, outer: list[tuple[slice, ...] | None]) -> list[tuple[slice, ...] | None]:
+    """Bounding box of each label 1..n of ``labels``, searched only inside its ``outer`` box.
+
+    Equals ``ndimage.find_objects(labels, max_label=n)`` when every label lies inside its
+    outer box (None for a label absent there), without a pass over the whole array.
+    """
+    out: list[tuple[slice, ...] | None] = []
+    for i, box in enumerate(outer[:n], start=1):
+        comp = labels[box] == i if box is not None else None
+        if comp is None or not comp.any():
+            out.append(None)
+            continue
+        tight = []
+        for axis, x in enumerate(box):
+            hit = np.flatnonzero(comp.any(axis=tuple(a for a in range(comp.ndim) if a != axis)))
+            tight.append(slice(x.start + int(hit[0]), x.start + int(hit[-1]) + 1))
+        out.append(tuple(tight))
+    out.extend([None] * (n - len(out)))
+    return out
+
+
 def measure_structures(
-    volume: Volume, labels: np.ndarray, n: int, air_mean: float, noise: float, ctx: Context, s: dict[str, Any]
+    volume: Volume,
+    labels: np.ndarray,
+    n: int,
+    air_mean: float,
+    noise: float,
+    ctx: Context,
+    s: dict[str, Any],
+    objects: list[tuple[slice, ...] | None] | None = None,
 ) -> list[dict[str, Any]]:
-    """The per-structure record (id, position, size, CT numbers, kind, flagged)."""
+    """The per-structure record (id, position, size, CT numbers, kind, flagged).
+
+    ``objects``: the bounding box of each label (as ``ndimage.find_objects``), found when
+    not given.
+    """
     out = []
-    objects = ndimage.find_objects(labels, max_label=n)
+    if objects is None:
+        objects = ndimage.find_objects(labels, max_label=n)
     vox = volume.voxel_volume_mm3
     for i, sl in enumerate(objects, start=1):
         if sl is None:
@@ -904,7 +947,10 @@ def analyse(volume: Volume, regions: Regions, settings: dict[str, Any] | None = 
         del maps
         full, n = full_resolution_labels(mask0, base, air)
         if n:
-            structures = measure_structures(volume, full, n, mean, noise, ctx, s)
+            outer = [None if b is None else scaled_box(b, base, full.shape) for b in ndimage.find_objects(mask0, max_label=n)]
+            del mask0
+            objects = tight_boxes(full, n, outer)
+            structures = measure_structures(volume, full, n, mean, noise, ctx, s, objects)
             structures = _limit(structures, int(s["max_structures"]))
             labels = _renumber(full, structures, n) if structures else None
 
