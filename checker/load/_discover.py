@@ -5,14 +5,13 @@ import os
 import stat
 from collections import defaultdict
 from pathlib import Path
-from typing import Sequence
+from typing import Any, Sequence
 
 import numpy as np
-from pydicom.dataset import Dataset
 
 from ..errors import ReconauditError, UnreadableFileError
 from ._geometry import DUPLICATE_TOL_MM, LINE_TOL_MM, orientation_groups
-from ._headers import as_floats, read_header
+from ._headers import as_floats, header_facts, read_header, scan_header
 from ._images import image_series_uid
 from ._types import Discovery, FileProblem, SeriesSource
 
@@ -77,13 +76,14 @@ def _not_regular_file(path: Path) -> UnreadableFileError | None:
 
 # --------------------------------------------------------------------------- stacks
 class _Header:
-    """The discovery facts of one DICOM file."""
+    """The discovery facts of one DICOM file (``ds``: keyword -> text, see scan_header)."""
 
-    __slots__ = ("path", "ds", "iop", "ipp")
+    __slots__ = ("path", "ds", "iop", "ipp", "scanned")
 
-    def __init__(self, path: Path, ds: Dataset):
+    def __init__(self, path: Path, ds: dict[str, Any], scanned: bool = False):
         self.path = path
         self.ds = ds
+        self.scanned = scanned
         self.iop = as_floats(ds.get("ImageOrientationPatient"), 6)
         self.ipp = as_floats(ds.get("ImagePositionPatient"), 3)
 
@@ -231,21 +231,47 @@ def discover(inputs: Sequence[str | Path]) -> Discovery:
         elif kind == "dicom":
             _collect_header(path, by_uid, problems)
     for uid, headers in by_uid.items():
-        series.extend(_dicom_series(uid, headers))
+        series.extend(_dicom_series(uid, _checked_scan(headers)))
     series.sort(key=lambda s: (s.source, s.key))
     return Discovery(series=series, problems=problems)
 
 
 def _collect_header(path: Path, by_uid: dict[str, list[_Header]], problems: list[FileProblem]) -> None:
-    try:
-        ds = read_header(path)
-    except ReconauditError as err:
-        problems.append(FileProblem(str(path), err))
-        return
+    ds = scan_header(path)
+    scanned = ds is not None
+    if ds is None:
+        try:
+            ds = header_facts(read_header(path))
+        except ReconauditError as err:
+            problems.append(FileProblem(str(path), err))
+            return
     if "DirectoryRecordSequence" in ds:
         return  # a DICOMDIR index under another name
     uid = str(ds.get("SeriesInstanceUID", "") or "")
     if not uid:
         problems.append(FileProblem(str(path), UnreadableFileError("DICOM file without SeriesInstanceUID", source=str(path))))
         return
-    by_uid[uid].append(_Header(path, ds))
+    by_uid[uid].append(_Header(path, ds, scanned))
+
+
+def _checked_scan(headers: list[_Header]) -> list[_Header]:
+    """Cross-check the quick header scan against pydicom once per series.
+
+    The first quickly scanned file of the series is read again with pydicom; when the
+    facts differ, every quickly scanned file of the series is read with pydicom instead.
+    """
+    scanned = [h for h in headers if h.scanned]
+    if not scanned:
+        return headers
+    try:
+        if header_facts(read_header(scanned[0].path)) == scanned[0].ds:
+            return headers
+    except ReconauditError:
+        pass
+    out = []
+    for h in headers:
+        try:
+            out.append(_Header(h.path, header_facts(read_header(h.path))) if h.scanned else h)
+        except ReconauditError:
+            out.append(h)
+    return out

@@ -1,6 +1,7 @@
 """Reading DICOM headers and checking what kind of object a file holds."""
 from __future__ import annotations
 
+import struct
 from pathlib import Path
 from typing import Any
 
@@ -42,7 +43,29 @@ DISCOVERY_TAGS = [
 #: Deferred reading: values larger than this stay on disk until they are used.
 DEFER_SIZE = "64 KB"
 
+#: Tags the quick header scan keeps: (group, element) -> keyword (DICOM PS3.6).
+SCAN_TAGS = {
+    (0x0004, 0x1220): "DirectoryRecordSequence",
+    (0x0008, 0x0008): "ImageType",
+    (0x0008, 0x0016): "SOPClassUID",
+    (0x0008, 0x0032): "AcquisitionTime",
+    (0x0008, 0x0060): "Modality",
+    (0x0008, 0x103E): "SeriesDescription",
+    (0x0018, 0x1210): "ConvolutionKernel",
+    (0x0020, 0x000E): "SeriesInstanceUID",
+    (0x0020, 0x0012): "AcquisitionNumber",
+    (0x0020, 0x0032): "ImagePositionPatient",
+    (0x0020, 0x0037): "ImageOrientationPatient",
+    (0x0020, 0x0100): "TemporalPositionIdentifier",
+}
+#: Explicit VR encodings with a 2-byte reserved field and a 4-byte length (PS3.5 7.1.2).
+LONG_VRS = frozenset({b"OB", b"OD", b"OF", b"OL", b"OV", b"OW", b"SQ", b"SV", b"UC", b"UN", b"UR", b"UT", b"UV"})
+EXPLICIT_VR_LITTLE_ENDIAN = "1.2.840.10008.1.2.1"
+SCAN_BYTES = 32768
+
 __all__ = [
+    "scan_header",
+    "header_facts",
     "read_header",
     "read_dataset",
     "sop_class_name",
@@ -82,6 +105,113 @@ def read_header(path: Path) -> Dataset:
         raise
     except Exception as exc:  # pydicom raises many types on damaged files
         raise UnreadableFileError(f"cannot read DICOM header ({type(exc).__name__}: {exc})", source=str(path)) from exc
+
+
+def _text_value(raw: bytes) -> str | list[str] | None:
+    """An ASCII text value split at backslashes; None when not plain ASCII."""
+    try:
+        text = raw.decode("ascii")
+    except UnicodeDecodeError:
+        return None
+    parts = [v.strip(" \x00") for v in text.split("\\")]
+    return parts[0] if len(parts) == 1 else parts
+
+
+def _scan_elements(buf: bytes, pos: int, stop_group: int) -> tuple[dict[tuple[int, int], bytes], int] | None:
+    """Explicit VR little endian elements from ``pos`` until PixelData, ``stop_group`` or the end.
+
+    Returns the values of the tags wanted and where scanning ended, or None when the
+    buffer ends inside an element or an element has undefined length.
+    """
+    found: dict[tuple[int, int], bytes] = {}
+    end = len(buf)
+    while pos + 8 <= end:
+        group, elem = struct.unpack_from("<HH", buf, pos)
+        if group >= stop_group or (group, elem) == (0x7FE0, 0x0010):
+            return found, pos
+        vr = buf[pos + 4:pos + 6]
+        if not (vr.isalpha() and vr.isupper()):
+            return None  # not explicit VR after all
+        if vr in LONG_VRS:
+            if pos + 12 > end:
+                return None
+            (length,), start = struct.unpack_from("<I", buf, pos + 8), pos + 12
+        else:
+            (length,), start = struct.unpack_from("<H", buf, pos + 6), pos + 8
+        if length == 0xFFFFFFFF or start + length > end:
+            return None
+        if (group, elem) in SCAN_TAGS or group == 0x0002:
+            found[(group, elem)] = buf[start:start + length]
+        pos = start + length
+    return (found, pos) if pos == end else None
+
+
+def scan_header(path: Path) -> dict[str, Any] | None:
+    """The discovery facts of a plain file, parsed directly; None when pydicom must decide.
+
+    Handles the common case only: a Part 10 file (preamble, "DICM", meta group) in
+    Explicit VR Little Endian with defined lengths, plain ASCII text and the header
+    within the first ``SCAN_BYTES`` (or the whole file). Everything else returns None
+    so that :func:`read_header` reads it.
+
+    Returns
+    -------
+    dict or None
+        Keyword -> text (multi-valued text as a list), as :func:`header_facts` gives.
+
+    References
+    ----------
+    DICOM PS3.10, 7.1 (preamble, prefix, File Meta Information); PS3.5, 7.1.2 (data
+    element structure with explicit VR).
+    """
+    try:
+        with open(path, "rb") as fh:
+            buf = fh.read(SCAN_BYTES)
+            whole = len(buf) < SCAN_BYTES or fh.read(1) == b""
+    except OSError:
+        return None
+    if len(buf) < 132 or buf[128:132] != b"DICM":
+        return None
+    meta = _scan_elements(buf, 132, 0x0003)
+    if meta is None:
+        return None
+    ts = _text_value(meta[0].get((0x0002, 0x0010), b""))
+    if ts != EXPLICIT_VR_LITTLE_ENDIAN:
+        return None
+    body = _scan_elements(buf, meta[1], 0xFFFF)
+    if body is None or (not whole and body[1] >= len(buf)):
+        return None
+    facts: dict[str, Any] = {}
+    for tag, raw in body[0].items():
+        if tag[0] == 0x0002:
+            return None  # meta elements again inside the data set: unusual, let pydicom read it
+        name = SCAN_TAGS[tag]
+        value = True if name == "DirectoryRecordSequence" else _text_value(raw)
+        if value is None:
+            return None
+        if value != "":
+            facts[name] = value
+    return facts
+
+
+def header_facts(ds: Dataset) -> dict[str, Any]:
+    """The discovery facts of a pydicom header in the form :func:`scan_header` gives."""
+    facts: dict[str, Any] = {}
+    for name in SCAN_TAGS.values():
+        if name not in ds:
+            continue
+        if name == "DirectoryRecordSequence":
+            facts[name] = True
+            continue
+        value = ds[name].value
+        if isinstance(value, (list, tuple, pydicom.multival.MultiValue)):
+            value = [str(v) for v in value]
+            value = value[0] if len(value) == 1 else value
+        elif value is not None:
+            value = str(value).strip(" \x00")
+        if value not in (None, "", []):
+            facts[name] = value
+    return facts
 
 
 def read_dataset(path: Path) -> Dataset:
