@@ -7,6 +7,7 @@ from pathlib import Path
 from typing import Any
 
 import numpy as np
+from pydicom.dataelem import RawDataElement
 from pydicom.dataset import Dataset
 from pydicom.uid import UID, ExplicitVRLittleEndian, ImplicitVRLittleEndian
 
@@ -76,15 +77,37 @@ def _rescale(item: Any) -> tuple[float, float, bool]:
     return slope, intercept, True
 
 
+def _decimal_strings(ds: Dataset, name: str) -> Any:
+    """A DS/IS value as a list of text numbers straight from the raw bytes, else pydicom's value.
+
+    Decimal and integer strings are ASCII text in every transfer syntax (DICOM PS3.5,
+    6.2), so an unconverted element is split here instead of being converted by pydicom.
+    """
+    elem = ds.get_item(name)
+    if elem is None:
+        return None
+    if isinstance(elem, RawDataElement) and isinstance(elem.value, bytes) and elem.VR in (None, "DS", "IS"):
+        try:
+            parts = [v.strip(" \x00") for v in elem.value.decode("ascii").split("\\")]
+        except UnicodeDecodeError:
+            return ds.get(name)
+        return None if parts == [""] else parts
+    return ds.get(name)
+
+
 def _classic_frame(ds: Dataset, i: int, path: Path) -> _Frame:
-    slope, intercept, found = _rescale(ds)
+    slope = as_float(_decimal_strings(ds, "RescaleSlope"))
+    intercept = as_float(_decimal_strings(ds, "RescaleIntercept"))
+    found = slope is not None and intercept is not None
+    if not found:
+        slope, intercept = 1.0, 0.0
     return _Frame(
         i, 0, path.name,
-        as_floats(ds.get("ImagePositionPatient"), 3),
-        as_floats(ds.get("ImageOrientationPatient"), 6),
-        as_floats(ds.get("PixelSpacing"), 2),
+        as_floats(_decimal_strings(ds, "ImagePositionPatient"), 3),
+        as_floats(_decimal_strings(ds, "ImageOrientationPatient"), 6),
+        as_floats(_decimal_strings(ds, "PixelSpacing"), 2),
         slope, intercept, found,
-        as_float(ds.get("SpacingBetweenSlices")) or as_float(ds.get("SliceThickness")),
+        as_float(_decimal_strings(ds, "SpacingBetweenSlices")) or as_float(_decimal_strings(ds, "SliceThickness")),
     )
 
 
