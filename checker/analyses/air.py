@@ -258,18 +258,23 @@ def _pad_to(a: np.ndarray, factors: tuple[int, int, int]) -> np.ndarray:
 def block_sum(a: np.ndarray, factors: tuple[int, int, int]) -> np.ndarray:
     """Sum of ``a`` over blocks of ``factors`` (z, y, x) as float32; the edges are zero-padded.
 
-    Adds one strided view per offset inside the block, so every voxel is read once.
+    Separable: the sums along one axis at a time (strided views added), so each step
+    reads its input once and the later steps work on arrays already reduced. Exact for
+    integer-valued arrays (counts); otherwise equal to any other summation order up to
+    float32 rounding.
     """
     if factors == (1, 1, 1):
         return a.astype(np.float32, copy=True)
-    a = _pad_to(a, factors)
-    fz, fy, fx = factors
-    out = np.zeros((a.shape[0] // fz, a.shape[1] // fy, a.shape[2] // fx), dtype=np.float32)
-    for oz in range(fz):
-        for oy in range(fy):
-            for ox in range(fx):
-                np.add(out, a[oz::fz, oy::fy, ox::fx], out=out, casting="unsafe")
-    return out
+    t = _pad_to(a, factors)
+    for axis, f in enumerate(factors):
+        if f == 1:
+            continue
+        parts = [t[(slice(None),) * axis + (slice(o, None, f),)] for o in range(f)]
+        acc = np.add(parts[0], parts[1], dtype=np.float32, casting="unsafe")
+        for q in parts[2:]:
+            np.add(acc, q, out=acc, casting="unsafe")
+        t = acc
+    return t if t.dtype == np.float32 else t.astype(np.float32)
 
 
 def _masked_block_sums(
