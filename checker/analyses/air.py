@@ -282,19 +282,20 @@ def _masked_block_sums(
 ) -> tuple[np.ndarray, np.ndarray]:
     """Block sums of (hu - offset) over air voxels, and block counts of air voxels.
 
-    Slice-blocked so no full-size temporary is made.
+    Slice-blocked so no full-size temporary is made; one slab buffer serves every block.
     """
     fz = factors[0]
     chunk = fz * max(1, 16 // fz)
     sums, counts = [], []
+    buf = np.empty((min(chunk, hu.shape[0]),) + hu.shape[1:], dtype=np.result_type(hu.dtype, np.float32))
     for z0 in range(0, hu.shape[0], chunk):
         a = air[z0 : z0 + chunk]
-        v = hu[z0 : z0 + chunk] - np.float32(offset)
+        v = np.subtract(hu[z0 : z0 + chunk], np.float32(offset), out=buf[: a.shape[0]])
         with np.errstate(invalid="ignore"):
             np.multiply(v, a, out=v)  # zero outside the air (bool as 0/1)
         part = block_sum(v, factors)
         if not np.isfinite(part).all():  # inf * 0 outside the air: zero by assignment instead
-            v = hu[z0 : z0 + chunk] - np.float32(offset)
+            v = np.subtract(hu[z0 : z0 + chunk], np.float32(offset), out=v)
             v[~a] = 0.0
             part = block_sum(v, factors)
         sums.append(part)
@@ -466,12 +467,25 @@ def _smoothness_resels(z: np.ndarray, valid: np.ndarray) -> float:
         lo[axis] = slice(0, -1)
         hi[axis] = slice(1, None)
         both = valid[tuple(lo)] & valid[tuple(hi)]
-        if both.sum() < 20:
+        at = _subsample_positions(both)
+        if at is None:
             continue
-        d = (z[tuple(hi)] - z[tuple(lo)])[both]
+        d = z[tuple(hi)][at] - z[tuple(lo)][at]
         var = _robust_sd(d)[1] ** 2
         fwhm *= max(1.0, math.sqrt(_FWHM_FACTOR / max(var, 1e-12)))
     return n / fwhm
+
+
+def _subsample_positions(mask: np.ndarray, min_count: int = 20, max_samples: int = 500_000) -> tuple[np.ndarray, ...] | None:
+    """Indices of the True voxels of ``mask`` that :func:`_robust_sd` would keep; None below ``min_count``.
+
+    Taking ``a[at]`` equals ``_subsample(a[mask])``, without making ``a[mask]``.
+    """
+    flat = np.flatnonzero(mask)
+    if flat.size < min_count:
+        return None
+    step = max(1, flat.size // max_samples)
+    return np.unravel_index(flat[::step], mask.shape)
 
 
 def expected_euler_characteristic(t: float, resels: float, dims: int) -> float:
@@ -692,9 +706,8 @@ def full_resolution_labels(lab0: np.ndarray, factors: tuple[int, int, int], air:
             break
         if not lab0[k].any():
             continue
-        plane = _upsample(lab0[k : k + 1], (1,) + tuple(factors[1:]), (1, ny, nx))[0]
-        out[z0:z1] = plane
-        out[z0:z1][~air[z0:z1]] = 0
+        plane = _upsample(lab0[k : k + 1], (1,) + tuple(factors[1:]), (1, ny, nx))
+        np.multiply(plane, air[z0:z1], out=out[z0:z1])  # zero outside the air
     return out, n
 
 
