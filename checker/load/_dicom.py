@@ -29,6 +29,7 @@ from ._headers import (
     check_has_pixels,
     check_is_ct,
     check_monochrome,
+    quick_get,
     read_dataset,
 )
 from ._types import SeriesSource
@@ -152,14 +153,14 @@ def _multiframe_frames(ds: Dataset, i: int, path: Path) -> list[_Frame]:
 
 
 def _frames_of(ds: Dataset, i: int, path: Path) -> list[_Frame]:
-    if str(ds.get("SOPClassUID", "")) in MULTIFRAME_CT_SOP_CLASSES or int(ds.get("NumberOfFrames", 1) or 1) > 1:
+    if str(quick_get(ds, "SOPClassUID", "")) in MULTIFRAME_CT_SOP_CLASSES or int(ds.get("NumberOfFrames", 1) or 1) > 1:
         return _multiframe_frames(ds, i, path)
     return [_classic_frame(ds, i, path)]
 
 
 # --------------------------------------------------------------------------- checks
 def _declared_bytes(ds: Dataset) -> int:
-    rows, cols = int(ds.get("Rows", 0) or 0), int(ds.get("Columns", 0) or 0)
+    rows, cols = int(quick_get(ds, "Rows", 0) or 0), int(quick_get(ds, "Columns", 0) or 0)
     frames = int(ds.get("NumberOfFrames", 1) or 1)
     return rows * cols * frames * 4
 
@@ -176,7 +177,7 @@ def _check_size(total: int, where: str, max_bytes: int, what: str) -> None:
 def _check_rows_columns(datasets: list[tuple[Path, Dataset]], label: str) -> tuple[int, int]:
     sizes: dict[tuple[int, int], str] = {}
     for path, ds in datasets:
-        sizes.setdefault((int(ds.get("Rows", 0) or 0), int(ds.get("Columns", 0) or 0)), path.name)
+        sizes.setdefault((int(quick_get(ds, "Rows", 0) or 0), int(quick_get(ds, "Columns", 0) or 0)), path.name)
     if len(sizes) > 1:
         found = ", ".join(f"{r}x{c} in {name}" for (r, c), name in sizes.items())
         raise InconsistentGeometryError(f"inconsistent Rows/Columns: {found}; expected one image size", source=label)
@@ -252,16 +253,16 @@ def _transfer_syntax(ds: Dataset) -> str:
 # --------------------------------------------------------------------------- pixels
 def _stored_frames(ds: Dataset, path: Path) -> np.ndarray:
     """Stored values (frames, rows, cols) of one file; UnreadableFileError if damaged."""
-    rows, cols = int(ds.Rows), int(ds.Columns)
+    rows, cols = int(quick_get(ds, "Rows")), int(quick_get(ds, "Columns"))
     frames = int(ds.get("NumberOfFrames", 1) or 1)
     try:
-        if _transfer_syntax(ds) in (ImplicitVRLittleEndian, ExplicitVRLittleEndian) and int(ds.BitsAllocated) == 16 \
-                and int(ds.get("BitsStored", 16)) == 16 and "PixelData" in ds:
+        if _transfer_syntax(ds) in (ImplicitVRLittleEndian, ExplicitVRLittleEndian) and int(quick_get(ds, "BitsAllocated")) == 16 \
+                and int(quick_get(ds, "BitsStored", 16)) == 16 and "PixelData" in ds:
             raw = ds.PixelData
             need = rows * cols * frames
             if len(raw) < 2 * need:
                 raise UnreadableFileError(f"truncated pixel data: {len(raw)} bytes, expected {2 * need}", source=str(path))
-            dtype = "<i2" if int(ds.get("PixelRepresentation", 0)) else "<u2"
+            dtype = "<i2" if int(quick_get(ds, "PixelRepresentation", 0)) else "<u2"
             return np.frombuffer(raw, dtype=dtype, count=need).reshape(frames, rows, cols)
         return np.asarray(ds.pixel_array).reshape(frames, rows, cols)
     except ReconauditError:
@@ -273,15 +274,16 @@ def _stored_frames(ds: Dataset, path: Path) -> np.ndarray:
 def _padding_range(ds: Dataset) -> tuple[float, float] | None:
     if "PixelPaddingValue" not in ds:
         return None
-    value = int(ds.PixelPaddingValue if not isinstance(ds.PixelPaddingValue, bytes) else 0)
-    bits = int(ds.get("BitsAllocated", 16) or 16)
-    if int(ds.get("PixelRepresentation", 0)) and value >= 2 ** (bits - 1):
+    padding = quick_get(ds, "PixelPaddingValue")
+    value = int(padding if not isinstance(padding, bytes) else 0)
+    bits = int(quick_get(ds, "BitsAllocated", 16) or 16)
+    if int(quick_get(ds, "PixelRepresentation", 0)) and value >= 2 ** (bits - 1):
         value -= 2**bits  # read as unsigned though the storage is signed
-    limit = ds.get("PixelPaddingRangeLimit")
+    limit = quick_get(ds, "PixelPaddingRangeLimit")
     if limit is None:
         return float(value), float(value)
     lim = int(limit)
-    if int(ds.get("PixelRepresentation", 0)) and lim >= 2 ** (bits - 1):
+    if int(quick_get(ds, "PixelRepresentation", 0)) and lim >= 2 ** (bits - 1):
         lim -= 2**bits
     return float(min(value, lim)), float(max(value, lim))
 

@@ -7,6 +7,7 @@ from typing import Any
 
 import numpy as np
 import pydicom
+from pydicom.dataelem import RawDataElement
 from pydicom.dataset import Dataset
 from pydicom.errors import InvalidDicomError
 from pydicom.uid import UID
@@ -74,6 +75,7 @@ __all__ = [
     "has_pixel_data",
     "as_float",
     "as_floats",
+    "quick_get",
 ]
 
 
@@ -214,6 +216,32 @@ def header_facts(ds: Dataset) -> dict[str, Any]:
     return facts
 
 
+def quick_get(ds: Dataset, name: str, default: Any = None) -> Any:
+    """``ds.get(name, default)``, taking plain US/SS numbers and single CS/UI codes from the raw bytes.
+
+    pydicom converts an element on first access, which costs more than the few bytes
+    these values need; anything other than an unconverted explicit-VR US, SS, CS or UI
+    element of the usual size is left to pydicom.
+
+    References
+    ----------
+    DICOM PS3.5, 6.2 (value representations US, SS, CS, UI) and 7.3 (byte ordering).
+    """
+    elem = ds.get_item(name)
+    if elem is None:
+        return default
+    if isinstance(elem, RawDataElement) and isinstance(elem.value, bytes):
+        raw = elem.value
+        if elem.VR in ("US", "SS") and len(raw) == 2:
+            return int.from_bytes(raw, "little" if elem.is_little_endian else "big", signed=elem.VR == "SS")
+        if elem.VR in ("CS", "UI") and b"\\" not in raw:
+            try:
+                return raw.decode("ascii").strip(" \x00")
+            except UnicodeDecodeError:
+                pass
+    return ds.get(name, default)
+
+
 def read_dataset(path: Path) -> Dataset:
     """The whole file, pixel data included, in one read (no deferred second open).
 
@@ -245,8 +273,8 @@ def check_is_ct(ds: Dataset, where: str) -> None:
         Modality is not CT, or the SOP class is not a CT image storage class. The message
         says it is not CT and what it is.
     """
-    modality = str(ds.get("Modality", "") or "")
-    sop = str(ds.get("SOPClassUID", "") or "")
+    modality = str(quick_get(ds, "Modality", "") or "")
+    sop = str(quick_get(ds, "SOPClassUID", "") or "")
     if modality != "CT":
         raise NotCTError(
             f"not CT: Modality is '{modality or 'missing'}' ({sop_class_name(sop)}); reconaudit checks CT images only",
@@ -268,8 +296,8 @@ def check_monochrome(ds: Dataset, where: str) -> str | None:
     NotMonochromeError
         SamplesPerPixel != 1 or PhotometricInterpretation not MONOCHROME1/2.
     """
-    spp = int(ds.get("SamplesPerPixel", 1) or 1)
-    photometric = str(ds.get("PhotometricInterpretation", "MONOCHROME2") or "MONOCHROME2")
+    spp = int(quick_get(ds, "SamplesPerPixel", 1) or 1)
+    photometric = str(quick_get(ds, "PhotometricInterpretation", "MONOCHROME2") or "MONOCHROME2")
     if spp != 1 or photometric not in ("MONOCHROME1", "MONOCHROME2"):
         raise NotMonochromeError(
             f"not monochrome: PhotometricInterpretation '{photometric}', SamplesPerPixel {spp}; "
