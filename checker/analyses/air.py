@@ -596,6 +596,49 @@ def _upsample(mask: np.ndarray, rel: tuple[int, int, int], shape: tuple[int, int
     return np.ascontiguousarray(out)
 
 
+def present_labels(values: np.ndarray) -> np.ndarray:
+    """The distinct values of a non-negative integer array, ascending (``np.unique`` by counting)."""
+    if values.size == 0:
+        return np.zeros(0, dtype=np.int64)
+    return np.flatnonzero(np.bincount(values.ravel()))
+
+
+def cores_by_component(
+    lab: np.ndarray, objects: list[tuple[slice, ...] | None], high: np.ndarray
+) -> list[tuple[int, np.ndarray]]:
+    """Connected components of ``high`` (the cores), when ``high`` lies inside ``lab > 0``.
+
+    Each core is returned as (the label of ``lab`` holding it, its mask in that label's
+    box ``objects[label - 1]``), in the order ``ndimage.label(high)`` would number them
+    (by the first voxel in scan order). Only the boxes of labels holding a core are
+    searched, never the whole grid.
+    """
+    found = []
+    for i in present_labels(lab[high]):
+        if i == 0:
+            continue
+        sl = objects[int(i) - 1]
+        local, k = ndimage.label(high[sl] & (lab[sl] == i))
+        for q in range(1, k + 1):
+            core = local == q
+            first = np.unravel_index(int(np.argmax(core)), core.shape)
+            found.append((tuple(int(a) + x.start for a, x in zip(first, sl)), int(i), core))
+    found.sort(key=lambda f: f[0])
+    return [(i, core) for _, i, core in found]
+
+
+def _cores_by_labelling(
+    lab: np.ndarray, objects: list[tuple[slice, ...] | None], high: np.ndarray
+) -> list[tuple[int, np.ndarray]]:
+    """As :func:`cores_by_component` for any ``high``, by labelling the whole grid."""
+    cores, _ = ndimage.label(high)
+    out = []
+    for j, csl in enumerate(ndimage.find_objects(cores), start=1):
+        i = int(lab[csl][cores[csl] == j][0])
+        out.append((i, cores[objects[i - 1]] == j))
+    return out
+
+
 def hysteresis_structures(m: ScaleMap, grow_sigma: float) -> tuple[np.ndarray, dict[int, float]]:
     """Structures of one scale: a label map and each label's contrast-to-noise.
 
@@ -610,25 +653,29 @@ def hysteresis_structures(m: ScaleMap, grow_sigma: float) -> tuple[np.ndarray, d
     snr: dict[int, float] = {}
     if n == 0:
         return out, snr
-    cores, nc = ndimage.label(m.z > m.threshold)
-    if nc == 0:
+    high = m.z > m.threshold
+    if not high.any():
         return out, snr
     objects = ndimage.find_objects(lab)
-    core_objects = ndimage.find_objects(cores)
+    if m.threshold > grow_sigma:  # every core lies in one component of ``low``
+        cores = cores_by_component(lab, objects, high)
+    else:
+        cores = _cores_by_labelling(lab, objects, high)
     found = []
-    for j, csl in enumerate(core_objects, start=1):
-        core = cores[csl] == j
-        i = int(lab[csl][core][0])
-        found.append((float(np.percentile(m.contrast_hu[csl][core], 90)), j, i))
-    for contrast, j, i in sorted(found, reverse=True):
+    for j, (i, core) in enumerate(cores, start=1):
+        sl = objects[i - 1]
+        found.append((float(np.percentile(m.contrast_hu[sl][core], 90)), j, i, core))
+    for contrast, j, i, core in sorted(found, key=lambda f: f[:3], reverse=True):
         sl = objects[i - 1]
         region = (lab[sl] == i) & (m.contrast_hu[sl] > 0.5 * contrast)
-        pieces, _ = ndimage.label(region)
-        touched = np.unique(pieces[cores[sl] == j])
-        region = np.isin(pieces, touched[touched > 0])
+        pieces, n_pieces = ndimage.label(region)
+        touched = present_labels(pieces[core])
+        keep = np.zeros(n_pieces + 1, dtype=bool)
+        keep[touched[touched > 0]] = True
+        region = keep[pieces]
         if not region.any():
             continue
-        existing = np.unique(out[sl][region])
+        existing = present_labels(out[sl][region])
         existing = existing[existing > 0]
         target = int(existing[0]) if existing.size else len(snr) + 1
         view = out[sl]
@@ -673,7 +720,7 @@ def combine_scales(
             region = level[csl] == lbl
             if rel != (1, 1, 1):
                 region = _upsample(region, rel, tuple(x.stop - x.start for x in sl))
-            existing = np.unique(combined[sl][region])
+            existing = present_labels(combined[sl][region])
             existing = existing[existing > 0]
             if existing.size and any(quality[int(e)] >= well_measured_snr for e in existing):
                 continue
