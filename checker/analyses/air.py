@@ -642,6 +642,24 @@ def _cores_by_labelling(
 def hysteresis_structures(m: ScaleMap, grow_sigma: float) -> tuple[np.ndarray, dict[int, float]]:
     """Structures of one scale: a label map and each label's contrast-to-noise.
 
+    See :func:`hysteresis_structures_boxes`, which also gives each label's box.
+    """
+    out, snr, _ = hysteresis_structures_boxes(m, grow_sigma)
+    return out, snr
+
+
+def _union_box(a: tuple[slice, ...] | None, b: tuple[slice, ...]) -> tuple[slice, ...]:
+    if a is None:
+        return b
+    return tuple(slice(min(x.start, y.start), max(x.stop, y.stop)) for x, y in zip(a, b))
+
+
+def hysteresis_structures_boxes(
+    m: ScaleMap, grow_sigma: float
+) -> tuple[np.ndarray, dict[int, float], list[tuple[slice, ...] | None]]:
+    """Structures of one scale: a label map, each label's contrast-to-noise, and each
+    label's bounding box (as ``ndimage.find_objects`` of the map).
+
     Components above ``grow_sigma`` that reach ``m.threshold`` are kept. Each core above
     the threshold is measured on its own (its contrast: the 90th percentile inside the
     core) and grown to where the filtered contrast exceeds half of it, so two structures
@@ -651,11 +669,12 @@ def hysteresis_structures(m: ScaleMap, grow_sigma: float) -> tuple[np.ndarray, d
     lab, n = ndimage.label(low)
     out = np.zeros(m.z.shape, dtype=np.int32)
     snr: dict[int, float] = {}
+    outer: dict[int, tuple[slice, ...]] = {}
     if n == 0:
-        return out, snr
+        return out, snr, []
     high = m.z > m.threshold
     if not high.any():
-        return out, snr
+        return out, snr, []
     objects = ndimage.find_objects(lab)
     if m.threshold > grow_sigma:  # every core lies in one component of ``low``
         cores = cores_by_component(lab, objects, high)
@@ -681,7 +700,8 @@ def hysteresis_structures(m: ScaleMap, grow_sigma: float) -> tuple[np.ndarray, d
         view = out[sl]
         view[region & (view == 0)] = target
         snr[target] = max(snr.get(target, 0.0), contrast / max(m.noise_hu, 1e-6))
-    return out, snr
+        outer[target] = _union_box(outer.get(target), sl)
+    return out, snr, tight_boxes(out, len(snr), [outer[k] for k in range(1, len(snr) + 1)])
 
 
 def scaled_box(sl: tuple[slice, ...], factors: tuple[int, ...], shape: tuple[int, ...]) -> tuple[slice, ...]:
@@ -696,24 +716,35 @@ def scaled_box(sl: tuple[slice, ...], factors: tuple[int, ...], shape: tuple[int
 def combine_scales(
     maps: list[ScaleMap], grow_sigma: float, well_measured_snr: float = 10.0
 ) -> tuple[np.ndarray, tuple[int, int, int]]:
+    """Structures of all scales as one label map on the finest grid (see
+    :func:`combine_scales_boxes`)."""
+    combined, base, _ = combine_scales_boxes(maps, grow_sigma, well_measured_snr)
+    return combined, base
+
+
+def combine_scales_boxes(
+    maps: list[ScaleMap], grow_sigma: float, well_measured_snr: float = 10.0
+) -> tuple[np.ndarray, tuple[int, int, int], list[tuple[slice, ...] | None]]:
     """Structures of all scales as one label map on the finest grid.
 
     Scales are visited from fine to coarse. A structure that overlaps none found so far
     is added. One that overlaps only structures measured poorly at a finer scale
     (contrast-to-noise below ``well_measured_snr`` there) replaces them: a faint, large
-    structure is outlined at the scale that sees it whole.
+    structure is outlined at the scale that sees it whole. Also returns each label's
+    bounding box (as ``ndimage.find_objects``; None for labels replaced later).
     """
     base = maps[0].factors
     shape0 = maps[0].z.shape
     combined = np.zeros(shape0, dtype=np.int32)
     quality: dict[int, float] = {}
+    boxes: list[tuple[slice, ...] | None] = []
     next_id = 1
     for m in maps:
-        level, snr = hysteresis_structures(m, grow_sigma)
+        level, snr, level_boxes = hysteresis_structures_boxes(m, grow_sigma)
         if not snr:
             continue
         rel = tuple(a // b for a, b in zip(m.factors, base))
-        for lbl, csl in enumerate(ndimage.find_objects(level), start=1):
+        for lbl, csl in enumerate(level_boxes, start=1):
             if csl is None:
                 continue
             sl = scaled_box(csl, rel, shape0)
@@ -729,11 +760,13 @@ def combine_scales(
                 combined[gone] = 0
                 for e in existing:
                     quality.pop(int(e))
+                    boxes[int(e) - 1] = None
             view = combined[sl]
             view[region] = next_id
             quality[next_id] = snr[lbl]
+            boxes.append(sl)  # whole structures only are placed or removed: sl stays its box
             next_id += 1
-    return combined, base
+    return combined, base, boxes
 
 
 def full_resolution_labels(lab0: np.ndarray, factors: tuple[int, int, int], air: np.ndarray) -> tuple[np.ndarray, int]:
@@ -1008,11 +1041,11 @@ def analyse(volume: Volume, regions: Regions, settings: dict[str, Any] | None = 
     structures: list[dict[str, Any]] = []
     labels = None
     if maps:
-        mask0, base = combine_scales(maps, float(s["grow_sigma"]))
+        mask0, base, boxes0 = combine_scales_boxes(maps, float(s["grow_sigma"]))
         del maps
         full, n = full_resolution_labels(mask0, base, air)
         if n:
-            outer = [None if b is None else scaled_box(b, base, full.shape) for b in ndimage.find_objects(mask0, max_label=n)]
+            outer = [None if b is None else scaled_box(b, base, full.shape) for b in boxes0[:n]]
             del mask0
             objects = tight_boxes(full, n, outer)
             structures = measure_structures(volume, full, n, mean, noise, ctx, s, objects)
