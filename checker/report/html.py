@@ -430,6 +430,7 @@ def report_context(
         "run_time": redact(_run_time(doc), secrets),
         "written_at": _dt.datetime.now(_dt.timezone.utc).isoformat(timespec="seconds"),
         "schema": str(doc.get("schema") or ""),
+        "skipped_count": len(doc.get("skipped") or []),
         "counts": counts,
         "verdicts": VERDICTS,
         "series": series,

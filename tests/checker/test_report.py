@@ -374,3 +374,14 @@ def test_thumbnail_slice_falls_back_to_the_measured_inserts():
     assert edge_slice(ttf, 16) == 4  # middle of slices 0-7 (round half to even of 3.5)
     assert edge_slice({"edges": [{"kind": "skin", "slices": [0, 15]}]}, 16) is None
     assert edge_slice(None, 16) is None
+
+
+def test_report_says_how_many_series_were_skipped(tmp_path):
+    from reconaudit.checker.report import render_report
+
+    doc = {"schema": "reconaudit.results/1", "tool_version": "0", "profile": {"name": "p"}, "series": [],
+           "skipped": [{"id": "a", "source": "x", "content_hash": "h"}, {"id": "b", "source": "y", "content_hash": "k"}]}
+    html = render_report(doc, figures={})
+    assert "2 more series had been checked before" in html
+    doc["skipped"] = []
+    assert "checked before" not in render_report(doc, figures={})
