@@ -43,17 +43,12 @@ def make_phantom(nz: int, n: int = 512, pixel_mm: float = 0.45, seed: int = 7) -
     return Volume.from_array(hu, spacing_mm=(1.25, pixel_mm, pixel_mm))
 
 
-def read_time_s(volume: Volume) -> tuple[float, str]:
-    """Seconds to read the series as DICOM (benchmarks/harness.py read_limit)."""
-    return float(harness.read_limit(volume)), "benchmarks/harness.py read_limit"
-
-
 def main() -> None:
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     parser.add_argument("--slices", type=int, default=120)
     args = parser.parse_args()
     vol = make_phantom(args.slices)
-    limit, how = read_time_s(vol)
+    limit, how = float(harness.read_limit(vol)), "benchmarks/harness.py read_limit"
     t0 = time.perf_counter()
     regions = find_regions(vol)
     t_regions = time.perf_counter() - t0
