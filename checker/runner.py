@@ -162,6 +162,23 @@ def _trend_figures(history, records: list[dict[str, Any]], out_dir: Path) -> dic
     return trends
 
 
+def _worker_count(opts: CheckOptions, n_tasks: int, cores: int) -> int:
+    """Local worker processes: as asked (default: the cores), never more than the tasks
+    (a lone series runs in this process and keeps every core for its analyses)."""
+    return max(1, min(opts.workers or cores, n_tasks))
+
+
+def _threads_per_task(opts: CheckOptions, workers: int, cores: int) -> int:
+    """Threads an analysis may use: 1 on a Dask cluster (its workers share their
+    machines), else the cores left to each local worker (0, the analyses' own default,
+    when one process has them all)."""
+    if opts.scheduler:
+        return 1
+    if workers <= 1:
+        return 0
+    return max(1, cores // workers)
+
+
 def check(opts: CheckOptions, progress_factory: Callable[[int], Any] | None = None) -> CheckOutcome:
     """Run one check over ``opts.inputs``; see the module docstring."""
     from .history import History
@@ -190,8 +207,7 @@ def check(opts: CheckOptions, progress_factory: Callable[[int], Any] | None = No
         records[rec["id"]] = rec
     ids = _unique_ids(found.series)
     tasks, skipped = [], []
-    workers = opts.workers or default_workers()
-    threads = 1 if (opts.scheduler or workers > 1) else 0
+    cores = default_workers()
     digest = profile.digest()
     for src in found.series:
         sid = ids[src.key]
@@ -207,7 +223,10 @@ def check(opts: CheckOptions, progress_factory: Callable[[int], Any] | None = No
             continue
         tasks.append(SeriesTask(series_id=sid, source=src, content_hash=content, out_dir=str(out_dir),
                                 profile=profile, baselines=baselines, include_identifiers=opts.include_identifiers,
-                                figures=opts.figures, threads=threads))
+                                figures=opts.figures))
+    workers = _worker_count(opts, len(tasks), cores)
+    for task in tasks:
+        task.threads = _threads_per_task(opts, workers, cores)
 
     progress = progress_factory(len(tasks)) if progress_factory else None
 
