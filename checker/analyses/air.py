@@ -8,35 +8,54 @@ stands above the air's noise at scales from a few mm to several cm.
 
 Method
 ------
-1. Air statistics: a sample of air voxels, clipped iteratively at ``clip_sigma`` robust
-   standard deviations (1.4826 x MAD) around the median; ``mean_hu`` and ``noise_hu`` are
-   the mean and standard deviation of what remains. Air is -1000 HU by the definition of
-   the Hounsfield scale.
-2. Multi-scale matched filtering: for each Gaussian scale in ``scales_mm`` the contrast
-   above the air (HU - mean_hu) is averaged over air voxels only (normalised convolution,
-   Knutsson & Westin 1993), on a grid whose voxel is about the scale (block means: a
-   pyramid), so the body never leaks into the air. The filtered noise near the edge of
-   the air region grows as fewer voxels are averaged; each value is divided by that
-   growth (computed for white noise, which over-corrects correlated noise: conservative).
+0. Coarse grid (the one full-resolution pass): the HU are summed over the air pixels of
+   blocks of about ``BLOCK_MM`` (3 mm, at most ``MAX_BLOCK_MM`` = 4 mm, at least one
+   pixel) along each axis, together with the number of air pixels per block (block
+   averaging, common practice, no source). On the benchmark series (0.7 mm pixels, 1.25
+   mm slices) a block is 4 x 4 pixels by 2 slices. Everything up to step 4 works on this
+   grid and on grids made from it by further block sums; full resolution is read again
+   only for the air sample of step 1 and inside the boxes of the structures found.
+1. Air statistics: a regular sub-grid sample of air voxels (at most about 2e6), clipped
+   iteratively at ``clip_sigma`` robust standard deviations (1.4826 x MAD) around the
+   median; ``mean_hu`` and ``noise_hu`` are the mean and standard deviation of what
+   remains (per pixel, as before). Air is -1000 HU by the definition of the Hounsfield
+   scale.
+2. Multi-scale matched filtering on the coarse grid: the finest scale is the block mean
+   itself; every other scale of SD ``s`` in ``scales_mm`` is the block mean over blocks
+   of about ``2 s`` followed by a Gaussian of SD ``s`` (about half a cell), both over air
+   pixels only (normalised convolution, Knutsson & Westin 1993), so the body never leaks
+   into the air. Blocks less than half air are not measured. The filtered noise near the
+   edge of the air grows as fewer pixels are averaged; each value is divided by that
+   growth (computed for white noise).
 3. Thresholds for a stated false-alarm rate: the noise of each filtered map is measured
-   on the air itself (1.4826 x MAD), its smoothness from the variance of its finite
-   differences, and the high threshold is the level at which the expected Euler
-   characteristic of a Gaussian random field over the air equals
-   ``false_alarms_per_series`` / number of scales (Worsley et al. 1992, 1996). Real
-   reconstructions have spatially correlated noise; the smoothness estimate takes that
-   into account where a per-voxel threshold would not.
-4. Hysteresis: 3-D components above ``grow_sigma`` that reach the high threshold are
-   kept; each core above the threshold is grown to where the filtered contrast exceeds
-   half of its own contrast (the 90th percentile in the core), which places its boundary
-   at the half-contrast edge. A structure well measured at a fine scale is not found
-   again at a coarser one; one poorly measured there is outlined at the coarser scale.
-   Structures smaller than ``min_volume_mm3`` or whose mean (full resolution) is less
-   than ``min_contrast_hu`` above the air are dropped (blur tails of neighbours).
+   on that map over the air (1.4826 x MAD) -- never derived from the pixel noise, since
+   correlated noise makes a block mean's noise differ from sigma / sqrt(pixels) -- its
+   smoothness from the variance of its finite differences, and the high threshold is
+   the level at which the expected Euler characteristic of a Gaussian random field over
+   the air equals ``false_alarms_per_series`` / number of scales (Worsley et al. 1992,
+   1996). The false-alarm basis is thus the coarse grid's own resels.
+4. Hysteresis on the coarse grids: 3-D components above ``grow_sigma`` that reach the
+   high threshold are kept; each core above the threshold is grown to where the
+   filtered contrast exceeds half of its own contrast (the 90th percentile in the core),
+   which places its boundary at the half-contrast edge. A structure well measured at a
+   fine scale is not found again at a coarser one; one poorly measured there is outlined
+   at the coarser scale. Each structure is then refined at full resolution inside its
+   box only: its voxels are the air pixels of its blocks; volume, centroid, mean and max
+   HU, contrast-to-noise and slices are measured there. Structures smaller than
+   ``min_volume_mm3`` or whose mean is less than ``min_contrast_hu`` above the air are
+   dropped (blur tails of neighbours). The label overlay is written only inside the
+   boxes.
 5. Classification (at full resolution): ``leaves_scan`` (reaches the first or last slice:
    arms, tubes, cables, a mattress), ``touching_body``, ``table``, ``fov_edge`` (touches
    the edge of the reconstruction circle or padding) and ``isolated`` (touches nothing
-   and begins and ends inside the scanned range: the suspicious kind). Only the kinds in
-   ``flag_kinds`` flag.
+   and begins and ends inside the scanned range: the suspicious kind). A structure may
+   stop up to half a block short of the air's edge on the coarse grid, so the touching
+   distances are widened by half a block. Only the kinds in ``flag_kinds`` flag.
+
+What may change with the data path: the values in the record are estimates, and the
+coarse grid and the subsampled robust statistics are documented method choices; the
+record keys, types and meaning stay as documented, and the reference checks
+(tests/reference/test_air_reference.py) hold unchanged.
 
 Single slices: the viewer's current-slice mode runs analyses on a one-slice volume, where
 every structure touches the first and last slice. With ``single_slice_mode`` "auto" (the
@@ -58,6 +77,8 @@ References
 .. [5] Christianson O, et al. Automated technique to measure noise in clinical CT
        examinations. AJR 205(1), 2015 (the body's noise level: the mode of the local
        standard deviation in soft tissue).
+.. [6] Block averaging to a coarser grid and refinement inside bounding boxes: common
+       practice, no source.
 """
 from __future__ import annotations
 
@@ -116,6 +137,10 @@ SOURCES: dict[str, str] = {
 }
 
 _FWHM_FACTOR = 4.0 * math.log(2.0)
+
+#: Target edge of a coarse-grid block (mm) and its largest allowed edge.
+BLOCK_MM = 3.0
+MAX_BLOCK_MM = 4.0
 
 
 # ------------------------------------------------------------------------- settings
@@ -277,32 +302,6 @@ def block_sum(a: np.ndarray, factors: tuple[int, int, int]) -> np.ndarray:
     return t if t.dtype == np.float32 else t.astype(np.float32)
 
 
-def _masked_block_sums(
-    hu: np.ndarray, air: np.ndarray, offset: float, factors: tuple[int, int, int]
-) -> tuple[np.ndarray, np.ndarray]:
-    """Block sums of (hu - offset) over air voxels, and block counts of air voxels.
-
-    Slice-blocked so no full-size temporary is made; one slab buffer serves every block.
-    """
-    fz = factors[0]
-    chunk = fz * max(1, 16 // fz)
-    sums, counts = [], []
-    buf = np.empty((min(chunk, hu.shape[0]),) + hu.shape[1:], dtype=np.result_type(hu.dtype, np.float32))
-    for z0 in range(0, hu.shape[0], chunk):
-        a = air[z0 : z0 + chunk]
-        v = np.subtract(hu[z0 : z0 + chunk], np.float32(offset), out=buf[: a.shape[0]])
-        with np.errstate(invalid="ignore"):
-            np.multiply(v, a, out=v)  # zero outside the air (bool as 0/1)
-        part = block_sum(v, factors)
-        if not np.isfinite(part).all():  # inf * 0 outside the air: zero by assignment instead
-            v = np.subtract(hu[z0 : z0 + chunk], np.float32(offset), out=v)
-            v[~a] = 0.0
-            part = block_sum(v, factors)
-        sums.append(part)
-        counts.append(block_count(a, factors))
-    return np.concatenate(sums), np.concatenate(counts)
-
-
 def block_count(mask: np.ndarray, factors: tuple[int, int, int]) -> np.ndarray:
     """Number of True voxels of ``mask`` in blocks of ``factors`` (z, y, x), as float32.
 
@@ -322,24 +321,136 @@ def block_count(mask: np.ndarray, factors: tuple[int, int, int]) -> np.ndarray:
     return t.astype(np.float32)
 
 
-def level_factors(
-    spacing_mm: tuple[float, float, float], scales_mm: list[float], nz: int
-) -> list[tuple[int, int, int]]:
-    """Block factors (z, y, x) relative to full resolution, one per scale.
+# ------------------------------------------------------------------- coarse grid
+def block_factors(spacing_mm: tuple[float, float, float], nz: int) -> tuple[int, int, int]:
+    """Pixels per block (z, y, x) of the coarse grid: about ``BLOCK_MM`` and at most
+    ``MAX_BLOCK_MM`` along each axis, at least one pixel; along z also at most a quarter
+    of the slices (and one for a single slice).
 
-    The finest grid has a voxel of about the first scale; each next grid halves the
-    resolution in-plane (and along z while the slices are finer than the in-plane voxel),
-    matching scales that double.
+    References
+    ----------
+    .. [1] Block averaging to a coarser grid: common practice, no source.
     """
+
+    def along(d: float) -> int:
+        k = max(1, int(round(BLOCK_MM / float(d))))
+        while k > 1 and k * float(d) > MAX_BLOCK_MM:
+            k -= 1
+        return k
+
     dz, dy, dx = spacing_mm
+    kz = min(along(dz), max(1, nz // 4)) if nz > 1 else 1
+    return (kz, along(dy), along(dx))
+
+
+def _sum_along(t: np.ndarray, axis: int, f: int, dtype: np.dtype) -> np.ndarray:
+    """Sums of ``f`` consecutive entries along ``axis`` (strided views added; a short
+    last block sums what there is)."""
+    if f == 1:
+        return t if t.dtype == dtype else t.astype(dtype)
+    n = t.shape[axis]
+    m = -(-n // f)
+    lead = (slice(None),) * axis
+    if n % f == 0:
+        acc = np.add(t[lead + (slice(0, None, f),)], t[lead + (slice(1, None, f),)], dtype=dtype, casting="unsafe")
+        for o in range(2, f):
+            np.add(acc, t[lead + (slice(o, None, f),)], out=acc, casting="unsafe")
+        return acc
+    shape = list(t.shape)
+    shape[axis] = m
+    acc = np.zeros(shape, dtype=dtype)
+    for o in range(f):
+        part = t[lead + (slice(o, None, f),)]
+        view = acc[lead + (slice(0, part.shape[axis]),)]
+        np.add(view, part, out=view, casting="unsafe")
+    return acc
+
+
+def _grid_sum(t: np.ndarray, factors: tuple[int, int, int], dtype: np.dtype) -> np.ndarray:
+    for axis, f in enumerate(factors):
+        t = _sum_along(t, axis, f, dtype)
+    return t
+
+
+def _count_dtype(cells: int) -> np.dtype:
+    return np.dtype(np.uint8 if cells < 256 else (np.uint16 if cells < 65536 else np.int64))
+
+
+def coarse_air_grid(
+    hu: np.ndarray, air: np.ndarray, factors: tuple[int, int, int], slab_blocks: int | None = None
+) -> tuple[np.ndarray, np.ndarray]:
+    """Sums of the CT number over the air pixels of each block, and the number of air
+    pixels in it (float32 grids of ``ceil(shape / factors)`` cells).
+
+    The one full-resolution pass of the analysis: slabs of whole blocks along z, each
+    masked by a multiply into one buffer and summed one axis at a time. A block holding a
+    non-finite CT number in its air is left out (count 0).
+
+    References
+    ----------
+    .. [1] Block averaging to a coarser grid: common practice, no source.
+    """
+    kz = factors[0]
+    nz = hu.shape[0]
+    if slab_blocks is None:
+        slab_blocks = max(1, 8 // kz)
+    step = kz * slab_blocks
+    cells = int(np.prod(factors))
+    cdt = _count_dtype(cells)
+    out_shape = tuple(-(-n // f) for n, f in zip(hu.shape, factors))
+    sums = np.empty(out_shape, dtype=np.float32)
+    counts = np.empty(out_shape, dtype=np.float32)
+    buf = np.empty((min(step, nz),) + hu.shape[1:], dtype=np.float32)
+    for z0 in range(0, nz, step):
+        z1 = min(nz, z0 + step)
+        a = air[z0:z1].view(np.uint8)
+        v = np.multiply(hu[z0:z1], a, out=buf[: z1 - z0], casting="unsafe")
+        part = _grid_sum(v, factors, np.dtype(np.float32))
+        cnt = _grid_sum(a, factors, cdt).astype(np.float32)
+        bad = ~np.isfinite(part)
+        if bad.any():  # inf * 0 outside the air, or a non-finite air pixel: that block is left out
+            part[bad] = 0.0
+            cnt[bad] = 0.0
+        b0 = z0 // kz
+        sums[b0 : b0 + part.shape[0]] = part
+        counts[b0 : b0 + part.shape[0]] = cnt
+    return sums, counts
+
+
+def scale_levels(
+    base: tuple[int, int, int], spacing_mm: tuple[float, float, float], scales_mm: list[float], nz: int
+) -> list[tuple[tuple[int, int, int], tuple[float, float, float]]]:
+    """For each scale: its grid (block factors relative to the coarse grid) and its
+    Gaussian's SD in cells of that grid (0 where not filtered).
+
+    A scale of SD ``s`` is measured on blocks of about ``2 s`` (so its Gaussian spans
+    about half a cell and needs five taps); a scale whose blocks would be the coarse
+    grid's own and whose SD is at most 0.6 of a cell is the block mean itself (no
+    Gaussian). Along z the total block is at most a quarter of the slices.
+    """
+    cell_mm = [b * d for b, d in zip(base, spacing_mm)]
     out = []
     for s in scales_mm:
-        fy = max(1, int(s / dy + 0.25))
-        fx = max(1, int(s / dx + 0.25))
-        fz = max(1, int(s / dz + 0.25)) if nz > 1 else 1
-        fz = min(fz, max(1, nz // 4)) if nz > 1 else 1
-        out.append((fz, fy, fx))
+        rel = []
+        for axis, c in enumerate(cell_mm):
+            r = max(1, int(2.0 * s / c + 0.25))
+            if axis == 0:
+                r = 1 if nz == 1 else min(r, max(1, (nz // 4) // base[0]))
+            rel.append(r)
+        sig = tuple(0.0 if (axis == 0 and nz == 1) else s / (r * c) for axis, (r, c) in enumerate(zip(rel, cell_mm)))
+        if all(r == 1 for r in rel) and max(sig) <= 0.6:
+            sig = (0.0, 0.0, 0.0)
+        out.append((tuple(rel), sig))
     return out
+
+
+def _box_scale(sums: np.ndarray, counts: np.ndarray, cell: float) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Block means as the matched filter: contrast, white-noise growth, validity."""
+    valid = counts >= 0.5 * cell
+    contrast = np.divide(sums, np.maximum(counts, 1.0))
+    growth = np.divide(np.float32(cell), np.maximum(counts, 1.0))
+    np.sqrt(growth, out=growth)
+    return contrast, growth, valid
 
 
 @dataclass
@@ -534,40 +645,37 @@ def _robust_sd(values: np.ndarray) -> tuple[float, float]:
 
 
 def matched_filter_scales(
-    hu: np.ndarray,
-    air: np.ndarray,
-    air_mean_hu: float,
+    sums: np.ndarray,
+    counts: np.ndarray,
+    base: tuple[int, int, int],
     spacing_mm: tuple[float, float, float],
     s: dict[str, Any],
     noise_floor_hu: float,
+    nz: int,
 ) -> list[ScaleMap]:
-    """Filtered contrast and significance of the air at every scale (see the module).
+    """Filtered contrast and significance of the air at every scale, on the coarse grid.
 
-    The block sums of every grid are made first, from the finest; the finest is then
-    filtered in place, so at most four arrays of the finest grid exist at once.
+    ``sums``: the contrast above the air (HU - air mean) summed over the air pixels of
+    each coarse block; ``counts``: the air pixels per block (:func:`coarse_air_grid`).
+    Each scale's grid is made from these by block sums (:func:`scale_levels`); the noise
+    of each filtered map is measured on that map (robust SD over the air), never derived
+    from the pixel noise.
     """
-    nz = hu.shape[0]
-    factors = level_factors(spacing_mm, s["scales_mm"], nz)
-    base = factors[0]
-    sums0, counts0 = _masked_block_sums(hu, air, air_mean_hu, base)
-    grids = []
-    for sigma_mm, f in zip(s["scales_mm"], factors):
-        rel = tuple(max(1, a // b) for a, b in zip(f, base))
-        if rel == (1, 1, 1):
-            grids.append((sigma_mm, rel, sums0, counts0))
-        else:
-            grids.append((sigma_mm, rel, block_sum(sums0, rel), block_sum(counts0, rel)))
-    del sums0, counts0
+    levels = scale_levels(base, spacing_mm, s["scales_mm"], nz)
     dims = 3 if nz > 1 else 2
-    alpha = float(s["false_alarms_per_series"]) / len(factors)
+    alpha = float(s["false_alarms_per_series"]) / len(levels)
+    base_cell = float(np.prod(base))
     maps = []
-    while grids:
-        sigma_mm, rel, sums, counts = grids.pop(0)
-        grid = tuple(b * r * d for b, r, d in zip(base, rel, spacing_mm))
-        sigma_vox = tuple(0.0 if (ax == 0 and nz == 1) else sigma_mm / g for ax, g in enumerate(grid))
-        cell = float(np.prod([b * r for b, r in zip(base, rel)]))
-        contrast, growth, valid = _filtered_scale(sums, counts, cell, sigma_vox)
-        del sums, counts
+    for sigma_mm, (rel, sig) in zip(s["scales_mm"], levels):
+        if rel == (1, 1, 1):
+            S, C = sums, counts
+        else:
+            S, C = block_sum(sums, rel), block_sum(counts, rel)
+        cell = base_cell * float(np.prod(rel))
+        if max(sig) == 0.0:
+            contrast, growth, valid = _box_scale(S, C, cell)
+        else:
+            contrast, growth, valid = _filtered_scale(S.copy() if S is sums else S, C, cell, sig)
         if valid.sum() < 20:
             continue
         z = np.divide(contrast, growth, out=growth)  # noise-normalised contrast, in place
@@ -769,28 +877,6 @@ def combine_scales_boxes(
     return combined, base, boxes
 
 
-def full_resolution_labels(lab0: np.ndarray, factors: tuple[int, int, int], air: np.ndarray) -> tuple[np.ndarray, int]:
-    """Carry the label map of the finest grid to the volume's voxels (inside the air).
-
-    Filled slab by slab, so the only full-size array made is the result.
-    """
-    n = int(lab0.max()) if lab0.size else 0
-    out = np.zeros(air.shape, dtype=np.int32)
-    if n == 0:
-        return out, 0
-    fz = factors[0]
-    _, ny, nx = air.shape
-    for k in range(lab0.shape[0]):
-        z0, z1 = k * fz, min(air.shape[0], (k + 1) * fz)
-        if z0 >= z1:
-            break
-        if not lab0[k].any():
-            continue
-        plane = _upsample(lab0[k : k + 1], (1,) + tuple(factors[1:]), (1, ny, nx))
-        np.multiply(plane, air[z0:z1], out=out[z0:z1])  # zero outside the air
-    return out, n
-
-
 # ---------------------------------------------------------------- classification
 @dataclass
 class Context:
@@ -800,6 +886,7 @@ class Context:
     margin_px: int
     single_slice: bool
     nz: int
+    grid_px: int = 0  # how far short of the air's edge a structure may stop on the coarse grid
 
 
 def _touches(comp: np.ndarray, other: np.ndarray, radius: int) -> bool:
@@ -814,7 +901,7 @@ def classify(sl: tuple[slice, ...], comp: np.ndarray, ctx: Context) -> str:
     zs = sl[0]
     if not ctx.single_slice and (zs.start == 0 or zs.stop == ctx.nz):
         return "leaves_scan"
-    r = ctx.margin_px + 1
+    r = ctx.margin_px + 1 + ctx.grid_px
     pad = r + 1
     ny, nx = ctx.regions.fov.shape
     y0, y1 = max(0, sl[1].start - pad), min(ny, sl[1].stop + pad)
@@ -828,7 +915,7 @@ def classify(sl: tuple[slice, ...], comp: np.ndarray, ctx: Context) -> str:
         return "table"
     outside = ~ctx.regions.fov[y0:y1, x0:x1]
     at_image_edge = sl[1].start == 0 or sl[2].start == 0 or sl[1].stop == ny or sl[2].stop == nx
-    if at_image_edge or _touches(box, np.broadcast_to(outside, box.shape), 2):
+    if at_image_edge or _touches(box, np.broadcast_to(outside, box.shape), 2 + ctx.grid_px):
         return "fov_edge"
     return "isolated"
 
@@ -885,55 +972,98 @@ def tight_boxes(labels: np.ndarray, n: int, outer: list[tuple[slice, ...] | None
     return out
 
 
+def _tight_range(profile: np.ndarray) -> tuple[int, int]:
+    hit = np.flatnonzero(profile)
+    return int(hit[0]), int(hit[-1]) + 1
+
+
+def refine_structure(
+    volume: Volume, air: np.ndarray, cells: np.ndarray, box: tuple[slice, ...], base: tuple[int, int, int]
+) -> tuple[tuple[slice, ...], np.ndarray, int, np.ndarray] | None:
+    """One structure at full resolution, worked only inside its box.
+
+    ``cells``: the structure's mask on the coarse grid inside the coarse box ``box``. Its
+    voxels are the air pixels of those blocks. Returns the tight full-resolution box, the
+    mask inside it, the voxel count and the centroid (z, y, x voxels); None when no air
+    pixel is left.
+    """
+    fbox = scaled_box(box, base, volume.shape)
+    comp = _upsample(cells, base, tuple(x.stop - x.start for x in fbox))
+    np.logical_and(comp, air[fbox], out=comp)
+    zy = np.count_nonzero(comp, axis=2)
+    count = int(zy.sum())
+    if count == 0:
+        return None
+    profiles = (zy.sum(axis=1), zy.sum(axis=0), np.count_nonzero(comp, axis=(0, 1)))
+    ranges = [_tight_range(p) for p in profiles]
+    centroid = np.array(
+        [x.start + float(np.dot(p, np.arange(p.size))) / count for x, p in zip(fbox, profiles)], dtype=np.float64
+    )
+    local = tuple(slice(a, b) for a, b in ranges)
+    tight = tuple(slice(x.start + a, x.start + b) for x, (a, b) in zip(fbox, ranges))
+    return tight, np.ascontiguousarray(comp[local]), count, centroid
+
+
 def measure_structures(
     volume: Volume,
-    labels: np.ndarray,
-    n: int,
+    air: np.ndarray,
+    lab0: np.ndarray,
+    boxes0: list[tuple[slice, ...] | None],
+    base: tuple[int, int, int],
     air_mean: float,
     noise: float,
     ctx: Context,
     s: dict[str, Any],
-    objects: list[tuple[slice, ...] | None] | None = None,
-) -> list[dict[str, Any]]:
-    """The per-structure record (id, position, size, CT numbers, kind, flagged).
+) -> list[tuple[dict[str, Any], tuple[slice, ...], np.ndarray]]:
+    """The per-structure record (id, position, size, CT numbers, kind, flagged), with the
+    structure's full-resolution box and mask, for each label of the coarse map ``lab0``.
 
-    ``objects``: the bounding box of each label (as ``ndimage.find_objects``), found when
-    not given.
+    Only the boxes of the structures are read at full resolution.
     """
     out = []
-    if objects is None:
-        objects = ndimage.find_objects(labels, max_label=n)
     vox = volume.voxel_volume_mm3
-    for i, sl in enumerate(objects, start=1):
-        if sl is None:
+    for i, box in enumerate(boxes0, start=1):
+        if box is None:
             continue
-        comp = labels[sl] == i
-        count = int(comp.sum())
+        found = refine_structure(volume, air, lab0[box] == i, box, base)
+        if found is None:
+            continue
+        sl, comp, count, idx = found
         if count * vox < float(s["min_volume_mm3"]):
             continue
         values = volume.hu[sl][comp]
-        mean_hu = float(values.mean())
+        mean_hu = float(values.mean(dtype=np.float64))
         if mean_hu - air_mean < float(s["min_contrast_hu"]):  # a blur tail, not a structure
             continue
-        idx = np.argwhere(comp).mean(axis=0) + [x.start for x in sl]
         kind = classify(sl, comp, ctx)
-        out.append(
-            {
-                "id": 0,
-                "label": i,
-                "centroid_zyx_vox": [round(float(v), 2) for v in idx],
-                "centroid_mm": [round(float(v), 2) for v in volume.index_to_patient(idx)],
-                "bbox_zyx_vox": [[x.start for x in sl], [x.stop - 1 for x in sl]],
-                "volume_mm3": round(count * vox, 2),
-                "mean_hu": round(mean_hu, 2),
-                "max_hu": round(float(values.max()), 2),
-                "contrast_to_noise": round((mean_hu - air_mean) / max(noise, 1e-6), 2),
-                "slices": [sl[0].start, sl[0].stop - 1],
-                "kind": kind,
-                "flagged": kind in s["flag_kinds"],
-            }
-        )
+        record = {
+            "id": 0,
+            "label": i,
+            "centroid_zyx_vox": [round(float(v), 2) for v in idx],
+            "centroid_mm": [round(float(v), 2) for v in volume.index_to_patient(idx)],
+            "bbox_zyx_vox": [[x.start for x in sl], [x.stop - 1 for x in sl]],
+            "volume_mm3": round(count * vox, 2),
+            "mean_hu": round(mean_hu, 2),
+            "max_hu": round(float(values.max()), 2),
+            "contrast_to_noise": round((mean_hu - air_mean) / max(noise, 1e-6), 2),
+            "slices": [sl[0].start, sl[0].stop - 1],
+            "kind": kind,
+            "flagged": kind in s["flag_kinds"],
+        }
+        out.append((record, sl, comp))
     return out
+
+
+def label_overlay(shape: tuple[int, ...], found: list[tuple[dict[str, Any], tuple[slice, ...], np.ndarray]]) -> np.ndarray:
+    """The int32 label volume (label == id), written only inside the structures' boxes.
+
+    ``np.zeros`` leaves untouched pages to the operating system, so only the boxes cost.
+    """
+    labels = np.zeros(shape, dtype=np.int32)
+    for record, sl, comp in found:
+        view = labels[sl]
+        view[comp] = record["id"]
+    return labels
 
 
 def _limit(structures: list[dict[str, Any]], max_structures: int) -> list[dict[str, Any]]:
@@ -945,24 +1075,17 @@ def _limit(structures: list[dict[str, Any]], max_structures: int) -> list[dict[s
     return [st for st in structures if st["label"] in keep]
 
 
-def _renumber(labels: np.ndarray, structures: list[dict[str, Any]], n: int) -> np.ndarray:
-    """Labels 1..k in the order of ``structures`` (label == id); the rest become 0."""
-    lut = np.zeros(n + 1, dtype=np.int32)
-    for new_id, st in enumerate(structures, start=1):
-        lut[st.pop("label")] = new_id
-        st["id"] = new_id
-    if np.array_equal(lut, np.arange(n + 1, dtype=np.int32)):
-        return labels
-    return lut[labels]
-
-
 # ------------------------------------------------------------------------ analyse
-def _not_applicable_reason(volume: Volume, regions: Regions, min_air: int) -> str | None:
+def _regions_reason(regions: Regions) -> str | None:
+    """Why the shared regions leave nothing to check (None when they do not)."""
     if not regions.fov.any():
         return "the field of view is empty: every pixel is padding"
     if not regions.has_body:
         return "no body found in the field of view (air only); the air check needs a patient or phantom"
-    n_air = int(np.count_nonzero(regions.air))
+    return None
+
+
+def _too_little_air(n_air: int, min_air: int) -> str | None:
     if n_air < min_air:
         return f"too little air in the field of view ({n_air} voxels, at least {min_air} needed): the body fills it"
     return None
@@ -1025,32 +1148,45 @@ def analyse(volume: Volume, regions: Regions, settings: dict[str, Any] | None = 
     .. [2] Knutsson H, Westin C-F. CVPR 1993.
     """
     s = resolve_settings(settings)
-    reason = _not_applicable_reason(volume, regions, int(s["min_air_voxels"]))
+    reason = _regions_reason(regions)
     if reason:
         return AnalysisResult.not_applicable(NAME, reason)
     hu, air = volume.hu, regions.air
+    base = block_factors(volume.spacing_mm, hu.shape[0])
+    sums, counts = coarse_air_grid(hu, air, base)
+    reason = _too_little_air(int(counts.sum(dtype=np.float64)), int(s["min_air_voxels"]))
+    if reason:
+        return AnalysisResult.not_applicable(NAME, reason)
     mean, noise = robust_mean_and_noise(_air_sample(hu, air), float(s["clip_sigma"]))
     if not math.isfinite(mean):
         return AnalysisResult.not_applicable(NAME, "the air holds no finite CT numbers")
     body_noise = body_noise_hu(volume, regions)
     findings = _air_findings(mean, noise, body_noise, s)
 
-    maps = matched_filter_scales(hu, air, mean, volume.spacing_mm, s, float(s["min_air_noise_hu"]))
+    sums -= np.float32(mean) * counts  # contrast above the air, summed over each block's air
+    maps = matched_filter_scales(sums, counts, base, volume.spacing_mm, s, float(s["min_air_noise_hu"]), hu.shape[0])
+    del sums, counts
     mode = s["single_slice_mode"]
-    ctx = Context(regions, _margin_px(volume, regions), (hu.shape[0] == 1) if mode == "auto" else bool(mode), hu.shape[0])
+    ctx = Context(
+        regions,
+        _margin_px(volume, regions),
+        (hu.shape[0] == 1) if mode == "auto" else bool(mode),
+        hu.shape[0],
+        grid_px=(max(base[1:]) + 1) // 2,
+    )
     structures: list[dict[str, Any]] = []
     labels = None
     if maps:
-        mask0, base, boxes0 = combine_scales_boxes(maps, float(s["grow_sigma"]))
+        lab0, base0, boxes0 = combine_scales_boxes(maps, float(s["grow_sigma"]))
         del maps
-        full, n = full_resolution_labels(mask0, base, air)
-        if n:
-            outer = [None if b is None else scaled_box(b, base, full.shape) for b in boxes0[:n]]
-            del mask0
-            objects = tight_boxes(full, n, outer)
-            structures = measure_structures(volume, full, n, mean, noise, ctx, s, objects)
-            structures = _limit(structures, int(s["max_structures"]))
-            labels = _renumber(full, structures, n) if structures else None
+        found = measure_structures(volume, air, lab0, boxes0, base0, mean, noise, ctx, s)
+        kept = {id(st) for st in _limit([f[0] for f in found], int(s["max_structures"]))}
+        found = [f for f in found if id(f[0]) in kept]
+        for new_id, (st, _, _) in enumerate(found, start=1):
+            st.pop("label")
+            st["id"] = new_id
+        structures = [f[0] for f in found]
+        labels = label_overlay(hu.shape, found) if found else None
 
     body_mm = volume.index_to_patient(regions.body_centroid_zyx_vox) if regions.has_body else None
     points = []
