@@ -68,6 +68,17 @@ lines: offsets whose robust z-score exceeds ``segment_z``; each line's extent is
 longest run along it where the local mean keeps the line's sign and reaches
 ``segment_keep`` of the line's mean amplitude.
 
+Cost of the screen. The screen runs on every slice, so its smooth fields are estimated
+on coarser grids: the soft weight near masked pixels on 2 x 2 blocks of the screen
+grid, the local noise level on 8 x 8 blocks (each with a Gaussian whose variance, with
+the block mean and the bilinear interpolation back, is that of the full-grid filter),
+and the fill value and the robust noise scale from sub-grids of at most
+``ROBUST_SAMPLES`` pixels. The high-pass residual, the strong edges and the spectrum
+stay on the screen grid. These are estimates of the same quantities, so the indices
+differ slightly from a full-grid computation (a documented method choice); the
+record's keys and meaning are unchanged. Dense-pair lines and the localisation of
+flagged slices use the full-grid texture (:func:`slice_texture`).
+
 References
 ----------
 .. [1] A. C. Kak and M. Slaney, *Principles of Computerized Tomographic Imaging*,
@@ -176,6 +187,7 @@ class SpectralBins:
     cell: np.ndarray  # ring * n_bins + orientation bin, per sample
     ring: np.ndarray  # ring index per sample
     ring_count: np.ndarray  # samples per ring
+    angle_bin: np.ndarray  # orientation bin per sample
     bin_count: np.ndarray  # samples per orientation bin
     line_angle_deg: np.ndarray  # orientation of the carried image lines, per rfft2 sample (full array)
     radius: np.ndarray  # |k| cycles/px, per rfft2 sample (full array)
@@ -220,6 +232,7 @@ def spectral_bins(shape: tuple[int, int], band: tuple[float, float], bin_deg: fl
         cell=cell,
         ring=ring,
         ring_count=np.bincount(ring, minlength=n_rings).astype(np.float64),
+        angle_bin=ang_bin.ravel()[sample],
         bin_count=np.bincount(ang_bin.ravel()[sample], minlength=n_bins).astype(np.float64),
         line_angle_deg=angle,
         radius=radius,
@@ -268,23 +281,36 @@ class SliceTexture:
 
 
 def bin_slice(image: np.ndarray, factor: int) -> np.ndarray:
-    """Mean over ``factor`` x ``factor`` blocks (cropping the remainder)."""
+    """Mean over ``factor`` x ``factor`` blocks (cropping the remainder).
+
+    Rows are summed first (whole contiguous rows), then columns of the much smaller
+    row sums; the full-resolution slice is read once.
+    """
     if factor == 1:
         return image
     ny, nx = (n // factor * factor for n in image.shape)
-    out = np.zeros((ny // factor, nx // factor), dtype=np.float32)
-    for dy in range(factor):
-        for dx in range(factor):
-            out += image[dy:ny:factor, dx:nx:factor]
+    rows = np.add(image[0:ny:factor, :nx], image[1:ny:factor, :nx], dtype=np.float32)
+    for dy in range(2, factor):
+        rows += image[dy:ny:factor, :nx]
+    out = np.add(rows[:, 0::factor], rows[:, 1::factor])
+    for dx in range(2, factor):
+        out += rows[:, dx::factor]
     out *= np.float32(1.0 / (factor * factor))
     return out
 
 
 def bin_mask(mask: np.ndarray, factor: int) -> np.ndarray:
-    """Any-of over ``factor`` x ``factor`` blocks (cropping the remainder)."""
+    """Any-of over ``factor`` x ``factor`` blocks (cropping the remainder).
+
+    For ``factor`` 2 the row pairs are OR-ed and each pair of columns read as one 16-bit
+    word (non-zero if either byte is): two passes over contiguous memory.
+    """
     if factor == 1:
         return mask
     ny, nx = (n // factor * factor for n in mask.shape)
+    if factor == 2 and ny and nx:
+        rows = np.logical_or(mask[0:ny:2, :nx], mask[1:ny:2, :nx])
+        return rows.view(np.uint16) != 0
     out = np.zeros((ny // factor, nx // factor), dtype=bool)
     for dy in range(factor):
         for dx in range(factor):
@@ -499,6 +525,280 @@ def slice_texture(image: np.ndarray, allowed: np.ndarray, cfg: dict[str, Any]) -
 def power(spectrum: np.ndarray) -> np.ndarray:
     """|F|^2 of a complex spectrum, float32."""
     return spectrum.real * spectrum.real + spectrum.imag * spectrum.imag
+
+
+# --------------------------------------------------------------------------- screen (fast)
+# The screen runs on every slice, so it is built from few, cheap passes: the smooth
+# fields (the soft weight near masked pixels, the local noise level) are computed on
+# grids 2 and 8 times coarser than the screen grid and interpolated back linearly; the
+# robust statistics come from subsamples. The localisation of flagged slices keeps the
+# full-resolution texture (:func:`slice_texture`).
+
+#: at most this many samples for a slice's robust statistics (fill value, noise scale)
+ROBUST_SAMPLES = 4096
+#: coarse grid of the local noise level: blocks of this many screen pixels a side
+NOISE_BLOCK_PX = 8
+#: coarse grid of the soft weight near masked pixels
+WEIGHT_BLOCK_PX = 2
+
+
+def mirror_extend(image: np.ndarray, radius: int, axis: int, mode: str) -> np.ndarray:
+    """``image`` extended by ``radius`` samples at both ends of ``axis``.
+
+    ``mode`` "reflect" repeats the edge sample (``d c b a | a b c d``, scipy.ndimage's
+    "reflect"); "constant" pads with zeros.
+    """
+    n = image.shape[axis]
+    shape = list(image.shape)
+    shape[axis] = n + 2 * radius
+    out = np.zeros(shape, dtype=np.float32) if mode == "constant" else np.empty(shape, dtype=np.float32)
+    put = [slice(None)] * 2
+    put[axis] = slice(radius, radius + n)
+    out[tuple(put)] = image
+    if mode != "constant":
+        lo, hi = list(put), list(put)
+        lo[axis], hi[axis] = slice(0, radius), slice(radius + n, None)
+        src_lo, src_hi = [slice(None)] * 2, [slice(None)] * 2
+        src_lo[axis] = slice(radius - 1, None, -1) if radius > 0 else slice(0, 0)
+        src_hi[axis] = slice(n - 1, n - radius - 1 if n - radius - 1 >= 0 else None, -1)
+        out[tuple(lo)] = image[tuple(src_lo)]
+        out[tuple(hi)] = image[tuple(src_hi)]
+    return out
+
+
+def shift_add_blur(image: np.ndarray, sigma_px: float, truncate: float, mode: str = "reflect") -> np.ndarray:
+    """Separable sampled-Gaussian blur of a 2-D image by shifted adds along both axes.
+
+    The kernel is :func:`gaussian_taps`; ``mode`` is "reflect" (as
+    ``scipy.ndimage.gaussian_filter``'s default) or "constant" (zeros outside). Equal to
+    scipy's filter up to float32 rounding; a kernel longer than a side falls back to it.
+
+    References
+    ----------
+    .. [1] scipy.ndimage.gaussian_filter (the same sampled kernel and border rules).
+    """
+    taps = gaussian_taps(float(sigma_px), float(truncate))
+    radius = len(taps) // 2
+    out = np.asarray(image, dtype=np.float32)
+    for axis in (0, 1):
+        if radius == 0:
+            continue
+        if radius > out.shape[axis]:
+            out = ndimage.correlate1d(out, np.asarray(taps), axis=axis, mode=mode).astype(np.float32, copy=False)
+            continue
+        out = _shift_add_axis(mirror_extend(out, radius, axis, mode), taps, axis, out.shape[axis])
+    return out if out is not image else out.copy()
+
+
+def _shift_add_axis(ext: np.ndarray, taps: tuple[float, ...], axis: int, n: int) -> np.ndarray:
+    radius = len(taps) // 2
+
+    def shifted(k: int) -> np.ndarray:
+        return ext[k : k + n] if axis == 0 else ext[:, k : k + n]
+
+    out = shifted(radius) * np.float32(taps[radius])
+    pair = np.empty_like(out)
+    for k in range(radius):
+        np.add(shifted(k), shifted(2 * radius - k), out=pair)
+        pair *= np.float32(taps[k])
+        out += pair
+    return out
+
+
+def block_mean_even(values: np.ndarray, factor: int, pad: str) -> np.ndarray:
+    """Means over ``factor`` x ``factor`` blocks; the sides are first padded to multiples.
+
+    ``pad`` "edge" repeats the last row/column, "zero" adds zeros. ``factor`` is a power
+    of two; the means are taken by halving the grid repeatedly (pairs of rows, then of
+    columns), which reads the input once.
+    """
+    ny, nx = values.shape
+    py, px = -ny % factor, -nx % factor
+    v = np.asarray(values, dtype=np.float32)
+    if py or px:
+        v = np.pad(v, ((0, py), (0, px)), mode="edge" if pad == "edge" else "constant")
+    f = 1
+    while f < factor:
+        v = v[0::2] + v[1::2]
+        v = v[:, 0::2] + v[:, 1::2]
+        f *= 2
+    v *= np.float32(1.0 / (factor * factor))
+    return v
+
+
+def upsample_linear(coarse: np.ndarray, factor: int, shape: tuple[int, int]) -> np.ndarray:
+    """Bilinear interpolation of block-centre values back to the pixels of ``shape``.
+
+    ``coarse[j, i]`` sits at the centre of block (j, i) of ``factor`` pixels a side, i.e.
+    at pixel ``factor * j + (factor - 1) / 2``; beyond the first and last centres the
+    edge value is kept.
+    """
+    out = _upsample_axis(coarse, factor, 1)  # along x on the small grid first,
+    out = _upsample_axis(out, factor, 0)  # then whole rows along y
+    return out[: shape[0], : shape[1]]
+
+
+@functools.lru_cache(maxsize=16)
+def _upsample_weights(factor: int) -> tuple[tuple[int, float], ...]:
+    """Per pixel offset k in a block: (-1, w) toward the previous centre, (+1, w) toward the next."""
+    out = []
+    for k in range(factor):
+        u = (k - (factor - 1) / 2.0) / factor  # offset from the block centre, in blocks
+        out.append((-1 if u < 0 else 1, abs(u)))
+    return tuple(out)
+
+
+def _upsample_axis(coarse: np.ndarray, factor: int, axis: int) -> np.ndarray:
+    """Linear interpolation along ``axis`` from block centres to the ``factor`` pixels of each block."""
+    c = np.asarray(coarse, dtype=np.float32)
+    to_prev = np.empty_like(c)
+    to_next = np.empty_like(c)
+    if axis == 0:
+        to_prev[0] = to_next[-1] = 0.0
+        np.subtract(c[:-1], c[1:], out=to_prev[1:])
+        np.subtract(c[1:], c[:-1], out=to_next[:-1])
+        out = np.empty((c.shape[0] * factor, c.shape[1]), dtype=np.float32)
+    else:
+        to_prev[:, 0] = to_next[:, -1] = 0.0
+        np.subtract(c[:, :-1], c[:, 1:], out=to_prev[:, 1:])
+        np.subtract(c[:, 1:], c[:, :-1], out=to_next[:, :-1])
+        out = np.empty((c.shape[0], c.shape[1] * factor), dtype=np.float32)
+    for k, (side, w) in enumerate(_upsample_weights(factor)):
+        view = out[k::factor] if axis == 0 else out[:, k::factor]
+        np.multiply(to_prev if side < 0 else to_next, np.float32(w), out=view)
+        view += c
+    return out
+
+
+def coarse_soft_weight(bad_fraction: np.ndarray, reach_px: float) -> np.ndarray:
+    """:func:`soft_weight` on the grid of 2 x 2 blocks, from the fraction of bad pixels per block.
+
+    The fraction is blurred by a Gaussian whose variance, together with the block mean
+    (1/4 px^2) and the bilinear interpolation back to the pixels (2/3 px^2), is that of
+    the full-grid blur (SD ``reach_px / 2``); the weight is then
+    ``clip(1 - 20 blur, 0, 1) ** 2`` as in :func:`soft_weight`.
+    """
+    f = WEIGHT_BLOCK_PX
+    if not bad_fraction.any():
+        return np.ones(bad_fraction.shape, dtype=np.float32)
+    var = (0.5 * reach_px) ** 2 - (f * f - 1) / 12.0 - f * f / 6.0
+    blur = shift_add_blur(bad_fraction, math.sqrt(max(var, 0.01)) / f, 2.5)
+    blur *= np.float32(-20.0)
+    blur += np.float32(1.0)
+    np.clip(blur, 0.0, 1.0, out=blur)
+    blur *= blur
+    return blur
+
+
+def coarse_noise_gain(square_mean: np.ndarray, weight: np.ndarray, scale_hu: float, sigma_px: float) -> np.ndarray:
+    """:func:`local_noise_gain` on the grid of 2 x 2 blocks, the local RMS taken over 8 x 8 blocks.
+
+    ``square_mean`` is the mean of the clipped residual squared per 2 x 2 block and
+    ``weight`` the soft weight there; the weighted squares and the weights are averaged
+    over 8 x 8 pixel blocks and smoothed by a Gaussian (zeros outside) whose variance,
+    with the block mean (63/12 px^2) and the bilinear interpolation back (64/6 px^2), is
+    ``sigma_px**2``; the gain ``scale / max(RMS, scale / 4)`` is formed at the 8 x 8
+    block centres and interpolated back to the 2 x 2 grid.
+
+    References
+    ----------
+    .. [1] Kak & Slaney (1988), ch. 5 (noise of filtered back-projection depends on the
+       attenuation along each ray).
+    """
+    k = NOISE_BLOCK_PX // WEIGHT_BLOCK_PX
+    num = block_mean_even(square_mean * (weight * weight), k, "zero")
+    den = block_mean_even(weight, k, "zero")
+    f = NOISE_BLOCK_PX
+    var = sigma_px * sigma_px - (f * f - 1) / 12.0 - f * f / 6.0
+    s = math.sqrt(max(var, 0.01)) / f
+    num = shift_add_blur(num, s, 3.0, "constant")
+    den = shift_add_blur(den, s, 3.0, "constant")
+    np.maximum(den, np.float32(1e-3), out=den)
+    np.divide(num, den, out=num)
+    np.sqrt(num, out=num)
+    np.maximum(num, np.float32(0.25 * scale_hu), out=num)
+    gain = np.divide(np.float32(scale_hu), num, out=num)
+    return upsample_linear(gain, k, weight.shape)
+
+
+def grid_subsample(values: np.ndarray, mask: np.ndarray, max_samples: int, count: int | None = None) -> np.ndarray:
+    """Values under ``mask`` on a regular sub-grid of at most about ``max_samples`` points.
+
+    The grid step is ``sqrt(count / max_samples)`` (whole pixels, at least 1), ``count``
+    being the number of pixels under the mask; without it the array size is used (fewer
+    samples when the mask covers part of the array, no pass to count them).
+    """
+    n = mask.size if count is None else count
+    step = max(1, int(math.sqrt(n / max(1, max_samples))))
+    return values[::step, ::step][mask[::step, ::step]]
+
+
+def screen_texture(image: np.ndarray, allowed: np.ndarray, cfg: dict[str, Any]) -> np.ndarray | None:
+    """The screen's edge-suppressed, clipped, noise-equalised residual of a binned slice.
+
+    The same steps as :func:`slice_texture` (see the module docstring): the high-pass
+    residual and the strong edges on the screen grid; the soft weight and the local
+    noise gain, which are smooth, on the grid of 2 x 2 blocks (:func:`coarse_soft_weight`,
+    :func:`coarse_noise_gain`), their product interpolated back bilinearly; the fill
+    value and the noise scale from a sub-grid of at most :data:`ROBUST_SAMPLES` pixels.
+    None if too few pixels are left.
+    """
+    finite = np.isfinite(image)
+    all_finite = bool(finite.all())
+    valid = allowed if all_finite else allowed & finite
+    min_count = cfg["min_weight_fraction"] * image.size
+    if np.count_nonzero(valid) < min_count:
+        return None
+    img = image
+    if not all_finite or not allowed.all():
+        sample = grid_subsample(image, valid, ROBUST_SAMPLES)
+        fill = float(np.median(sample)) if sample.size else float(np.median(image[valid]))
+        img = np.where(valid, image, np.float32(fill))
+    sigma = float(cfg["highpass_sigma_px"])
+    smoothed = shift_add_blur(img, sigma, 3.0)
+    residual = np.subtract(img, smoothed, dtype=np.float32)
+    bad = strong_edges(smoothed, float(cfg["edge_step_hu"]), sigma)
+    bad |= ~valid
+    weight = coarse_soft_weight(block_mean_even(bad.view(np.uint8), WEIGHT_BLOCK_PX, "edge"), 2.0 * sigma + 2.0)
+    inside = weight > 0.5
+    n_inside = int(np.count_nonzero(inside))
+    if n_inside * WEIGHT_BLOCK_PX**2 < min_count:
+        return None
+    f = WEIGHT_BLOCK_PX
+    sample = np.abs(grid_subsample(residual[::f, ::f], inside, ROBUST_SAMPLES, n_inside))
+    scale = 1.4826 * float(np.median(sample)) if sample.size else 0.0
+    if not scale > 0 or not math.isfinite(scale):
+        return None
+    limit = np.float32(cfg["clip_sigma"] * scale)
+    np.minimum(residual, limit, out=residual)
+    np.maximum(residual, -limit, out=residual)
+    reach_eq = float(cfg["noise_equalise_sigma_px"])
+    if reach_eq > 0:
+        weight = weight * coarse_noise_gain(block_mean_even(residual * residual, f, "edge"), weight, scale, reach_eq)
+    residual *= upsample_linear(weight, f, residual.shape)
+    return residual
+
+
+def band_power(spectrum: np.ndarray, bins: SpectralBins) -> np.ndarray:
+    """|F|^2 of the in-band samples of an rfft2 spectrum (in ``bins.sample`` order)."""
+    v = spectrum.ravel()[bins.sample]
+    return (v.real * v.real + v.imag * v.imag).astype(np.float64)
+
+
+def profile_of_band_power(flat: np.ndarray, bins: SpectralBins) -> np.ndarray | None:
+    """:func:`angular_profile` of in-band powers already gathered by :func:`band_power`.
+
+    One sum per (ring, orientation) cell; the ring means and the whitened sums per
+    orientation follow from that small table (the same sums as :func:`angular_profile`).
+    """
+    cells = np.bincount(bins.cell, weights=flat, minlength=bins.n_rings * bins.n_bins).reshape(bins.n_rings, bins.n_bins)
+    ring_mean = cells.sum(axis=1) / np.maximum(bins.ring_count, 1)
+    if not np.all(np.isfinite(ring_mean)) or ring_mean.max() <= 0:
+        return None
+    inv = np.where(ring_mean > 0, 1.0 / np.where(ring_mean > 0, ring_mean, 1.0), 0.0)
+    profile = (inv @ cells) / np.maximum(bins.bin_count, 1)
+    mean = profile.mean()
+    return profile / mean if mean > 0 else None
 
 
 # --------------------------------------------------------------------------- directions
@@ -904,13 +1204,46 @@ def allowed_mask(regions: Regions | None, z: int, factor: int, shape_b: tuple[in
     if regions is None:
         return allowed
     if regions.table[z].any():
-        table = bin_mask(regions.table[z], factor)
-        allowed &= ~grow(table, 2)
-        allowed &= ~table_band(table, int(cfg["table_band_px"]))
+        allowed &= ~table_exclusion(bin_mask(regions.table[z], factor), int(cfg["table_band_px"]))
     body = bin_mask(regions.body[z], factor)
     if body.any():
         allowed &= ~inner_boundary(body)
     return allowed
+
+
+def table_exclusion(table: np.ndarray, band_px: int) -> np.ndarray:
+    """Binned pixels left out for the table: the table grown by 2 px and its :func:`table_band`."""
+    return grow(table, 2) | table_band(table, band_px)
+
+
+class AllowedMasks:
+    """:func:`allowed_mask` of every slice, the table's part computed once per distinct table.
+
+    The couch is usually the same on every slice, so its exclusion (a dilation and a
+    band) is kept per distinct binned table mask; the body outline is taken per slice.
+    """
+
+    def __init__(self, regions: Regions | None, factor: int, shape_b: tuple[int, int], cfg: dict[str, Any]) -> None:
+        self.regions, self.factor, self.cfg = regions, factor, cfg
+        self.base = base_allowed_mask(regions, factor, shape_b, cfg)
+        self._tables: dict[bytes, np.ndarray] = {}
+
+    def __call__(self, z: int) -> np.ndarray:
+        regions = self.regions
+        if _fov_only(regions, z):
+            return self.base
+        allowed = self.base.copy()
+        if regions.table[z].any():
+            table = bin_mask(regions.table[z], self.factor)
+            key = np.packbits(table).tobytes()
+            excluded = self._tables.get(key)
+            if excluded is None:
+                excluded = self._tables.setdefault(key, table_exclusion(table, int(self.cfg["table_band_px"])))
+            allowed &= ~excluded
+        body = bin_mask(regions.body[z], self.factor)
+        if body.any():
+            allowed &= ~inner_boundary(body)
+        return allowed
 
 
 def table_band(table: np.ndarray, margin_px: int) -> np.ndarray:
@@ -1029,11 +1362,10 @@ def screen_volume(volume: Volume, regions: Regions | None, cfg: dict[str, Any]) 
     factor = screen_factor((ny, nx), int(cfg["screen_max_px"]))
     shape_b = (ny // factor, nx // factor)
     bins = spectral_bins(shape_b, tuple(float(v) for v in cfg["band_cycles_per_px"]), float(cfg["angle_bin_deg"]))
-    base = base_allowed_mask(regions, factor, shape_b, cfg)
+    masks = AllowedMasks(regions, factor, shape_b, cfg)
 
     def one(z: int) -> np.ndarray | str:
-        allowed = base if _fov_only(regions, z) else allowed_mask(regions, z, factor, shape_b, cfg, base)
-        return screen_slice(volume.hu[z], allowed, factor, bins, cfg)
+        return screen_slice(volume.hu[z], masks(z), factor, bins, cfg)
 
     outcomes = map_slices(one, nz, SCREEN_THREADS)
     profiles: dict[int, np.ndarray] = {}
@@ -1049,11 +1381,14 @@ def screen_volume(volume: Volume, regions: Regions | None, cfg: dict[str, Any]) 
 
 def screen_slice(image: np.ndarray, allowed: np.ndarray, factor: int, bins: SpectralBins, cfg: dict[str, Any]) -> np.ndarray | str:
     """Angular profile of one full-resolution slice, or why it was skipped (a ``Screen.skipped`` key)."""
-    kind = _unusable(image)
+    binned = bin_slice(image, factor)
+    kind = _unusable(binned, image)
     if kind:
         return kind
-    texture = slice_texture(bin_slice(image, factor), allowed, cfg)
-    profile = angular_profile(power(texture.spectrum), bins) if texture is not None else None
+    texture = screen_texture(binned, allowed, cfg)
+    profile = None
+    if texture is not None:
+        profile = profile_of_band_power(band_power(sfft.rfft2(texture), bins), bins)
     return "without usable pixels" if profile is None else profile
 
 
@@ -1084,7 +1419,17 @@ def slice_index_with_neighbours(profiles: dict[int, np.ndarray], z: int, neighbo
     return min(index, streak_index_of_profile(mixed))
 
 
-def _unusable(image: np.ndarray) -> str | None:
+def _unusable(binned: np.ndarray, image: np.ndarray) -> str | None:
+    """"non-finite" or "constant" if the full-resolution ``image`` is so, else None.
+
+    Decided on the block means ``binned`` when they suffice (a finite, non-constant
+    block mean implies finite, non-constant pixels); the full slice is read otherwise.
+    """
+    finite = np.isfinite(binned)
+    if finite.any():
+        values = binned[finite] if not finite.all() else binned
+        if float(values.max()) != float(values.min()):
+            return None
     finite = np.isfinite(image)
     if not finite.any():
         return "non-finite"
