@@ -156,3 +156,97 @@ def test_two_equal_components_pick_the_one_ndimage_labels_first() -> None:
     body, table, air, _ = reference_regions(volume)
     assert fast.body[0, 35, 10] and not fast.body[1, 15, 45]
     assert np.array_equal(fast.body, body) and np.array_equal(fast.air, air)
+
+
+# --------------------------------------------------------------------------- coarse grid
+def _outline_band(mask: np.ndarray) -> np.ndarray:
+    """Pixels within one pixel (8-neighbourhood, in-plane) of the outline of ``mask``."""
+    st = np.zeros((3, 3, 3), dtype=bool)
+    st[1] = ndimage.generate_binary_structure(2, 2)
+    outline = (mask ^ ndimage.binary_erosion(mask, st)) | (ndimage.binary_dilation(mask, st) ^ mask)
+    return ndimage.binary_dilation(outline, st)
+
+
+@pytest.mark.parametrize("name", ["torso_clean", "qa_phantom"])
+def test_coarse_body_stays_within_one_pixel_of_full_resolution(name: str) -> None:
+    """The coarse-grid body against the full-resolution method on a demo torso and a demo
+    phantom (the committed 256 x 256 x 16 series): every voxel where they differ lies
+    within one pixel of the full-resolution outline; table, centroid and the recorded
+    counts agree."""
+    from pathlib import Path
+
+    from reconaudit.checker.load import load_path
+
+    folder = Path(__file__).resolve().parents[2] / "sample_volumes" / "fernhollow" / "20240611" / name
+    volume = load_path(folder)[0]
+    coarse = find_regions(volume, coarse=True)
+    full = find_regions(volume, coarse=False)
+    differ = coarse.body ^ full.body
+    assert not (differ & ~_outline_band(full.body)).any()
+    assert differ.sum() <= 0.001 * full.body.sum()
+    assert (coarse.table ^ full.table).sum() <= 0.01 * max(1, full.table.sum())
+    assert np.allclose(coarse.body_centroid_zyx_vox, full.body_centroid_zyx_vox, atol=0.5)
+    facts = coarse.facts()
+    assert facts["body_voxels"] == int(coarse.body.sum())
+    assert facts["table_voxels"] == int(coarse.table.sum())
+    assert facts["air_voxels"] == int(coarse.air.sum())
+    assert np.allclose(coarse.body_centroid_zyx_vox, centroid_of(coarse.body), atol=1e-9)
+
+
+def test_coarse_grid_on_a_large_random_phantom_keeps_outline_and_air_exact_given_body() -> None:
+    """A 256 x 256 random phantom (uses the coarse grid by default): the body outline is
+    within one pixel of the full-resolution one, and the air is exactly the field of view
+    outside body and table grown by the margin (``maximum_filter`` reference)."""
+    volume = random_phantom(4, nz=5, n=256)
+    fast = find_regions(volume)
+    body, table, _, _ = reference_regions(volume)
+    assert not ((fast.body ^ body) & ~_outline_band(body)).any()
+    half = max(1, int(round(4.0 / min(volume.spacing_mm[1:]))))
+    grown = ndimage.maximum_filter(fast.body | fast.table, size=(1, 2 * half + 1, 2 * half + 1))
+    expected_air = ~grown & fast.fov[None]
+    if volume.padding_mask is not None:
+        expected_air &= ~volume.padding_mask[None]
+    assert np.array_equal(fast.air, expected_air)
+
+
+def test_block_counts_equal_plain_block_sums() -> None:
+    rng = np.random.default_rng(11)
+    hu = rng.normal(-500.0, 300.0, (3, 16, 24)).astype(np.float32)
+    fov = rng.random((16, 24)) > 0.2
+    from reconaudit.checker.regions import block_counts
+
+    dense = (hu > -500.0) & fov[None]
+    expected = dense.reshape(3, 4, 4, 6, 4).sum(axis=(2, 4))
+    assert np.array_equal(block_counts(hu, fov, -500.0, chunk=2), expected)
+
+
+def test_packed_dilation_equals_maximum_filter() -> None:
+    from reconaudit.checker.regions import _or_bits, _packed, _unpacked
+
+    rng = np.random.default_rng(12)
+    for nx in (1, 7, 64, 100, 130):
+        for half in (1, 4, 63, 64, 70):
+            mask = rng.random((2, 3, nx)) > 0.95
+            expected = ndimage.maximum_filter(mask, size=(1, 1, 2 * half + 1))
+            assert np.array_equal(_unpacked(_or_bits(_packed(mask), half), nx), expected)
+
+
+def test_fov_slices_pick_a_slice_whose_padding_differs() -> None:
+    """The padding screen reads first, middle and last slices, and any slice whose
+    padding differs from the first slice's; the field of view then matches the plain
+    every-slice rule."""
+    from reconaudit.checker.regions import fov_slices
+
+    n, nz = 64, 9
+    inside = _disc_mask(n, 31.5, 31.5, 30)
+    hu = np.where(inside, -1000.0, -3024.0).astype(np.float32)[None].repeat(nz, 0)
+    hu[6, 20:28, 0:8] = -1000.0  # one slice has fewer padded pixels in a corner
+    assert set(fov_slices(hu).tolist()) == {0, 4, 6, 8}
+    fov, _ = find_fov(Volume.from_array(hu))
+    expected = ndimage.binary_fill_holes(~(hu < -1500.0).all(axis=0))
+    assert np.array_equal(fov, expected)
+
+
+def _disc_mask(n: int, cy: float, cx: float, r: float) -> np.ndarray:
+    y, x = np.mgrid[0:n, 0:n]
+    return (y - cy) ** 2 + (x - cx) ** 2 <= r * r
