@@ -26,7 +26,7 @@ from ..errors import ProfileError
 from ..regions import Regions
 from ..results import AnalysisResult, Finding, Overlays, Roi, Severity
 from ..volume import Volume
-from ._phantom import find_phantom
+from ._phantom import count_nonfinite, find_phantom
 
 NAME = "uniformity"
 
@@ -149,8 +149,7 @@ def analyse(volume: Volume, regions: Regions, settings: dict[str, Any] | None = 
     e.g. IEC 61223-3-5 (from memory).
     """
     s = _settings(settings)
-    # a float64 sum of finite float32 values is finite: count only when it is not
-    bad = 0 if np.isfinite(volume.hu.sum(dtype=np.float64)) else int((~np.isfinite(volume.hu)).sum())
+    bad = count_nonfinite(volume, regions)  # one pass, shared with the noise analysis
     if bad:
         return AnalysisResult.not_applicable(NAME, f"volume contains {bad} NaN or infinite voxels")
     rois = _layout(volume, regions, s)
