@@ -415,14 +415,18 @@ def _masked_plane_sum(h: np.ndarray, a: np.ndarray, out: np.ndarray) -> np.ndarr
     whose mask differs from it in a later slice (few: the body changes slowly along z)
     are put right one by one.
     """
+    with np.errstate(invalid="ignore"):  # inf x 0 outside the air: the caller checks the block sums
+        return _masked_plane_sum_unchecked(h, a, out)
+
+
+def _masked_plane_sum_unchecked(h: np.ndarray, a: np.ndarray, out: np.ndarray) -> np.ndarray:
     a0 = a[0]
     if h.shape[0] == 1:
         return np.multiply(h[0], a0.view(np.uint8), out=out, casting="unsafe")
     np.add(h[0], h[1], out=out, casting="unsafe")
     for k in range(2, h.shape[0]):
         np.add(out, h[k], out=out, casting="unsafe")
-    with np.errstate(invalid="ignore"):
-        np.multiply(out, a0.view(np.uint8), out=out, casting="unsafe")
+    np.multiply(out, a0.view(np.uint8), out=out, casting="unsafe")
     flat = out.reshape(-1)
     for k in range(1, h.shape[0]):
         idx = _changed_pixels(a[k], a0)
