@@ -188,6 +188,7 @@ class SpectralBins:
     ring: np.ndarray  # ring index per sample
     ring_count: np.ndarray  # samples per ring
     angle_bin: np.ndarray  # orientation bin per sample
+    cell_matrix: Any  # sparse (cells x rfft2 samples), 1 where a sample is in a cell
     bin_count: np.ndarray  # samples per orientation bin
     line_angle_deg: np.ndarray  # orientation of the carried image lines, per rfft2 sample (full array)
     radius: np.ndarray  # |k| cycles/px, per rfft2 sample (full array)
@@ -233,10 +234,19 @@ def spectral_bins(shape: tuple[int, int], band: tuple[float, float], bin_deg: fl
         ring=ring,
         ring_count=np.bincount(ring, minlength=n_rings).astype(np.float64),
         angle_bin=ang_bin.ravel()[sample],
+        cell_matrix=_cell_matrix(cell, sample, n_rings * n_bins, radius.size),
         bin_count=np.bincount(ang_bin.ravel()[sample], minlength=n_bins).astype(np.float64),
         line_angle_deg=angle,
         radius=radius,
     )
+
+
+def _cell_matrix(cell: np.ndarray, sample: np.ndarray, n_cells: int, n_samples: int) -> Any:
+    """Sparse (cells x rfft2 samples) matrix with a 1 where a sample belongs to a cell."""
+    from scipy import sparse
+
+    ones = np.ones(sample.size, dtype=np.float64)
+    return sparse.csr_matrix((ones, (cell, sample)), shape=(n_cells, n_samples))
 
 
 def angular_profile(spectrum_power: np.ndarray, bins: SpectralBins) -> np.ndarray | None:
@@ -281,20 +291,20 @@ class SliceTexture:
 
 
 def bin_slice(image: np.ndarray, factor: int) -> np.ndarray:
-    """Mean over ``factor`` x ``factor`` blocks (cropping the remainder).
+    """Mean over ``factor`` x ``factor`` blocks of the last two axes (cropping the remainder).
 
     Rows are summed first (whole contiguous rows), then columns of the much smaller
     row sums; the full-resolution slice is read once.
     """
     if factor == 1:
         return image
-    ny, nx = (n // factor * factor for n in image.shape)
-    rows = np.add(image[0:ny:factor, :nx], image[1:ny:factor, :nx], dtype=np.float32)
+    ny, nx = (n // factor * factor for n in image.shape[-2:])
+    rows = np.add(image[..., 0:ny:factor, :nx], image[..., 1:ny:factor, :nx], dtype=np.float32)
     for dy in range(2, factor):
-        rows += image[dy:ny:factor, :nx]
-    out = np.add(rows[:, 0::factor], rows[:, 1::factor])
+        rows += image[..., dy:ny:factor, :nx]
+    out = np.add(rows[..., 0::factor], rows[..., 1::factor])
     for dx in range(2, factor):
-        out += rows[:, dx::factor]
+        out += rows[..., dx::factor]
     out *= np.float32(1.0 / (factor * factor))
     return out
 
@@ -531,8 +541,10 @@ def power(spectrum: np.ndarray) -> np.ndarray:
 # The screen runs on every slice, so it is built from few, cheap passes: the smooth
 # fields (the soft weight near masked pixels, the local noise level) are computed on
 # grids 2 and 8 times coarser than the screen grid and interpolated back linearly; the
-# robust statistics come from subsamples. The localisation of flagged slices keeps the
-# full-resolution texture (:func:`slice_texture`).
+# robust statistics come from sub-grids; slices go through in stacks of
+# ``SCREEN_STACK`` (one array operation for all of them). The localisation of flagged
+# slices keeps the full-grid texture (:func:`slice_texture`). Every helper below works
+# on the last two axes of a 2-D slice or a 3-D stack of slices.
 
 #: at most this many samples for a slice's robust statistics (fill value, noise scale)
 ROBUST_SAMPLES = 4096
@@ -540,38 +552,43 @@ ROBUST_SAMPLES = 4096
 NOISE_BLOCK_PX = 8
 #: coarse grid of the soft weight near masked pixels
 WEIGHT_BLOCK_PX = 2
+#: slices screened together as one stack
+SCREEN_STACK = 4
+
+
+def _along(axis: int, index: slice, ndim: int) -> tuple[slice, ...]:
+    """An index that applies ``index`` along ``axis`` (negative, from the end) of an ``ndim`` array."""
+    out = [slice(None)] * ndim
+    out[axis] = index
+    return tuple(out)
 
 
 def mirror_extend(image: np.ndarray, radius: int, axis: int, mode: str) -> np.ndarray:
-    """``image`` extended by ``radius`` samples at both ends of ``axis``.
+    """``image`` (float32) extended by ``radius`` samples at both ends of ``axis``.
 
     ``mode`` "reflect" repeats the edge sample (``d c b a | a b c d``, scipy.ndimage's
     "reflect"); "constant" pads with zeros.
     """
+    nd = image.ndim
     n = image.shape[axis]
     shape = list(image.shape)
     shape[axis] = n + 2 * radius
     out = np.zeros(shape, dtype=np.float32) if mode == "constant" else np.empty(shape, dtype=np.float32)
-    put = [slice(None)] * 2
-    put[axis] = slice(radius, radius + n)
-    out[tuple(put)] = image
-    if mode != "constant":
-        lo, hi = list(put), list(put)
-        lo[axis], hi[axis] = slice(0, radius), slice(radius + n, None)
-        src_lo, src_hi = [slice(None)] * 2, [slice(None)] * 2
-        src_lo[axis] = slice(radius - 1, None, -1) if radius > 0 else slice(0, 0)
-        src_hi[axis] = slice(n - 1, n - radius - 1 if n - radius - 1 >= 0 else None, -1)
-        out[tuple(lo)] = image[tuple(src_lo)]
-        out[tuple(hi)] = image[tuple(src_hi)]
+    out[_along(axis, slice(radius, radius + n), nd)] = image
+    if mode != "constant" and radius > 0:
+        out[_along(axis, slice(0, radius), nd)] = image[_along(axis, slice(radius - 1, None, -1), nd)]
+        stop = n - radius - 1
+        out[_along(axis, slice(radius + n, None), nd)] = image[_along(axis, slice(n - 1, stop if stop >= 0 else None, -1), nd)]
     return out
 
 
 def shift_add_blur(image: np.ndarray, sigma_px: float, truncate: float, mode: str = "reflect") -> np.ndarray:
-    """Separable sampled-Gaussian blur of a 2-D image by shifted adds along both axes.
+    """Separable sampled-Gaussian blur over the last two axes by shifted adds.
 
     The kernel is :func:`gaussian_taps`; ``mode`` is "reflect" (as
     ``scipy.ndimage.gaussian_filter``'s default) or "constant" (zeros outside). Equal to
-    scipy's filter up to float32 rounding; a kernel longer than a side falls back to it.
+    scipy's filter of each slice up to float32 rounding; a kernel longer than a side
+    falls back to scipy.
 
     References
     ----------
@@ -580,7 +597,7 @@ def shift_add_blur(image: np.ndarray, sigma_px: float, truncate: float, mode: st
     taps = gaussian_taps(float(sigma_px), float(truncate))
     radius = len(taps) // 2
     out = np.asarray(image, dtype=np.float32)
-    for axis in (0, 1):
+    for axis in (-2, -1):
         if radius == 0:
             continue
         if radius > out.shape[axis]:
@@ -592,9 +609,10 @@ def shift_add_blur(image: np.ndarray, sigma_px: float, truncate: float, mode: st
 
 def _shift_add_axis(ext: np.ndarray, taps: tuple[float, ...], axis: int, n: int) -> np.ndarray:
     radius = len(taps) // 2
+    nd = ext.ndim
 
     def shifted(k: int) -> np.ndarray:
-        return ext[k : k + n] if axis == 0 else ext[:, k : k + n]
+        return ext[_along(axis, slice(k, k + n), nd)]
 
     out = shifted(radius) * np.float32(taps[radius])
     pair = np.empty_like(out)
@@ -606,36 +624,37 @@ def _shift_add_axis(ext: np.ndarray, taps: tuple[float, ...], axis: int, n: int)
 
 
 def block_mean_even(values: np.ndarray, factor: int, pad: str) -> np.ndarray:
-    """Means over ``factor`` x ``factor`` blocks; the sides are first padded to multiples.
+    """Means over ``factor`` x ``factor`` blocks of the last two axes, sides padded to multiples.
 
     ``pad`` "edge" repeats the last row/column, "zero" adds zeros. ``factor`` is a power
     of two; the means are taken by halving the grid repeatedly (pairs of rows, then of
     columns), which reads the input once.
     """
-    ny, nx = values.shape
+    ny, nx = values.shape[-2:]
     py, px = -ny % factor, -nx % factor
     v = np.asarray(values, dtype=np.float32)
     if py or px:
-        v = np.pad(v, ((0, py), (0, px)), mode="edge" if pad == "edge" else "constant")
+        widths = [(0, 0)] * (v.ndim - 2) + [(0, py), (0, px)]
+        v = np.pad(v, widths, mode="edge" if pad == "edge" else "constant")
     f = 1
     while f < factor:
-        v = v[0::2] + v[1::2]
-        v = v[:, 0::2] + v[:, 1::2]
+        v = v[..., 0::2, :] + v[..., 1::2, :]
+        v = v[..., 0::2] + v[..., 1::2]
         f *= 2
     v *= np.float32(1.0 / (factor * factor))
     return v
 
 
 def upsample_linear(coarse: np.ndarray, factor: int, shape: tuple[int, int]) -> np.ndarray:
-    """Bilinear interpolation of block-centre values back to the pixels of ``shape``.
+    """Bilinear interpolation of block-centre values back to the pixels of ``shape`` (last two axes).
 
-    ``coarse[j, i]`` sits at the centre of block (j, i) of ``factor`` pixels a side, i.e.
-    at pixel ``factor * j + (factor - 1) / 2``; beyond the first and last centres the
-    edge value is kept.
+    ``coarse[..., j, i]`` sits at the centre of block (j, i) of ``factor`` pixels a
+    side, i.e. at pixel ``factor * j + (factor - 1) / 2``; beyond the first and last
+    centres the edge value is kept.
     """
-    out = _upsample_axis(coarse, factor, 1)  # along x on the small grid first,
-    out = _upsample_axis(out, factor, 0)  # then whole rows along y
-    return out[: shape[0], : shape[1]]
+    out = _upsample_axis(coarse, factor, -1)  # along x on the small grid first,
+    out = _upsample_axis(out, factor, -2)  # then whole rows along y
+    return out[..., : shape[0], : shape[1]]
 
 
 @functools.lru_cache(maxsize=16)
@@ -651,20 +670,18 @@ def _upsample_weights(factor: int) -> tuple[tuple[int, float], ...]:
 def _upsample_axis(coarse: np.ndarray, factor: int, axis: int) -> np.ndarray:
     """Linear interpolation along ``axis`` from block centres to the ``factor`` pixels of each block."""
     c = np.asarray(coarse, dtype=np.float32)
+    nd = c.ndim
     to_prev = np.empty_like(c)
     to_next = np.empty_like(c)
-    if axis == 0:
-        to_prev[0] = to_next[-1] = 0.0
-        np.subtract(c[:-1], c[1:], out=to_prev[1:])
-        np.subtract(c[1:], c[:-1], out=to_next[:-1])
-        out = np.empty((c.shape[0] * factor, c.shape[1]), dtype=np.float32)
-    else:
-        to_prev[:, 0] = to_next[:, -1] = 0.0
-        np.subtract(c[:, :-1], c[:, 1:], out=to_prev[:, 1:])
-        np.subtract(c[:, 1:], c[:, :-1], out=to_next[:, :-1])
-        out = np.empty((c.shape[0], c.shape[1] * factor), dtype=np.float32)
+    to_prev[_along(axis, slice(0, 1), nd)] = 0.0
+    to_next[_along(axis, slice(-1, None), nd)] = 0.0
+    np.subtract(c[_along(axis, slice(None, -1), nd)], c[_along(axis, slice(1, None), nd)], out=to_prev[_along(axis, slice(1, None), nd)])
+    np.subtract(c[_along(axis, slice(1, None), nd)], c[_along(axis, slice(None, -1), nd)], out=to_next[_along(axis, slice(None, -1), nd)])
+    shape = list(c.shape)
+    shape[axis] *= factor
+    out = np.empty(shape, dtype=np.float32)
     for k, (side, w) in enumerate(_upsample_weights(factor)):
-        view = out[k::factor] if axis == 0 else out[:, k::factor]
+        view = out[_along(axis, slice(k, None, factor), nd)]
         np.multiply(to_prev if side < 0 else to_next, np.float32(w), out=view)
         view += c
     return out
@@ -679,8 +696,6 @@ def coarse_soft_weight(bad_fraction: np.ndarray, reach_px: float) -> np.ndarray:
     ``clip(1 - 20 blur, 0, 1) ** 2`` as in :func:`soft_weight`.
     """
     f = WEIGHT_BLOCK_PX
-    if not bad_fraction.any():
-        return np.ones(bad_fraction.shape, dtype=np.float32)
     var = (0.5 * reach_px) ** 2 - (f * f - 1) / 12.0 - f * f / 6.0
     blur = shift_add_blur(bad_fraction, math.sqrt(max(var, 0.01)) / f, 2.5)
     blur *= np.float32(-20.0)
@@ -690,15 +705,34 @@ def coarse_soft_weight(bad_fraction: np.ndarray, reach_px: float) -> np.ndarray:
     return blur
 
 
-def coarse_noise_gain(square_mean: np.ndarray, weight: np.ndarray, scale_hu: float, sigma_px: float) -> np.ndarray:
+@functools.lru_cache(maxsize=16)
+def gaussian_matrix(n: int, sigma: float, truncate: float) -> np.ndarray:
+    """``(n, n)`` matrix of the sampled Gaussian blur with zeros outside (small grids only).
+
+    ``G @ x`` equals ``scipy.ndimage.correlate1d(x, gaussian_taps(sigma, truncate),
+    mode="constant")`` along the first axis.
+    """
+    taps = np.asarray(gaussian_taps(float(sigma), float(truncate)), dtype=np.float32)
+    radius = taps.size // 2
+    out = np.zeros((n, n), dtype=np.float32)
+    for k, t in enumerate(taps):
+        d = k - radius
+        idx = np.arange(max(0, -d), min(n, n - d))
+        out[idx, idx + d] = t
+    out.flags.writeable = False
+    return out
+
+
+def coarse_noise_gain(square_mean: np.ndarray, weight: np.ndarray, scale_hu: np.ndarray | float, sigma_px: float) -> np.ndarray:
     """:func:`local_noise_gain` on the grid of 2 x 2 blocks, the local RMS taken over 8 x 8 blocks.
 
     ``square_mean`` is the mean of the clipped residual squared per 2 x 2 block and
-    ``weight`` the soft weight there; the weighted squares and the weights are averaged
-    over 8 x 8 pixel blocks and smoothed by a Gaussian (zeros outside) whose variance,
-    with the block mean (63/12 px^2) and the bilinear interpolation back (64/6 px^2), is
-    ``sigma_px**2``; the gain ``scale / max(RMS, scale / 4)`` is formed at the 8 x 8
-    block centres and interpolated back to the 2 x 2 grid.
+    ``weight`` the soft weight there (last two axes; ``scale_hu`` per slice of a
+    stack); the weighted squares and the weights are averaged over 8 x 8 pixel blocks
+    and smoothed by a Gaussian (zeros outside) whose variance, with the block mean
+    (63/12 px^2) and the bilinear interpolation back (64/6 px^2), is ``sigma_px**2``;
+    the gain ``scale / max(RMS, scale / 4)`` is formed at the 8 x 8 block centres and
+    interpolated back to the 2 x 2 grid.
 
     References
     ----------
@@ -711,14 +745,17 @@ def coarse_noise_gain(square_mean: np.ndarray, weight: np.ndarray, scale_hu: flo
     f = NOISE_BLOCK_PX
     var = sigma_px * sigma_px - (f * f - 1) / 12.0 - f * f / 6.0
     s = math.sqrt(max(var, 0.01)) / f
-    num = shift_add_blur(num, s, 3.0, "constant")
-    den = shift_add_blur(den, s, 3.0, "constant")
+    rows, cols = gaussian_matrix(num.shape[-2], s, 3.0), gaussian_matrix(num.shape[-1], s, 3.0)
+    num = rows @ num @ cols.T  # the blur with zeros outside
+    den = rows @ den @ cols.T
     np.maximum(den, np.float32(1e-3), out=den)
     np.divide(num, den, out=num)
     np.sqrt(num, out=num)
-    np.maximum(num, np.float32(0.25 * scale_hu), out=num)
-    gain = np.divide(np.float32(scale_hu), num, out=num)
-    return upsample_linear(gain, k, weight.shape)
+    scale = np.asarray(scale_hu, dtype=np.float32)
+    scale = scale.reshape(scale.shape + (1, 1)) if scale.ndim else scale
+    np.maximum(num, np.float32(0.25) * scale, out=num)
+    gain = np.divide(scale, num, out=num)
+    return upsample_linear(gain, k, weight.shape[-2:])
 
 
 def grid_subsample(values: np.ndarray, mask: np.ndarray, max_samples: int, count: int | None = None) -> np.ndarray:
@@ -733,65 +770,102 @@ def grid_subsample(values: np.ndarray, mask: np.ndarray, max_samples: int, count
     return values[::step, ::step][mask[::step, ::step]]
 
 
-def screen_texture(image: np.ndarray, allowed: np.ndarray, cfg: dict[str, Any]) -> np.ndarray | None:
-    """The screen's edge-suppressed, clipped, noise-equalised residual of a binned slice.
+def strong_edges_stack(smoothed: np.ndarray, step_hu: float, sigma_px: float) -> np.ndarray:
+    """:func:`strong_edges` of every slice of a stack (the same differences and threshold)."""
+    gy = np.zeros_like(smoothed)
+    gx = np.zeros_like(smoothed)
+    np.subtract(smoothed[..., 2:, :], smoothed[..., :-2, :], out=gy[..., 1:-1, :])
+    np.subtract(smoothed[..., 2:], smoothed[..., :-2], out=gx[..., 1:-1])
+    gy *= gy
+    gx *= gx
+    gy += gx  # 4 x the squared gradient magnitude
+    threshold = step_hu / (max(sigma_px, 0.5) * math.sqrt(2.0 * math.pi))
+    return gy > np.float32(4.0 * threshold * threshold)
 
-    The same steps as :func:`slice_texture` (see the module docstring): the high-pass
-    residual and the strong edges on the screen grid; the soft weight and the local
-    noise gain, which are smooth, on the grid of 2 x 2 blocks (:func:`coarse_soft_weight`,
+
+def screen_textures(images: np.ndarray, allowed: np.ndarray, cfg: dict[str, Any]) -> tuple[np.ndarray, np.ndarray]:
+    """The screen's edge-suppressed, clipped, noise-equalised residual of each binned slice of a stack.
+
+    ``images`` is ``(k, ny, nx)``, ``allowed`` the same shape (bool). The same steps as
+    :func:`slice_texture` (see the module docstring): the high-pass residual and the
+    strong edges on the screen grid; the soft weight and the local noise gain, which are
+    smooth, on the grid of 2 x 2 blocks (:func:`coarse_soft_weight`,
     :func:`coarse_noise_gain`), their product interpolated back bilinearly; the fill
-    value and the noise scale from a sub-grid of at most :data:`ROBUST_SAMPLES` pixels.
-    None if too few pixels are left.
+    value and the noise scale of each slice from a sub-grid of at most
+    :data:`ROBUST_SAMPLES` pixels. Returns the ``(k, ny, nx)`` textures and, per
+    slice, whether it has enough pixels left (its texture is meaningless otherwise).
     """
-    finite = np.isfinite(image)
-    all_finite = bool(finite.all())
-    valid = allowed if all_finite else allowed & finite
-    min_count = cfg["min_weight_fraction"] * image.size
-    if np.count_nonzero(valid) < min_count:
-        return None
-    img = image
-    if not all_finite or not allowed.all():
-        sample = grid_subsample(image, valid, ROBUST_SAMPLES)
-        fill = float(np.median(sample)) if sample.size else float(np.median(image[valid]))
-        img = np.where(valid, image, np.float32(fill))
+    k = images.shape[0]
+    min_count = cfg["min_weight_fraction"] * images[0].size
+    all_finite = [math.isfinite(float(images[i].max())) and math.isfinite(float(images[i].min())) for i in range(k)]
+    valid = allowed if all(all_finite) else allowed & np.isfinite(images)
+    n_valid = np.count_nonzero(valid.reshape(k, -1), axis=1)
+    usable = n_valid >= min_count
+    img = images
+    if int(n_valid.min()) < valid[0].size:
+        fill = np.zeros((k, 1, 1), dtype=np.float32)
+        for i in range(k):
+            if usable[i] and n_valid[i] < valid[i].size:
+                sample = grid_subsample(images[i], valid[i], ROBUST_SAMPLES)
+                fill[i] = np.median(sample) if sample.size else np.median(images[i][valid[i]])
+        if all(all_finite):  # image - (image - fill) * ~valid, three cheap passes
+            img = np.subtract(images, fill, dtype=np.float32)
+            img *= valid
+            img += fill
+        else:
+            img = np.where(valid, images, fill)
     sigma = float(cfg["highpass_sigma_px"])
     smoothed = shift_add_blur(img, sigma, 3.0)
     residual = np.subtract(img, smoothed, dtype=np.float32)
-    bad = strong_edges(smoothed, float(cfg["edge_step_hu"]), sigma)
+    bad = strong_edges_stack(smoothed, float(cfg["edge_step_hu"]), sigma)
     bad |= ~valid
-    weight = coarse_soft_weight(block_mean_even(bad.view(np.uint8), WEIGHT_BLOCK_PX, "edge"), 2.0 * sigma + 2.0)
-    inside = weight > 0.5
-    n_inside = int(np.count_nonzero(inside))
-    if n_inside * WEIGHT_BLOCK_PX**2 < min_count:
-        return None
     f = WEIGHT_BLOCK_PX
-    sample = np.abs(grid_subsample(residual[::f, ::f], inside, ROBUST_SAMPLES, n_inside))
-    scale = 1.4826 * float(np.median(sample)) if sample.size else 0.0
-    if not scale > 0 or not math.isfinite(scale):
-        return None
-    limit = np.float32(cfg["clip_sigma"] * scale)
+    weight = coarse_soft_weight(block_mean_even(bad.view(np.uint8), f, "edge"), 2.0 * sigma + 2.0)
+    inside = weight > 0.5
+    n_inside = np.count_nonzero(inside.reshape(k, -1), axis=1)
+    scale = np.ones(k, dtype=np.float64)
+    for i in range(k):
+        usable[i] &= n_inside[i] * f * f >= min_count
+        if usable[i]:
+            sample = np.abs(grid_subsample(residual[i, ::f, ::f], inside[i], ROBUST_SAMPLES, int(n_inside[i])))
+            value = 1.4826 * float(np.median(sample)) if sample.size else 0.0
+            usable[i] &= value > 0 and math.isfinite(value)
+            scale[i] = value if usable[i] else 1.0
+    limit = (float(cfg["clip_sigma"]) * scale).astype(np.float32).reshape(k, 1, 1)
     np.minimum(residual, limit, out=residual)
     np.maximum(residual, -limit, out=residual)
     reach_eq = float(cfg["noise_equalise_sigma_px"])
     if reach_eq > 0:
         weight = weight * coarse_noise_gain(block_mean_even(residual * residual, f, "edge"), weight, scale, reach_eq)
-    residual *= upsample_linear(weight, f, residual.shape)
-    return residual
+    residual *= upsample_linear(weight, f, residual.shape[-2:])
+    return residual, usable
 
 
-def band_power(spectrum: np.ndarray, bins: SpectralBins) -> np.ndarray:
-    """|F|^2 of the in-band samples of an rfft2 spectrum (in ``bins.sample`` order)."""
-    v = spectrum.ravel()[bins.sample]
-    return (v.real * v.real + v.imag * v.imag).astype(np.float64)
+def screen_texture(image: np.ndarray, allowed: np.ndarray, cfg: dict[str, Any]) -> np.ndarray | None:
+    """:func:`screen_textures` of one binned slice (None if too few pixels are left)."""
+    textures, usable = screen_textures(image[None], allowed[None], cfg)
+    return textures[0] if usable[0] else None
 
 
-def profile_of_band_power(flat: np.ndarray, bins: SpectralBins) -> np.ndarray | None:
-    """:func:`angular_profile` of in-band powers already gathered by :func:`band_power`.
+def cell_powers(spectra: np.ndarray, bins: SpectralBins) -> np.ndarray:
+    """Summed |F|^2 of the in-band samples per (ring, orientation) cell: ``(k, n_rings, n_bins)``.
 
-    One sum per (ring, orientation) cell; the ring means and the whitened sums per
-    orientation follow from that small table (the same sums as :func:`angular_profile`).
+    ``spectra`` are rfft2 spectra ``(k, ny, nx // 2 + 1)``; one sparse product with the
+    cell-membership matrix of ``bins`` for all of them (float64 sums).
     """
-    cells = np.bincount(bins.cell, weights=flat, minlength=bins.n_rings * bins.n_bins).reshape(bins.n_rings, bins.n_bins)
+    k = spectra.shape[0]
+    v = spectra.view(np.float32)
+    sq = v * v
+    power = np.add(sq[..., 0::2], sq[..., 1::2], dtype=np.float64).reshape(k, -1)
+    return (bins.cell_matrix @ power.T).T.reshape(k, bins.n_rings, bins.n_bins)
+
+
+def profile_of_cells(cells: np.ndarray, bins: SpectralBins) -> np.ndarray | None:
+    """:func:`angular_profile` from the summed power per (ring, orientation) cell.
+
+    The ring means and the whitened sums per orientation follow from that small table
+    (the same sums as :func:`angular_profile`, in another order).
+    """
     ring_mean = cells.sum(axis=1) / np.maximum(bins.ring_count, 1)
     if not np.all(np.isfinite(ring_mean)) or ring_mean.max() <= 0:
         return None
@@ -1363,11 +1437,14 @@ def screen_volume(volume: Volume, regions: Regions | None, cfg: dict[str, Any]) 
     shape_b = (ny // factor, nx // factor)
     bins = spectral_bins(shape_b, tuple(float(v) for v in cfg["band_cycles_per_px"]), float(cfg["angle_bin_deg"]))
     masks = AllowedMasks(regions, factor, shape_b, cfg)
+    starts = list(range(0, nz, SCREEN_STACK))
 
-    def one(z: int) -> np.ndarray | str:
-        return screen_slice(volume.hu[z], masks(z), factor, bins, cfg)
+    def one(i: int) -> list[np.ndarray | str]:
+        z0, z1 = starts[i], min(starts[i] + SCREEN_STACK, nz)
+        allowed = np.stack([masks(z) for z in range(z0, z1)])
+        return screen_stack(volume.hu[z0:z1], allowed, factor, bins, cfg)
 
-    outcomes = map_slices(one, nz, SCREEN_THREADS)
+    outcomes = [o for stack in map_slices(one, len(starts), SCREEN_THREADS) for o in stack]
     profiles: dict[int, np.ndarray] = {}
     skipped = {"constant": 0, "non-finite": 0, "without usable pixels": 0}
     for z, outcome in enumerate(outcomes):
@@ -1381,15 +1458,39 @@ def screen_volume(volume: Volume, regions: Regions | None, cfg: dict[str, Any]) 
 
 def screen_slice(image: np.ndarray, allowed: np.ndarray, factor: int, bins: SpectralBins, cfg: dict[str, Any]) -> np.ndarray | str:
     """Angular profile of one full-resolution slice, or why it was skipped (a ``Screen.skipped`` key)."""
-    binned = bin_slice(image, factor)
-    kind = _unusable(binned, image)
-    if kind:
-        return kind
-    texture = screen_texture(binned, allowed, cfg)
-    profile = None
-    if texture is not None:
-        profile = profile_of_band_power(band_power(sfft.rfft2(texture), bins), bins)
-    return "without usable pixels" if profile is None else profile
+    return screen_stack(image[None], allowed[None], factor, bins, cfg)[0]
+
+
+def screen_stack(images: np.ndarray, allowed: np.ndarray, factor: int, bins: SpectralBins, cfg: dict[str, Any]) -> list[np.ndarray | str]:
+    """:func:`screen_slice` of every full-resolution slice of a ``(k, ny, nx)`` stack.
+
+    ``allowed`` is the ``(k, ny_b, nx_b)`` stack of binned masks. The slices are binned,
+    textured, transformed and binned in frequency together; each outcome depends on its
+    own slice only.
+    """
+    binned = bin_slice(images, factor)
+    outcomes: list[np.ndarray | str] = ["without usable pixels"] * images.shape[0]
+    keep = []
+    for i in range(images.shape[0]):
+        kind = _unusable(binned[i], images[i])
+        if kind:
+            outcomes[i] = kind
+        else:
+            keep.append(i)
+    if not keep:
+        return outcomes
+    if len(keep) < images.shape[0]:
+        binned, allowed = binned[keep], allowed[keep]
+    textures, usable = screen_textures(binned, allowed, cfg)
+    good = [j for j in range(len(keep)) if usable[j]]
+    if good:
+        stack = textures if len(good) == len(keep) else textures[good]
+        cells = cell_powers(sfft.rfft2(stack, axes=(-2, -1)), bins)
+        for j, c in zip(good, cells):
+            profile = profile_of_cells(c, bins)
+            if profile is not None:
+                outcomes[keep[j]] = profile
+    return outcomes
 
 
 def map_slices(fn: Callable[[int], Any], nz: int, threads: int) -> list[Any]:
@@ -1425,6 +1526,9 @@ def _unusable(binned: np.ndarray, image: np.ndarray) -> str | None:
     Decided on the block means ``binned`` when they suffice (a finite, non-constant
     block mean implies finite, non-constant pixels); the full slice is read otherwise.
     """
+    high, low = float(binned.max()), float(binned.min())
+    if math.isfinite(high) and math.isfinite(low) and high != low:
+        return None
     finite = np.isfinite(binned)
     if finite.any():
         values = binned[finite] if not finite.all() else binned
