@@ -142,9 +142,9 @@ _FWHM_FACTOR = 4.0 * math.log(2.0)
 BLOCK_MM = 3.0
 MAX_BLOCK_MM = 4.0
 
-#: Samples for a robust SD on a coarse map: the relative standard error of the MAD is
-#: then about 0.4 %, which moves a 5-SD threshold by about 0.02 SD.
-MAX_ROBUST_SAMPLES = 200_000
+#: Samples for a robust SD on a coarse map: the relative standard error of 1.4826 x MAD
+#: for Gaussian values is then about 0.4 %, which moves a 5-SD threshold by 0.02 SD.
+MAX_ROBUST_SAMPLES = 100_000
 #: Samples for the smoothness (a 1.4 % error in a variance changes the resels by 2 % and
 #: the threshold by less than 0.01 SD).
 RESEL_SAMPLES = 50_000
@@ -484,8 +484,9 @@ def scale_levels(
     """For each scale: its grid (block factors relative to the coarse grid) and its
     Gaussian's SD in cells of that grid (0 where not filtered).
 
-    A scale of SD ``s`` is measured on blocks of about ``2 s`` (so its Gaussian spans
-    about half a cell and needs five taps); a scale whose blocks would be the coarse
+    A scale of SD ``s`` is measured on blocks of about ``2 s`` (the nearest power of two
+    times the coarse block, so each grid is made from the previous one; its Gaussian
+    spans about half a cell and needs five taps); a scale whose blocks would be the coarse
     grid's own and whose SD is at most 0.6 of a cell is the block mean itself (no
     Gaussian). Along z the total block is at most a quarter of the slices.
     """
@@ -494,7 +495,7 @@ def scale_levels(
     for s in scales_mm:
         rel = []
         for axis, c in enumerate(cell_mm):
-            r = max(1, int(2.0 * s / c + 0.25))
+            r = 2 ** max(0, int(round(math.log2(max(2.0 * s / c, 1.0)))))
             if axis == 0:
                 r = 1 if nz == 1 else min(r, max(1, (nz // 4) // base[0]))
             rel.append(r)
@@ -506,12 +507,14 @@ def scale_levels(
 
 
 def _box_scale(sums: np.ndarray, counts: np.ndarray, cell: float) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-    """Block means as the matched filter: contrast, white-noise growth, validity."""
+    """Block means as the matched filter: contrast, contrast / white-noise growth
+    (``sqrt(cell / count)``), validity (at least half the block is air)."""
     valid = counts >= 0.5 * cell
-    contrast = np.divide(sums, np.maximum(counts, 1.0))
-    growth = np.divide(np.float32(cell), np.maximum(counts, 1.0))
-    np.sqrt(growth, out=growth)
-    return contrast, growth, valid
+    m = np.maximum(counts, np.float32(1.0))
+    contrast = np.divide(sums, m)
+    np.multiply(m, np.float32(1.0 / cell), out=m)
+    np.sqrt(m, out=m)
+    return contrast, np.multiply(contrast, m, out=m), valid
 
 
 @dataclass
@@ -726,30 +729,49 @@ def matched_filter_scales(
     dims = 3 if nz > 1 else 2
     alpha = float(s["false_alarms_per_series"]) / len(levels)
     base_cell = float(np.prod(base))
+    grids = _pyramid(sums, counts, [rel for rel, _ in levels])
     maps = []
-    for sigma_mm, (rel, sig) in zip(s["scales_mm"], levels):
-        if rel == (1, 1, 1):
-            S, C = sums, counts
-        else:
-            S, C = block_sum(sums, rel), block_sum(counts, rel)
+    for sigma_mm, (rel, sig), (S, C) in zip(s["scales_mm"], levels, grids):
         cell = base_cell * float(np.prod(rel))
         if max(sig) == 0.0:
-            contrast, growth, valid = _box_scale(S, C, cell)
+            contrast, z, valid = _box_scale(S, C, cell)
         else:
             contrast, growth, valid = _filtered_scale(S.copy() if S is sums else S, C, cell, sig)
-        if valid.sum() < 20:
+            z = np.divide(contrast, growth, out=growth)  # noise-normalised contrast, in place
+        del S, C
+        if np.count_nonzero(valid) < 20:
             continue
-        z = np.divide(contrast, growth, out=growth)  # noise-normalised contrast, in place
         step = _plane_step(valid)
         med, sd = _robust_sd(z[::step][valid[::step]])
         sd = max(sd, noise_floor_hu / math.sqrt(cell))
         z -= np.float32(med)
-        z /= np.float32(sd)
-        z[~valid] = 0.0
+        z *= np.float32(1.0 / sd)
+        np.multiply(z, valid, out=z)  # 0 where not valid
         resels = _smoothness_resels(z, valid)
         t = max(float(s["min_high_sigma"]), threshold_for_false_alarms(alpha, resels, dims))
         maps.append(ScaleMap(sigma_mm, tuple(b * r for b, r in zip(base, rel)), contrast, z, valid, sd, t, resels))
+    del grids
     return maps
+
+
+def _pyramid(
+    sums: np.ndarray, counts: np.ndarray, rels: list[tuple[int, int, int]]
+) -> list[tuple[np.ndarray, np.ndarray]]:
+    """Block sums of ``sums`` and ``counts`` for each grid of ``rels`` (factors relative to
+    the coarse grid), each made from the previous one where it is a multiple of it."""
+    f32 = np.dtype(np.float32)
+    out: list[tuple[np.ndarray, np.ndarray]] = []
+    prev_rel, prev = (1, 1, 1), (sums, counts)
+    for rel in rels:
+        if all(r % p == 0 for r, p in zip(rel, prev_rel)):
+            f = tuple(r // p for r, p in zip(rel, prev_rel))
+            src, f_rel = prev, f
+        else:
+            src, f_rel = (sums, counts), rel
+        grid = (_grid_sum(src[0], f_rel, f32), _grid_sum(src[1], f_rel, f32))
+        out.append(grid)
+        prev_rel, prev = rel, grid
+    return out
 
 
 # ---------------------------------------------------------------------- detection
@@ -771,6 +793,16 @@ def present_labels(values: np.ndarray) -> np.ndarray:
     if values.size == 0:
         return np.zeros(0, dtype=np.int64)
     return np.flatnonzero(np.bincount(values.ravel()))
+
+
+def components_holding(lab: np.ndarray, n: int, high: np.ndarray) -> np.ndarray:
+    """``lab`` with only the components that hold a ``high`` cell, renumbered 1..k in
+    their original order (so boxes need be found for these few only)."""
+    hold = present_labels(lab[high])
+    hold = hold[hold > 0]
+    lut = np.zeros(n + 1, dtype=np.int32)
+    lut[hold] = np.arange(1, hold.size + 1, dtype=np.int32)
+    return lut[lab]
 
 
 def cores_by_component(
@@ -835,28 +867,36 @@ def hysteresis_structures_boxes(
     core) and grown to where the filtered contrast exceeds half of it, so two structures
     joined by noise keep their own extents; cores whose regions overlap are one structure.
     """
-    low = m.valid & (m.z > grow_sigma)
-    lab, n = ndimage.label(low)
     out = np.zeros(m.z.shape, dtype=np.int32)
     snr: dict[int, float] = {}
     outer: dict[int, tuple[slice, ...]] = {}
+    high = m.z > m.threshold
+    box = _padded_box_3d(high, 2)
+    if box is None:
+        return out, snr, []
+    low = m.valid & (m.z > grow_sigma)
+    if m.threshold > grow_sigma:  # every core lies in one component of ``low``
+        box = components_box(low, high, box)
+    lab, n = ndimage.label(low[box])
     if n == 0:
         return out, snr, []
-    high = m.z > m.threshold
-    if not high.any():
-        return out, snr, []
-    objects = ndimage.find_objects(lab)
-    if m.threshold > grow_sigma:  # every core lies in one component of ``low``
+    high = high[box]
+    if m.threshold > grow_sigma:
+        lab = components_holding(lab, n, high)  # the others dropped, order kept
+        objects = ndimage.find_objects(lab)
         cores = cores_by_component(lab, objects, high)
     else:
+        objects = ndimage.find_objects(lab)
         cores = _cores_by_labelling(lab, objects, high)
+    contrast_map = m.contrast_hu[box]
+    out_full, out = out, out[box]
     found = []
     for j, (i, core) in enumerate(cores, start=1):
         sl = objects[i - 1]
-        found.append((float(np.percentile(m.contrast_hu[sl][core], 90)), j, i, core))
+        found.append((float(np.percentile(contrast_map[sl][core], 90)), j, i, core))
     for contrast, j, i, core in sorted(found, key=lambda f: f[:3], reverse=True):
         sl = objects[i - 1]
-        region = (lab[sl] == i) & (m.contrast_hu[sl] > 0.5 * contrast)
+        region = (lab[sl] == i) & (contrast_map[sl] > 0.5 * contrast)
         pieces, n_pieces = ndimage.label(region)
         touched = present_labels(pieces[core])
         keep = np.zeros(n_pieces + 1, dtype=bool)
@@ -871,7 +911,52 @@ def hysteresis_structures_boxes(
         view[region & (view == 0)] = target
         snr[target] = max(snr.get(target, 0.0), contrast / max(m.noise_hu, 1e-6))
         outer[target] = _union_box(outer.get(target), sl)
-    return out, snr, tight_boxes(out, len(snr), [outer[k] for k in range(1, len(snr) + 1)])
+    boxes = tight_boxes(out, len(snr), [outer[k] for k in range(1, len(snr) + 1)])
+    return out_full, snr, [None if b is None else _shifted_box(b, box) for b in boxes]
+
+
+def _shifted_box(sl: tuple[slice, ...], box: tuple[slice, ...]) -> tuple[slice, ...]:
+    """A box given inside ``box``, in the coordinates of the whole grid."""
+    return tuple(slice(x.start + b.start, x.stop + b.start) for x, b in zip(sl, box))
+
+
+def _padded_box_3d(mask: np.ndarray, pad: int) -> tuple[slice, ...] | None:
+    """Bounding box of a 3-D mask grown by ``pad`` cells (clipped); None when empty."""
+    out = []
+    for axis in range(mask.ndim):
+        hit = np.flatnonzero(mask.any(axis=tuple(a for a in range(mask.ndim) if a != axis)))
+        if hit.size == 0:
+            return None
+        out.append(slice(max(0, int(hit[0]) - pad), min(mask.shape[axis], int(hit[-1]) + 1 + pad)))
+    return tuple(out)
+
+
+def components_box(low: np.ndarray, high: np.ndarray, box: tuple[slice, ...], max_rounds: int = 4) -> tuple[slice, ...]:
+    """A box that holds every component of ``low`` containing a ``high`` cell whole.
+
+    Starts from ``box`` (around the high cells) and grows every face that such a
+    component reaches (a component that reaches a face may go on beyond it) until none
+    does; after ``max_rounds`` the whole grid.
+    """
+    full = tuple(slice(0, n) for n in low.shape)
+    for _ in range(max_rounds):
+        lab, n = ndimage.label(low[box])
+        hold = present_labels(lab[high[box]])
+        hold = hold[hold > 0]
+        keep = np.zeros(n + 1, dtype=bool)
+        keep[hold] = True
+        comp = keep[lab]
+        grown = []
+        for axis, (x, size) in enumerate(zip(box, low.shape)):
+            lo_face = comp.take(0, axis=axis).any() and x.start > 0
+            hi_face = comp.take(-1, axis=axis).any() and x.stop < size
+            step = max(4, (x.stop - x.start) // 2)
+            grown.append(slice(max(0, x.start - step) if lo_face else x.start, min(size, x.stop + step) if hi_face else x.stop))
+        grown = tuple(grown)
+        if grown == box:
+            return box
+        box = grown
+    return full
 
 
 def scaled_box(sl: tuple[slice, ...], factors: tuple[int, ...], shape: tuple[int, ...]) -> tuple[slice, ...]:
