@@ -217,3 +217,37 @@ def test_detrend_poly2_removes_quadratic_exactly():
     q = (3 + 0.5 * x - 0.2 * y + 0.1 * x * x - 0.05 * x * y + 0.02 * y * y)[None].astype(float)
     assert np.abs(nps.detrend_rois(q, "poly2")).max() < 1e-9
     assert np.abs(nps.detrend_rois(q, "mean")).max() > 1.0
+
+
+def test_real_fft_power_equals_full_fft_power():
+    """The real-input DFT completed by Hermitian symmetry gives the whole |DFT|^2
+    (reference: numpy.fft.fftn), for odd and even sizes, in 2-D and 3-D."""
+    rng = np.random.default_rng(6)
+    for shape in ((5, 16, 16), (4, 15, 17), (3, 8, 12, 9)):
+        res = rng.normal(size=shape)
+        axes = tuple(range(1, len(shape)))
+        ref = (np.abs(np.fft.fftn(res, axes=axes)) ** 2).mean(axis=0)
+        assert np.allclose(nps.mean_power_spectrum(res), ref, rtol=1e-10, atol=1e-9)
+
+
+def test_nps_3d_equals_direct_3d_dft_of_mean_free_blocks():
+    """3-D NPS from the in-plane spectra equals (dx dy dz / N) <|DFTn(block - mean)|^2>
+    computed directly with numpy.fft.fftn (IEC 62220-1-1 normalisation)."""
+    rng = np.random.default_rng(7)
+    blocks = rng.normal(5.0, 3.0, (6, 4, 16, 16))
+    got, fz, fy, fx = nps.nps_3d(blocks, (2.0, 0.5, 0.5), "mean")
+    res = blocks - blocks.mean(axis=(2, 3), keepdims=True)
+    res -= res.mean(axis=(1, 2, 3), keepdims=True)
+    ref = np.fft.fftshift((np.abs(np.fft.fftn(res, axes=(1, 2, 3))) ** 2).mean(axis=0)) * 2.0 * 0.25 / (4 * 256)
+    assert np.allclose(got, ref, rtol=1e-10, atol=1e-12)
+
+
+def test_patient_patches_found_on_more_slices_when_few():
+    """Fewer than patient_min_rois patches on the first slices: the other slices are
+    searched too, and every patch still lies in soft tissue."""
+    vol = _torso(12.0)
+    few = run(vol, patient_slices=1, patient_min_rois=1).record
+    more = run(vol, patient_slices=1, patient_min_rois=1000).record
+    assert few["applicable"] and more["applicable"]
+    assert more["roi_count"] > few["roi_count"]
+    assert abs(more["noise_hu"] - 12.0) < 1.5

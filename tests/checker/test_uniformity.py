@@ -119,3 +119,65 @@ def test_every_tolerance_has_a_source():
     for key in uniformity.DEFAULTS:
         if key.endswith(("_tolerance", "_max", "_expected")):
             assert key in uniformity.SOURCES
+
+
+# ------------------------------------------------------- the phantom finder's helpers
+def test_disc_stats_agrees_with_disc_of_slice_by_slice():
+    """The stack version gives disc_of's centre, radius and fill on every slice
+    (including an empty slice: NaN centre, zero radius and fill)."""
+    rng = np.random.default_rng(3)
+    yy, xx = np.mgrid[:70, :90]
+    masks = np.zeros((4, 70, 90), dtype=bool)
+    masks[0] = (yy - 30.3) ** 2 + (xx - 41.7) ** 2 <= 20**2
+    masks[1] = ((yy - 35) / 12.0) ** 2 + ((xx - 45) / 30.0) ** 2 <= 1
+    masks[2] = rng.random((70, 90)) > 0.6
+    cy, cx, r, fill = _phantom.disc_stats(masks)
+    for z in range(3):
+        (ey, ex), er, ef = _phantom.disc_of(masks[z])
+        assert (cy[z], cx[z], r[z], fill[z]) == pytest.approx((ey, ex, er, ef), rel=1e-12)
+    assert np.isnan(cy[3]) and np.isnan(cx[3]) and r[3] == 0 and fill[3] == 0
+
+
+@pytest.mark.parametrize("sigma", [0.3, 0.83, 1.7, 4.0])
+def test_smooth_in_plane_equals_scipy_gaussian_filter(sigma):
+    """Reference: scipy.ndimage.gaussian_filter with sigma 0 along z (same truncation,
+    reflect edges), to float32 rounding."""
+    from scipy import ndimage
+
+    stack = np.random.default_rng(4).normal(0, 20, (3, 41, 37)).astype(np.float32)
+    ref = ndimage.gaussian_filter(stack, (0, sigma, sigma), truncate=2.5)
+    assert np.abs(_phantom.smooth_in_plane(stack, sigma) - ref).max() < 1e-4
+
+
+def test_medians_of_equals_numpy_median_of_the_subgrid():
+    """Reference: numpy.median of the masked values on every step-th row and column."""
+    rng = np.random.default_rng(5)
+    values = rng.normal(0, 10, (4, 30, 33)).astype(np.float32)
+    masks = rng.random((4, 30, 33)) > 0.4
+    masks[2] = False
+    got = _phantom._medians_of(values, masks, step=2)
+    for z in (0, 1, 3):
+        sub = values[z, ::2, ::2][masks[z, ::2, ::2]]
+        assert got[z] == pytest.approx(float(np.median(sub)), abs=1e-5)
+    assert np.isnan(got[2])
+
+
+def test_count_nonfinite_counts_and_is_shared_per_volume():
+    vol = water_cylinder(nz=3, insert_slices=0)
+    regions = find_regions(vol)
+    assert _phantom.count_nonfinite(vol, regions) == 0
+    other = water_cylinder(nz=3, insert_slices=0)
+    other.hu[0, 1, 1] = np.inf
+    other.hu[2, 3, 4] = np.nan
+    assert _phantom.count_nonfinite(other) == 2
+    assert _phantom.count_nonfinite(other, find_regions(other)) == 2
+
+
+def test_thin_insert_on_one_slice_is_seen():
+    """Every slice is examined: a bone rod on one slice only marks that slice."""
+    vol = water_cylinder(nz=9, insert_slices=0)
+    yy, xx = np.mgrid[:160, :160]
+    vol.hu[4][(yy - 80) ** 2 + (xx - 110) ** 2 <= 8**2] = 800.0
+    ph = _phantom.find_phantom(vol, find_regions(vol))
+    assert list(np.flatnonzero(ph.inserts)) == [4]
+    assert ph.uniform_runs()[0] in ((5, 8), (0, 3))
