@@ -40,6 +40,7 @@ automated method for measuring spatial resolution in clinical CT images. Med Phy
 """
 from __future__ import annotations
 
+import functools
 import math
 from dataclasses import dataclass, field
 from typing import Any, Sequence
@@ -78,7 +79,7 @@ DEFAULTS: dict[str, Any] = {
     "esf_conditioning": "auto",  # "auto", "monotone", "none"
     "skin_band_mm": 6.0,
     "table_clearance_mm": 15.0,
-    "skin_max_slices": 32,  # evenly spaced slices the skin edge is measured on
+    "skin_max_slices": 16,  # evenly spaced slices the skin edge is measured on
     "skin_normals_per_slice": 256,  # outline points (normals) per slice, spread in angle
     "skin_min_per_bin": 20.0,  # fewer edge pixels per ESF bin (mean) make the skin edge unreliable
     # reliability and tolerances
@@ -103,9 +104,9 @@ SOURCES: dict[str, str] = {
     "max_insert_diameter_mm": "common practice, no source",
     "skin_band_mm": "Sanders, Hurwitz, Samei, Med Phys 43(10) 2016 (band about the skin outline), width from memory",
     "table_clearance_mm": "site choice",
-    "skin_max_slices": "site choice: tens of slices give tens of thousands of edge pixels",
-    "skin_normals_per_slice": "site choice: 256 normals x 32 slices x ~30 strip pixels give ~2e5 edge pixels, "
-                              "about 1000 per ESF bin of a tenth of a pixel",
+    "skin_max_slices": "site choice: 16 slices x 256 normals x ~50 strip pixels (3 px wide, +/- 6 mm at 0.7 mm) "
+                       "give ~2e5 edge pixels, ~1000 per ESF bin of a tenth of a pixel",
+    "skin_normals_per_slice": "site choice: see skin_max_slices; spread over a slice, they cover the whole outline",
     "skin_min_per_bin": "common practice, no source (a bin mean of >= 20 pixels keeps its noise below a "
                         "quarter of the pixel noise)",
     "f50_min_per_mm": "site choice",
@@ -666,13 +667,18 @@ class _SkinSampler:
     strip_flat: np.ndarray
     strip_ok: np.ndarray
 
-    directions = 64
+    directions = 128
     sigma_px = 2.0
-    locate_px = 2.0  # half-width of the strip that locates the edge on a normal
+    locate_px = 1.5  # half-width of the strip that locates the edge on a normal
     esf_px = 1.5  # half-width of the strip whose pixels go into the ESF
 
     @classmethod
     def build(cls, width: int, band_px: float) -> "_SkinSampler":
+        """The sampler of an image ``width`` pixels wide and a band of ``band_px`` (cached)."""
+        return _skin_sampler(cls, int(width), float(band_px))
+
+    @classmethod
+    def _build(cls, width: int, band_px: float) -> "_SkinSampler":
         r = 5
         gy, gx = np.mgrid[-r : r + 1, -r : r + 1]
         disc = gy**2 + gx**2 <= r * r
@@ -680,7 +686,7 @@ class _SkinSampler:
         g = np.exp(-(gy**2 + gx**2) / (2 * cls.sigma_px**2))
         reach = int(math.ceil(band_px + 3))
         oy, ox = (a.ravel().astype(float) for a in np.mgrid[-reach : reach + 1, -reach : reach + 1])
-        slack = reach * math.sin(math.pi / cls.directions) + 0.75
+        slack = reach * math.sin(math.pi / cls.directions) + 1e-6  # largest error of a quantised normal
         rows = []
         for a in (np.arange(cls.directions) + 0.5) * 2 * math.pi / cls.directions:
             ny, nx = math.sin(a), math.cos(a)
@@ -694,6 +700,11 @@ class _SkinSampler:
                    sy, sx, sy * width + sx, ok)
 
 
+@functools.lru_cache(maxsize=8)
+def _skin_sampler(cls: type, width: int, band_px: float) -> _SkinSampler:
+    return cls._build(width, band_px)
+
+
 def skin_edge_ttf(volume: Volume, regions: Regions, settings: dict[str, Any] | None = None) -> EdgeMeasurement | None:
     """TTF of the patient's skin-air edge along the body outline, away from the table.
 
@@ -702,7 +713,7 @@ def skin_edge_ttf(volume: Volume, regions: Regions, settings: dict[str, Any] | N
     pixels of the body mask, screened on every second row and column) are taken (a decimated screen of the outline: the ESF needs a few
     thousand pixels per bin, not every outline pixel). At each, the normal comes from the
     derivative-of-Gaussian (2 px) gradient; the sub-pixel edge is where the profile of
-    the pixels within 2 px of the normal (1-px bins along it) crosses halfway between
+    the pixels within 1.5 px of the normal (1-px bins along it) crosses halfway between
     tissue and air; profiles that do not run from tissue (> -300 HU) to air (< -800 HU)
     are dropped. The pixels within 1.5 px of each normal and ``skin_band_mm`` of the edge
     enter the ESF with their exact signed distance (the pixel values themselves, never
@@ -726,26 +737,21 @@ def skin_edge_ttf(volume: Volume, regions: Regions, settings: dict[str, Any] | N
     px = 0.5 * (volume.spacing_mm[1] + volume.spacing_mm[2])
     band = float(s["skin_band_mm"])
     sampler = _SkinSampler.build(volume.shape[2], band / px)
+    acc = _edges.EsfAccumulator(bin_mm=px * float(s["bin_fraction"]), lo_mm=-band, hi_mm=band)
+    sides = _SideSums(gap_mm=max(2 * px, band / 3), band_mm=band)
     nz = volume.shape[0]
-    d_all, v_all, zs, n_points = [], [], [], 0
+    zs, n_points = [], 0
     cache: dict[str, Any] = {}
     for z in np.unique(np.linspace(0, nz - 1, max(1, min(nz, int(s["skin_max_slices"])))).round().astype(int)):
-        got = _skin_slice(volume.hu[int(z)], regions, int(z), px, s, sampler, cache)
-        if got is not None:
-            d_all.append(got[0])
-            v_all.append(got[1])
+        got = _skin_slice(volume.hu[int(z)], regions, int(z), px, s, sampler, cache, acc, sides)
+        if got:
             zs.append(int(z))
-            n_points += got[2]
-    if not zs:
+            n_points += got
+    if not zs or sides.n_in < 2 or sides.n_out < 2:
         return None
-    d, v = np.concatenate(d_all), np.concatenate(v_all)
-    esf = bin_esf(d, v, bin_mm=px * float(s["bin_fraction"]), lo_mm=-band, hi_mm=band)
-    gap = max(2 * px, band / 3)
-    outer, inner = v[(d >= gap) & (d <= band)], v[(d <= -gap) & (d >= -band)]
-    if outer.size < 2 or inner.size < 2:
-        return None
-    contrast = float(inner.mean() - outer.mean())
-    noise = float(np.sqrt(0.5 * (outer.var() + inner.var())))
+    esf = acc.binned()
+    contrast = sides.mean_in - sides.mean_out
+    noise = float(np.sqrt(0.5 * (sides.var_out + sides.var_in)))
     problems = []
     per_bin = float(esf.counts.mean()) if esf.counts.size else 0.0
     if per_bin < float(s["skin_min_per_bin"]):
@@ -753,28 +759,72 @@ def skin_edge_ttf(volume: Volume, regions: Regions, settings: dict[str, Any] | N
     centre = (0.5 * (zs[0] + zs[-1]),) + tuple(float(c) for c in regions.body_centroid_zyx_vox[1:])
     extra = {"source": "outline", "outline_points": int(n_points)}
     # distance is positive into the air, so the ESF falls; the TTF path handles polarity
-    return _edge_result("skin", volume, esf, contrast, float(inner.mean()), noise, (zs[0], zs[-1]), centre, s,
+    return _edge_result("skin", volume, esf, contrast, sides.mean_in, noise, (zs[0], zs[-1]), centre, s,
                         problems, extra)
 
 
+@dataclass
+class _SideSums:
+    """Count, sum and sum of squares of the pixels on each side of an edge, between
+    ``gap_mm`` and ``band_mm`` from it (inside: negative distances)."""
+
+    gap_mm: float
+    band_mm: float
+    n_in: int = 0
+    s_in: float = 0.0
+    ss_in: float = 0.0
+    n_out: int = 0
+    s_out: float = 0.0
+    ss_out: float = 0.0
+
+    def add(self, d: np.ndarray, v: np.ndarray, use: np.ndarray) -> None:
+        a = np.abs(d)
+        near = use & (a >= self.gap_mm) & (a <= self.band_mm)
+        inner, outer = near & (d < 0), near & (d > 0)
+        v2 = v * v
+        self.n_in += int(np.count_nonzero(inner))
+        self.s_in += float(v.sum(where=inner))
+        self.ss_in += float(v2.sum(where=inner))
+        self.n_out += int(np.count_nonzero(outer))
+        self.s_out += float(v.sum(where=outer))
+        self.ss_out += float(v2.sum(where=outer))
+
+    @property
+    def mean_in(self) -> float:
+        return self.s_in / self.n_in
+
+    @property
+    def mean_out(self) -> float:
+        return self.s_out / self.n_out
+
+    @property
+    def var_in(self) -> float:
+        return max(self.ss_in / self.n_in - self.mean_in**2, 0.0)
+
+    @property
+    def var_out(self) -> float:
+        return max(self.ss_out / self.n_out - self.mean_out**2, 0.0)
+
+
 def _skin_slice(image: np.ndarray, regions: Regions, z: int, px: float, s: dict[str, Any],
-                sampler: _SkinSampler, cache: dict[str, Any]) -> tuple[np.ndarray, np.ndarray, int] | None:
-    """Signed distances (mm, + into air) and values of the ESF pixels of one slice, and
-    the number of outline points they come from."""
+                sampler: _SkinSampler, cache: dict[str, Any], acc: _edges.EsfAccumulator,
+                sides: "_SideSums") -> int:
+    """Add the ESF pixels of one slice (signed distance in mm, + into the air) to ``acc``
+    and ``sides``; returns the number of outline points they come from (0: none)."""
     by, bx = _outline_candidates(regions.body[z])
     if by.size < 20:
-        return None
+        return 0
     clear, sample_ok = _clear_of_table(regions, z, px, float(s["table_clearance_mm"]), sampler.reach_px, cache)
     usable = clear[by, bx]
     by, bx = by[usable], bx[usable]
     if by.size < 20:
-        return None
+        return 0
     pick = _spread_along_outline(by.size, int(s["skin_normals_per_slice"]), seed=z)
     flat_img = image.ravel()
     centre = by[pick] * sampler.width + bx[pick]
     got = _normals(flat_img, centre, sampler)
     if got is None:
-        return None
+        return 0
     keep, ny, nx = got
     k = _direction_index(ny, nx, sampler.directions)
     idx = centre[keep, None] + sampler.strip_flat[k]
@@ -784,15 +834,12 @@ def _skin_slice(image: np.ndarray, regions: Regions, z: int, px: float, s: dict[
     perp = np.abs(ox * ny[:, None] - oy * nx[:, None])
     t0, good = _edge_positions(t, vals, ok & (perp <= sampler.locate_px), sampler.band_px)
     if good.sum() < 20:
-        return None
-    t -= t0[:, None]
-    use = ok & (perp <= sampler.esf_px) & (np.abs(t) <= sampler.band_px)
-    use[use] = sample_ok[idx[use]]
-    use &= good[:, None]
-    n_good = int(use.any(axis=1).sum())
-    if n_good < 20:
-        return None
-    return t[use] * px, vals[use], n_good
+        return 0
+    d = (t - t0[:, None]) * px
+    use = ok & (perp <= sampler.esf_px) & good[:, None] & sample_ok[idx]
+    acc.add(d, vals, use)
+    sides.add(d, vals, use)
+    return int(good.sum())
 
 
 def _outline_candidates(body: np.ndarray, f: int = 2) -> tuple[np.ndarray, np.ndarray]:
@@ -862,7 +909,7 @@ def _normals(flat_img: np.ndarray, centre: np.ndarray, sampler: _SkinSampler
     """Unit normals towards falling values (the air) from the Gaussian-derivative gradient
     at each outline pixel; which points have a non-zero gradient."""
     vals = flat_img[centre[:, None] + sampler.grad_flat[None]].astype(float)
-    gy, gx = vals @ sampler.grad_wy, vals @ sampler.grad_wx
+    gy, gx = np.einsum("ij,j->i", vals, sampler.grad_wy), np.einsum("ij,j->i", vals, sampler.grad_wx)  # no BLAS threads
     g = np.hypot(gy, gx)
     keep = g > 0
     if keep.sum() < 20:
@@ -880,24 +927,27 @@ def _edge_positions(t: np.ndarray, vals: np.ndarray, mask: np.ndarray, band_px: 
     """Sub-pixel edge position along each normal (px from the outline pixel) and whether
     the profile runs from tissue (> -300 HU) to air (< -800 HU).
 
-    The pixels of ``mask`` are binned at 1 px along the normal; the edge is where the
-    bin means (at their mean distance) cross halfway between the innermost and outermost
-    two pixels of the band: the last bin above before the first one below.
+    The pixels of ``mask`` are binned at 1 px along the normal (one ``np.bincount`` for
+    all normals); tissue and air are the bin means weighted by a Gaussian of 2 px about
+    the two ends of the band; the edge is where the bin means (at their mean distance)
+    cross halfway between them: the last bin above before the first one below.
     """
     m, _ = t.shape
     half = int(math.ceil(band_px))
-    mask = mask & (np.abs(t) < half + 0.5)
-    b = np.clip(np.rint(t).astype(np.int64) + half, 0, 2 * half)
     nb = 2 * half + 1
-    idx = (np.arange(m)[:, None] * nb + b)[mask]
-    counts = np.bincount(idx, minlength=m * nb).reshape(m, nb)
-    sums = np.bincount(idx, weights=vals[mask], minlength=m * nb).reshape(m, nb)
-    tsum = np.bincount(idx, weights=t[mask], minlength=m * nb).reshape(m, nb)
+    b = np.rint(t).astype(np.int64) + half
+    inside_band = mask & (b >= 0) & (b < nb)
+    idx = np.where(inside_band, np.arange(m)[:, None] * nb + b, m * nb)
+    counts = np.bincount(idx.ravel(), minlength=m * nb + 1)[: m * nb].reshape(m, nb)
+    sums = np.bincount(idx.ravel(), weights=vals.ravel(), minlength=m * nb + 1)[: m * nb].reshape(m, nb)
+    tsum = np.bincount(idx.ravel(), weights=t.ravel(), minlength=m * nb + 1)[: m * nb].reshape(m, nb)
     filled = counts > 0
-    mean = np.where(filled, sums / np.maximum(counts, 1), np.nan)
-    tmean = np.where(filled, tsum / np.maximum(counts, 1), np.nan)
-    inside = _weighted_mean(vals, mask, np.exp(-0.5 * ((t + band_px) / 2.0) ** 2))
-    outside = _weighted_mean(vals, mask, np.exp(-0.5 * ((t - band_px) / 2.0) ** 2))
+    safe = np.maximum(counts, 1)
+    mean = np.where(filled, sums / safe, np.nan)
+    tmean = np.where(filled, tsum / safe, np.nan)
+    pos = np.arange(nb) - half
+    inside = _weighted_mean(sums, counts, np.exp(-0.5 * ((pos + band_px) / 2.0) ** 2))
+    outside = _weighted_mean(sums, counts, np.exp(-0.5 * ((pos - band_px) / 2.0) ** 2))
     good = (inside > -300) & (outside < -800) & filled.all(axis=1)
     mid = 0.5 * (inside + outside)
     above = np.where(filled, mean >= mid[:, None], True)
@@ -912,11 +962,11 @@ def _edge_positions(t: np.ndarray, vals: np.ndarray, mask: np.ndarray, band_px: 
     return np.where(good, t0, 0.0), good
 
 
-def _weighted_mean(vals: np.ndarray, mask: np.ndarray, w: np.ndarray) -> np.ndarray:
-    """Per row: the ``w``-weighted mean of ``vals`` over ``mask``."""
-    w = np.where(mask, w, 0.0)
+def _weighted_mean(sums: np.ndarray, counts: np.ndarray, w: np.ndarray) -> np.ndarray:
+    """Per row: the mean of the binned pixels, each bin's pixels weighted by ``w``."""
     with np.errstate(invalid="ignore", divide="ignore"):
-        return (w * vals).sum(axis=1) / w.sum(axis=1)
+        return np.einsum("ij,j->i", sums, w) / np.einsum("ij,j->i", counts, w)
+
 
 
 # =========================================================================== analysis
