@@ -310,37 +310,37 @@ def bin_slice(image: np.ndarray, factor: int) -> np.ndarray:
 
 
 def bin_mask(mask: np.ndarray, factor: int) -> np.ndarray:
-    """Any-of over ``factor`` x ``factor`` blocks (cropping the remainder).
+    """Any-of over ``factor`` x ``factor`` blocks of the last two axes (cropping the remainder).
 
     For ``factor`` 2 the row pairs are OR-ed and each pair of columns read as one 16-bit
     word (non-zero if either byte is): two passes over contiguous memory.
     """
     if factor == 1:
         return mask
-    ny, nx = (n // factor * factor for n in mask.shape)
+    ny, nx = (n // factor * factor for n in mask.shape[-2:])
     if factor == 2 and ny and nx:
-        rows = np.logical_or(mask[0:ny:2, :nx], mask[1:ny:2, :nx])
+        rows = np.logical_or(mask[..., 0:ny:2, :nx], mask[..., 1:ny:2, :nx])
         return rows.view(np.uint16) != 0
-    out = np.zeros((ny // factor, nx // factor), dtype=bool)
+    out = np.zeros(mask.shape[:-2] + (ny // factor, nx // factor), dtype=bool)
     for dy in range(factor):
         for dx in range(factor):
-            out |= mask[dy:ny:factor, dx:nx:factor]
+            out |= mask[..., dy:ny:factor, dx:nx:factor]
     return out
 
 
 def inner_boundary(mask: np.ndarray) -> np.ndarray:
-    """Pixels of ``mask`` with a 4-neighbour outside it (or on the array border).
+    """Pixels of ``mask`` with a 4-neighbour outside it (or on the array border); last two axes.
 
     Equal to ``mask ^ binary_erosion(mask)`` with the cross-shaped structuring element
     and a False border, computed with shifted views instead of a filter.
     """
     kept = mask.copy()
-    kept[0] = kept[-1] = False
-    kept[:, 0] = kept[:, -1] = False
-    kept[1:] &= mask[:-1]
-    kept[:-1] &= mask[1:]
-    kept[:, 1:] &= mask[:, :-1]
-    kept[:, :-1] &= mask[:, 1:]
+    kept[..., 0, :] = kept[..., -1, :] = False
+    kept[..., 0] = kept[..., -1] = False
+    kept[..., 1:, :] &= mask[..., :-1, :]
+    kept[..., :-1, :] &= mask[..., 1:, :]
+    kept[..., 1:] &= mask[..., :-1]
+    kept[..., :-1] &= mask[..., 1:]
     return mask & ~kept
 
 
@@ -548,6 +548,8 @@ def power(spectrum: np.ndarray) -> np.ndarray:
 
 #: at most this many samples for a slice's robust statistics (fill value, noise scale)
 ROBUST_SAMPLES = 4096
+#: about this many samples for a slice's fill value (only where pixels are masked)
+FILL_SAMPLES = 1024
 #: coarse grid of the local noise level: blocks of this many screen pixels a side
 NOISE_BLOCK_PX = 8
 #: coarse grid of the soft weight near masked pixels
@@ -783,10 +785,12 @@ def strong_edges_stack(smoothed: np.ndarray, step_hu: float, sigma_px: float) ->
     return gy > np.float32(4.0 * threshold * threshold)
 
 
-def screen_textures(images: np.ndarray, allowed: np.ndarray, cfg: dict[str, Any]) -> tuple[np.ndarray, np.ndarray]:
+def screen_textures(images: np.ndarray, allowed: np.ndarray, cfg: dict[str, Any],
+                    all_finite: np.ndarray | None = None) -> tuple[np.ndarray, np.ndarray]:
     """The screen's edge-suppressed, clipped, noise-equalised residual of each binned slice of a stack.
 
-    ``images`` is ``(k, ny, nx)``, ``allowed`` the same shape (bool). The same steps as
+    ``images`` is ``(k, ny, nx)``, ``allowed`` the same shape (bool); ``all_finite``
+    (per slice, if known) says which slices have no NaN or infinite pixel. The same steps as
     :func:`slice_texture` (see the module docstring): the high-pass residual and the
     strong edges on the screen grid; the soft weight and the local noise gain, which are
     smooth, on the grid of 2 x 2 blocks (:func:`coarse_soft_weight`,
@@ -797,7 +801,8 @@ def screen_textures(images: np.ndarray, allowed: np.ndarray, cfg: dict[str, Any]
     """
     k = images.shape[0]
     min_count = cfg["min_weight_fraction"] * images[0].size
-    all_finite = [math.isfinite(float(images[i].max())) and math.isfinite(float(images[i].min())) for i in range(k)]
+    if all_finite is None:
+        all_finite = np.isfinite(images.reshape(k, -1).max(axis=1)) & np.isfinite(images.reshape(k, -1).min(axis=1))
     valid = allowed if all(all_finite) else allowed & np.isfinite(images)
     n_valid = np.count_nonzero(valid.reshape(k, -1), axis=1)
     usable = n_valid >= min_count
@@ -806,7 +811,7 @@ def screen_textures(images: np.ndarray, allowed: np.ndarray, cfg: dict[str, Any]
         fill = np.zeros((k, 1, 1), dtype=np.float32)
         for i in range(k):
             if usable[i] and n_valid[i] < valid[i].size:
-                sample = grid_subsample(images[i], valid[i], ROBUST_SAMPLES)
+                sample = grid_subsample(images[i], valid[i], FILL_SAMPLES)
                 fill[i] = np.median(sample) if sample.size else np.median(images[i][valid[i]])
         if all(all_finite):  # image - (image - fill) * ~valid, three cheap passes
             img = np.subtract(images, fill, dtype=np.float32)
@@ -815,12 +820,16 @@ def screen_textures(images: np.ndarray, allowed: np.ndarray, cfg: dict[str, Any]
         else:
             img = np.where(valid, images, fill)
     sigma = float(cfg["highpass_sigma_px"])
-    smoothed = shift_add_blur(img, sigma, 3.0)
-    residual = np.subtract(img, smoothed, dtype=np.float32)
-    bad = strong_edges_stack(smoothed, float(cfg["edge_step_hu"]), sigma)
-    bad |= ~valid
     f = WEIGHT_BLOCK_PX
-    weight = coarse_soft_weight(block_mean_even(bad.view(np.uint8), f, "edge"), 2.0 * sigma + 2.0)
+    residual = np.empty(img.shape, dtype=np.float32)
+    fraction = []
+    for i in range(k):  # slice by slice: the full-grid arrays of one slice stay in cache
+        smoothed = shift_add_blur(img[i], sigma, 3.0)
+        np.subtract(img[i], smoothed, out=residual[i])
+        bad = strong_edges_stack(smoothed, float(cfg["edge_step_hu"]), sigma)
+        bad |= ~valid[i]
+        fraction.append(block_mean_even(bad.view(np.uint8), f, "edge"))
+    weight = coarse_soft_weight(np.stack(fraction), 2.0 * sigma + 2.0)
     inside = weight > 0.5
     n_inside = np.count_nonzero(inside.reshape(k, -1), axis=1)
     scale = np.ones(k, dtype=np.float64)
@@ -851,13 +860,15 @@ def cell_powers(spectra: np.ndarray, bins: SpectralBins) -> np.ndarray:
     """Summed |F|^2 of the in-band samples per (ring, orientation) cell: ``(k, n_rings, n_bins)``.
 
     ``spectra`` are rfft2 spectra ``(k, ny, nx // 2 + 1)``; one sparse product with the
-    cell-membership matrix of ``bins`` for all of them (float64 sums).
+    cell-membership matrix of ``bins`` per spectrum (float64 sums).
     """
-    k = spectra.shape[0]
-    v = spectra.view(np.float32)
-    sq = v * v
-    power = np.add(sq[..., 0::2], sq[..., 1::2], dtype=np.float64).reshape(k, -1)
-    return (bins.cell_matrix @ power.T).T.reshape(k, bins.n_rings, bins.n_bins)
+    out = np.empty((spectra.shape[0], bins.n_rings, bins.n_bins), dtype=np.float64)
+    for i, spectrum in enumerate(spectra):
+        v = spectrum.view(np.float32)
+        sq = v * v
+        power = np.add(sq[:, 0::2], sq[:, 1::2]).ravel()
+        out[i] = (bins.cell_matrix @ power).reshape(bins.n_rings, bins.n_bins)
+    return out
 
 
 def profile_of_cells(cells: np.ndarray, bins: SpectralBins) -> np.ndarray | None:
@@ -1319,6 +1330,24 @@ class AllowedMasks:
             allowed &= ~inner_boundary(body)
         return allowed
 
+    def stack(self, z0: int, z1: int) -> np.ndarray:
+        """The masks of slices ``z0`` to ``z1 - 1`` as one ``(k, ny_b, nx_b)`` array (the same masks)."""
+        k = z1 - z0
+        allowed = np.repeat(self.base[None], k, axis=0)
+        regions = self.regions
+        if regions is None:
+            return allowed
+        tables = regions.table[z0:z1]
+        for i in np.flatnonzero(tables.reshape(k, -1).any(axis=1)):
+            table = bin_mask(tables[i], self.factor)
+            key = np.packbits(table).tobytes()
+            excluded = self._tables.get(key)
+            if excluded is None:
+                excluded = self._tables.setdefault(key, table_exclusion(table, int(self.cfg["table_band_px"])))
+            allowed[i] &= ~excluded
+        allowed &= ~inner_boundary(bin_mask(regions.body[z0:z1], self.factor))
+        return allowed
+
 
 def table_band(table: np.ndarray, margin_px: int) -> np.ndarray:
     """The rows of a flat table, widened by ``margin_px``, across the whole slice.
@@ -1441,7 +1470,7 @@ def screen_volume(volume: Volume, regions: Regions | None, cfg: dict[str, Any]) 
 
     def one(i: int) -> list[np.ndarray | str]:
         z0, z1 = starts[i], min(starts[i] + SCREEN_STACK, nz)
-        allowed = np.stack([masks(z) for z in range(z0, z1)])
+        allowed = masks.stack(z0, z1)
         return screen_stack(volume.hu[z0:z1], allowed, factor, bins, cfg)
 
     outcomes = [o for stack in map_slices(one, len(starts), SCREEN_THREADS) for o in stack]
@@ -1468,20 +1497,23 @@ def screen_stack(images: np.ndarray, allowed: np.ndarray, factor: int, bins: Spe
     textured, transformed and binned in frequency together; each outcome depends on its
     own slice only.
     """
-    binned = bin_slice(images, factor)
-    outcomes: list[np.ndarray | str] = ["without usable pixels"] * images.shape[0]
+    k = images.shape[0]
+    binned = bin_slice(images, factor) if factor == 1 else np.stack([bin_slice(images[i], factor) for i in range(k)])
+    high, low = binned.reshape(k, -1).max(axis=1), binned.reshape(k, -1).min(axis=1)
+    finite = np.isfinite(high) & np.isfinite(low)
+    outcomes: list[np.ndarray | str] = ["without usable pixels"] * k
     keep = []
-    for i in range(images.shape[0]):
-        kind = _unusable(binned[i], images[i])
+    for i in range(k):
+        kind = None if finite[i] and high[i] != low[i] else _unusable(binned[i], images[i])
         if kind:
             outcomes[i] = kind
         else:
             keep.append(i)
     if not keep:
         return outcomes
-    if len(keep) < images.shape[0]:
-        binned, allowed = binned[keep], allowed[keep]
-    textures, usable = screen_textures(binned, allowed, cfg)
+    if len(keep) < k:
+        binned, allowed, finite = binned[keep], allowed[keep], finite[keep]
+    textures, usable = screen_textures(binned, allowed, cfg, finite)
     good = [j for j in range(len(keep)) if usable[j]]
     if good:
         stack = textures if len(good) == len(keep) else textures[good]

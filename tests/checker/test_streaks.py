@@ -363,3 +363,116 @@ def test_smooth_box2_equals_two_2d_box_passes(shape, sigma):
     got = streaks.smooth_box2(values, sigma)
     assert got.shape == shape and got.dtype == np.float32
     assert np.max(np.abs(got - expected)) <= 1e-6 * np.max(np.abs(expected))
+
+
+# ------------------------------------------------------------------------- screen helpers
+def test_stacked_screen_equals_one_slice_at_a_time():
+    """The screen of a stack gives each slice the profile it gets alone (slices are independent)."""
+    rng = np.random.default_rng(8)
+    hu = np.stack([line_image(20.0 + 35 * k, n=96, seed=k) for k in range(5)])
+    hu += rng.normal(0.0, 1.0, hu.shape).astype(np.float32)
+    hu[3] = 5.0  # constant: skipped in both
+    vol = Volume.from_array(hu)
+    regions = find_regions(vol)
+    cfg = streaks.resolve_settings(None)
+    bins = streaks.spectral_bins((96, 96), tuple(cfg["band_cycles_per_px"]), float(cfg["angle_bin_deg"]))
+    masks = streaks.AllowedMasks(regions, 1, (96, 96), cfg)
+    stacked = streaks.screen_stack(vol.hu, masks.stack(0, 5), 1, bins, cfg)
+    for z in range(5):
+        alone = streaks.screen_slice(vol.hu[z], masks(z), 1, bins, cfg)
+        if isinstance(alone, str):
+            assert stacked[z] == alone == "constant"
+        else:
+            assert np.allclose(stacked[z], alone, rtol=1e-6, atol=1e-9)
+
+
+def test_mask_stack_equals_per_slice_masks():
+    """AllowedMasks.stack gives the same masks as allowed_mask slice by slice (table and body)."""
+    from dataclasses import replace
+
+    n = 128
+    yy, xx = np.mgrid[0:n, 0:n]
+    hu = np.full((4, n, n), -1000.0, dtype=np.float32)
+    hu[:, ((xx - 64) / 40.0) ** 2 + ((yy - 60) / 30.0) ** 2 <= 1] = 40.0
+    hu[2] = -1000.0  # one slice with no body
+    hu += np.random.default_rng(3).normal(0, 5, hu.shape).astype(np.float32)
+    vol = Volume.from_array(hu)
+    table = np.zeros(hu.shape, dtype=bool)
+    table[:, 100:106, 20:108] = True  # a flat couch below the body ...
+    table[1] = False  # ... missing on one slice
+    table[3, 100:107, 20:108] = True  # ... and one row thicker on another
+    regions = replace(find_regions(vol), table=table)
+    assert regions.body[0].any() and not regions.body[2].any()
+    cfg = streaks.resolve_settings(None)
+    masks = streaks.AllowedMasks(regions, 2, (64, 64), cfg)
+    stack = masks.stack(0, 4)
+    for z in range(4):
+        assert np.array_equal(stack[z], streaks.allowed_mask(regions, z, 2, (64, 64), cfg))
+        assert np.array_equal(masks(z), stack[z])
+    assert not stack[0, 50:53].any()  # the couch band is left out across the slice
+    assert stack[1, 50:53].any()
+
+
+@pytest.mark.parametrize("factor", [2, 4, 8])
+def test_upsample_linear_is_bilinear_between_block_centres(factor):
+    """Block centres at factor*j + (factor-1)/2; values between them linear, edges held."""
+    from scipy import interpolate
+
+    coarse = np.random.default_rng(factor).random((2, 6, 5)).astype(np.float32)
+    shape = (6 * factor - 1, 5 * factor)
+    got = streaks.upsample_linear(coarse, factor, shape)
+    y = np.clip((np.arange(shape[0]) - (factor - 1) / 2) / factor, 0, 5)
+    x = np.clip((np.arange(shape[1]) - (factor - 1) / 2) / factor, 0, 4)
+    pts = np.stack(np.meshgrid(y, x, indexing="ij"), -1)
+    for i in range(2):
+        expected = interpolate.RegularGridInterpolator((np.arange(6), np.arange(5)), coarse[i])(pts)
+        assert np.max(np.abs(got[i] - expected)) <= 1e-6
+
+
+@pytest.mark.parametrize("mode", ["reflect", "constant"])
+@pytest.mark.parametrize("sigma", [1.5, 0.6, 2.5])
+def test_shift_add_blur_equals_scipy_on_slices_of_a_stack(mode, sigma):
+    """Same sampled kernel and border rule as scipy.ndimage.gaussian_filter, slice by slice."""
+    from scipy import ndimage
+
+    stack = (np.random.default_rng(9).normal(size=(3, 37, 41)) * 50.0).astype(np.float32)
+    got = streaks.shift_add_blur(stack, sigma, 3.0, mode)
+    for i in range(3):
+        expected = ndimage.gaussian_filter(stack[i], sigma, truncate=3.0, mode=mode)
+        assert np.max(np.abs(got[i] - expected)) <= 1e-5 * np.max(np.abs(stack[i]))
+
+
+def test_gaussian_matrix_equals_constant_mode_correlation():
+    from scipy import ndimage
+
+    x = np.random.default_rng(10).random((32, 7)).astype(np.float32)
+    for n in (32, 5, 2):
+        g = streaks.gaussian_matrix(n, 1.146, 3.0)
+        expected = ndimage.correlate1d(x[:n], np.asarray(streaks.gaussian_taps(1.146, 3.0)), axis=0, mode="constant")
+        assert np.max(np.abs(g @ x[:n] - expected)) <= 1e-6
+
+
+def test_block_mean_even_pads_odd_sides():
+    values = np.arange(5 * 6, dtype=np.float32).reshape(5, 6)
+    got = streaks.block_mean_even(values, 2, "edge")
+    padded = np.vstack([values, values[-1:]])
+    expected = padded.reshape(3, 2, 3, 2).mean(axis=(1, 3))
+    assert got.shape == (3, 3) and np.allclose(got, expected)
+    zero = streaks.block_mean_even(values, 2, "zero")
+    assert np.allclose(zero[-1], values[-1].reshape(3, 2).sum(axis=1) / 4.0)
+
+
+def test_screen_gain_flattens_a_two_level_noise():
+    """A slice with noise SD 5 on the left and 20 on the right: after the screen's noise
+    equalisation the two halves have about the same RMS (common practice, no source)."""
+    rng = np.random.default_rng(11)
+    img = rng.normal(0.0, 5.0, (128, 128)).astype(np.float32)
+    img[:, 64:] *= 4.0
+    allowed = np.ones(img.shape, dtype=bool)
+    texture = streaks.screen_texture(img, allowed, streaks.resolve_settings(None))
+    left, right = texture[20:108, 20:44], texture[20:108, 84:108]
+    ratio = float(np.sqrt(np.mean(right**2) / np.mean(left**2)))
+    assert 0.8 <= ratio <= 1.25, ratio
+    plain = streaks.screen_texture(img, allowed, streaks.resolve_settings({"noise_equalise_sigma_px": 0.0}))
+    plain_ratio = float(np.sqrt(np.mean(plain[20:108, 84:108] ** 2) / np.mean(plain[20:108, 20:44] ** 2)))
+    assert plain_ratio > 3.0, plain_ratio  # without the equalisation the halves differ
