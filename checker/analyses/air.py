@@ -795,16 +795,6 @@ def present_labels(values: np.ndarray) -> np.ndarray:
     return np.flatnonzero(np.bincount(values.ravel()))
 
 
-def components_holding(lab: np.ndarray, n: int, high: np.ndarray) -> np.ndarray:
-    """``lab`` with only the components that hold a ``high`` cell, renumbered 1..k in
-    their original order (so boxes need be found for these few only)."""
-    hold = present_labels(lab[high])
-    hold = hold[hold > 0]
-    lut = np.zeros(n + 1, dtype=np.int32)
-    lut[hold] = np.arange(1, hold.size + 1, dtype=np.int32)
-    return lut[lab]
-
-
 def cores_by_component(
     lab: np.ndarray, objects: list[tuple[slice, ...] | None], high: np.ndarray
 ) -> list[tuple[int, np.ndarray]]:
@@ -876,14 +866,17 @@ def hysteresis_structures_boxes(
         return out, snr, []
     low = m.valid & (m.z > grow_sigma)
     if m.threshold > grow_sigma:  # every core lies in one component of ``low``
-        box = components_box(low, high, box)
-    lab, n = ndimage.label(low[box])
+        box, lab, n = components_box(low, high, box)
+    else:
+        lab, n = ndimage.label(low[box])
     if n == 0:
         return out, snr, []
     high = high[box]
     if m.threshold > grow_sigma:
-        lab = components_holding(lab, n, high)  # the others dropped, order kept
-        objects = ndimage.find_objects(lab)
+        hold = present_labels(lab[high])
+        if hold.size == 0 or hold[-1] == 0:
+            return out, snr, []
+        objects = ndimage.find_objects(lab, max_label=int(hold[-1]))  # boxes up to the last label holding a core
         cores = cores_by_component(lab, objects, high)
     else:
         objects = ndimage.find_objects(lab)
@@ -931,32 +924,34 @@ def _padded_box_3d(mask: np.ndarray, pad: int) -> tuple[slice, ...] | None:
     return tuple(out)
 
 
-def components_box(low: np.ndarray, high: np.ndarray, box: tuple[slice, ...], max_rounds: int = 4) -> tuple[slice, ...]:
-    """A box that holds every component of ``low`` containing a ``high`` cell whole.
+def components_box(
+    low: np.ndarray, high: np.ndarray, box: tuple[slice, ...], max_rounds: int = 4
+) -> tuple[tuple[slice, ...], np.ndarray, int]:
+    """A box that holds every component of ``low`` containing a ``high`` cell whole, with
+    ``ndimage.label(low[box])``.
 
     Starts from ``box`` (around the high cells) and grows every face that such a
     component reaches (a component that reaches a face may go on beyond it) until none
     does; after ``max_rounds`` the whole grid.
     """
-    full = tuple(slice(0, n) for n in low.shape)
     for _ in range(max_rounds):
         lab, n = ndimage.label(low[box])
         hold = present_labels(lab[high[box]])
-        hold = hold[hold > 0]
         keep = np.zeros(n + 1, dtype=bool)
-        keep[hold] = True
-        comp = keep[lab]
+        keep[hold[hold > 0]] = True
         grown = []
         for axis, (x, size) in enumerate(zip(box, low.shape)):
-            lo_face = comp.take(0, axis=axis).any() and x.start > 0
-            hi_face = comp.take(-1, axis=axis).any() and x.stop < size
+            lo_face = x.start > 0 and bool(keep[lab.take(0, axis=axis)].any())
+            hi_face = x.stop < size and bool(keep[lab.take(-1, axis=axis)].any())
             step = max(4, (x.stop - x.start) // 2)
             grown.append(slice(max(0, x.start - step) if lo_face else x.start, min(size, x.stop + step) if hi_face else x.stop))
         grown = tuple(grown)
         if grown == box:
-            return box
+            return box, lab, n
         box = grown
-    return full
+    full = tuple(slice(0, n) for n in low.shape)
+    lab, n = ndimage.label(low)
+    return full, lab, n
 
 
 def scaled_box(sl: tuple[slice, ...], factors: tuple[int, ...], shape: tuple[int, ...]) -> tuple[slice, ...]:
@@ -1151,6 +1146,22 @@ def refine_structure(
     return tight, np.ascontiguousarray(comp[local]), count, centroid
 
 
+def _structure_mean_hu(
+    hu_box: np.ndarray,
+    comp: np.ndarray,
+    cells: np.ndarray,
+    box: tuple[slice, ...],
+    air_mean: float,
+    block_sums: tuple[np.ndarray, np.ndarray] | None,
+) -> float:
+    """Mean CT number of a structure: from its blocks' totals when given, else its voxels."""
+    if block_sums is not None:
+        n = float(block_sums[1][box][cells].sum(dtype=np.float64))
+        if n > 0:
+            return air_mean + float(block_sums[0][box][cells].sum(dtype=np.float64)) / n
+    return float(hu_box[comp].mean(dtype=np.float64))
+
+
 def measure_structures(
     volume: Volume,
     air: np.ndarray,
@@ -1161,25 +1172,30 @@ def measure_structures(
     noise: float,
     ctx: Context,
     s: dict[str, Any],
+    block_sums: tuple[np.ndarray, np.ndarray] | None = None,
 ) -> list[tuple[dict[str, Any], tuple[slice, ...], np.ndarray]]:
     """The per-structure record (id, position, size, CT numbers, kind, flagged), with the
     structure's full-resolution box and mask, for each label of the coarse map ``lab0``.
 
-    Only the boxes of the structures are read at full resolution.
+    Only the boxes of the structures are read at full resolution. ``block_sums``: the
+    contrast above ``air_mean`` summed over each block's air pixels and the air pixels
+    per block, on the grid of ``lab0``; a structure's voxels are the air pixels of its
+    blocks, so its mean CT number is the ratio of their totals (the same number as the
+    mean over its voxels, up to float32 rounding of the block sums).
     """
     out = []
     vox = volume.voxel_volume_mm3
     for i, box in enumerate(boxes0, start=1):
         if box is None:
             continue
-        found = refine_structure(volume, air, lab0[box] == i, box, base)
+        cells = lab0[box] == i
+        found = refine_structure(volume, air, cells, box, base)
         if found is None:
             continue
         sl, comp, count, idx = found
         if count * vox < float(s["min_volume_mm3"]):
             continue
-        values = volume.hu[sl][comp]
-        mean_hu = float(values.mean(dtype=np.float64))
+        mean_hu = _structure_mean_hu(volume.hu[sl], comp, cells, box, air_mean, block_sums)
         if mean_hu - air_mean < float(s["min_contrast_hu"]):  # a blur tail, not a structure
             continue
         kind = classify(sl, comp, ctx)
@@ -1191,7 +1207,7 @@ def measure_structures(
             "bbox_zyx_vox": [[x.start for x in sl], [x.stop - 1 for x in sl]],
             "volume_mm3": round(count * vox, 2),
             "mean_hu": round(mean_hu, 2),
-            "max_hu": round(float(values.max()), 2),
+            "max_hu": round(float(np.max(volume.hu[sl], where=comp, initial=-np.inf)), 2),
             "contrast_to_noise": round((mean_hu - air_mean) / max(noise, 1e-6), 2),
             "slices": [sl[0].start, sl[0].stop - 1],
             "kind": kind,
@@ -1313,7 +1329,6 @@ def analyse(volume: Volume, regions: Regions, settings: dict[str, Any] | None = 
 
     sums -= np.float32(mean) * counts  # contrast above the air, summed over each block's air
     maps = matched_filter_scales(sums, counts, base, volume.spacing_mm, s, float(s["min_air_noise_hu"]), hu.shape[0])
-    del sums, counts
     mode = s["single_slice_mode"]
     ctx = Context(
         regions,
@@ -1327,7 +1342,8 @@ def analyse(volume: Volume, regions: Regions, settings: dict[str, Any] | None = 
     if maps:
         lab0, base0, boxes0 = combine_scales_boxes(maps, float(s["grow_sigma"]))
         del maps
-        found = measure_structures(volume, air, lab0, boxes0, base0, mean, noise, ctx, s)
+        block_sums = (sums, counts) if base0 == base else None
+        found = measure_structures(volume, air, lab0, boxes0, base0, mean, noise, ctx, s, block_sums)
         kept = {id(st) for st in _limit([f[0] for f in found], int(s["max_structures"]))}
         found = [f for f in found if id(f[0]) in kept]
         for new_id, (st, _, _) in enumerate(found, start=1):
