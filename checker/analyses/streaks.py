@@ -546,8 +546,9 @@ def power(spectrum: np.ndarray) -> np.ndarray:
 # slices keeps the full-grid texture (:func:`slice_texture`). Every helper below works
 # on the last two axes of a 2-D slice or a 3-D stack of slices.
 
-#: at most this many samples for a slice's robust statistics (fill value, noise scale)
-ROBUST_SAMPLES = 4096
+#: at most about this many samples for a slice's robust noise scale (a robust SD from
+#: 2000 samples is within a few per cent; the scale sets the clip level and the gain)
+ROBUST_SAMPLES = 2048
 #: about this many samples for a slice's fill value (only where pixels are masked)
 FILL_SAMPLES = 1024
 #: coarse grid of the local noise level: blocks of this many screen pixels a side
@@ -610,19 +611,38 @@ def shift_add_blur(image: np.ndarray, sigma_px: float, truncate: float, mode: st
 
 
 def _shift_add_axis(ext: np.ndarray, taps: tuple[float, ...], axis: int, n: int) -> np.ndarray:
+    """One axis of :func:`shift_add_blur` on the extended array ``ext`` (``n`` outputs per line).
+
+    Along the last axis the rows are processed as one flat, contiguous line: output
+    ``j`` of the flat line needs inputs ``j .. j + 2 radius``, which for the ``n`` valid
+    outputs of a row stay inside that row's extended samples; the outputs that straddle
+    two rows fall in the padding columns and are dropped.
+    """
     radius = len(taps) // 2
-    nd = ext.ndim
-
-    def shifted(k: int) -> np.ndarray:
-        return ext[_along(axis, slice(k, k + n), nd)]
-
-    out = shifted(radius) * np.float32(taps[radius])
+    if axis in (-1, ext.ndim - 1):
+        flat = np.ascontiguousarray(ext).reshape(-1)
+        length = flat.size - 2 * radius
+        buf = np.empty(flat.size, dtype=np.float32)
+        out = buf[:length]
+        shifted = lambda k: flat[k : k + length]  # noqa: E731
+    else:
+        nd = ext.ndim
+        shifted = lambda k: ext[_along(axis, slice(k, k + n), nd)]  # noqa: E731
+        buf = out = None
+    first = shifted(radius)
+    if out is None:
+        out = first * np.float32(taps[radius])
+    else:
+        np.multiply(first, np.float32(taps[radius]), out=out)
     pair = np.empty_like(out)
     for k in range(radius):
         np.add(shifted(k), shifted(2 * radius - k), out=pair)
         pair *= np.float32(taps[k])
         out += pair
-    return out
+    if buf is None:
+        return out
+    buf[length:] = 0.0
+    return buf.reshape(ext.shape)[..., :n]
 
 
 def block_mean_even(values: np.ndarray, factor: int, pad: str) -> np.ndarray:
@@ -763,12 +783,12 @@ def coarse_noise_gain(square_mean: np.ndarray, weight: np.ndarray, scale_hu: np.
 def grid_subsample(values: np.ndarray, mask: np.ndarray, max_samples: int, count: int | None = None) -> np.ndarray:
     """Values under ``mask`` on a regular sub-grid of at most about ``max_samples`` points.
 
-    The grid step is ``sqrt(count / max_samples)`` (whole pixels, at least 1), ``count``
+    The grid step is ``sqrt(count / max_samples)`` rounded up to whole pixels, ``count``
     being the number of pixels under the mask; without it the array size is used (fewer
     samples when the mask covers part of the array, no pass to count them).
     """
     n = mask.size if count is None else count
-    step = max(1, int(math.sqrt(n / max(1, max_samples))))
+    step = max(1, int(math.ceil(math.sqrt(n / max(1, max_samples)))))
     return values[::step, ::step][mask[::step, ::step]]
 
 
