@@ -2,6 +2,7 @@
 from __future__ import annotations
 
 import math
+from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
@@ -29,8 +30,11 @@ from ._headers import (
     check_has_pixels,
     check_is_ct,
     check_monochrome,
+    quick_dataset,
     quick_get,
+    quick_pixels_of,
     read_dataset,
+    read_quick_pixels,
 )
 from ._types import SeriesSource
 
@@ -254,6 +258,9 @@ def _transfer_syntax(ds: Dataset) -> str:
 def _stored_frames(ds: Dataset, path: Path) -> np.ndarray:
     """Stored values (frames, rows, cols) of one file; UnreadableFileError if damaged."""
     rows, cols = int(quick_get(ds, "Rows")), int(quick_get(ds, "Columns"))
+    where = quick_pixels_of(ds)
+    if where is not None:  # a plain native file from quick_dataset: pixels read straight from disk
+        return read_quick_pixels(path, where).reshape(1, rows, cols)
     frames = int(ds.get("NumberOfFrames", 1) or 1)
     try:
         if _transfer_syntax(ds) in (ImplicitVRLittleEndian, ExplicitVRLittleEndian) and int(quick_get(ds, "BitsAllocated")) == 16 \
@@ -348,13 +355,57 @@ class _PaddingTracker:
 
 # --------------------------------------------------------------------------- series
 def _read_all(src: SeriesSource) -> tuple[list[tuple[Path, Dataset]], list[tuple[Path, ReconauditError]]]:
+    """Every file's dataset: plain native CT files from the quick header parse (pixels
+    left on disk), everything else read whole by pydicom; see :func:`_checked_quick`."""
     good, bad = [], []
-    for path in src.files:
+    for path in map(Path, src.files):
         try:
-            good.append((Path(path), read_dataset(Path(path))))
+            ds = quick_dataset(path)
+            good.append((path, ds if ds is not None else read_dataset(path)))
         except ReconauditError as err:
-            bad.append((Path(path), err))
-    return good, bad
+            bad.append((path, err))
+    return _checked_quick(good), bad
+
+
+def _same_elements(quick: Dataset, full: Dataset) -> bool:
+    """Whether two readings of one file hold the same elements with the same values
+    (pixel data compared as stored values)."""
+    if set(quick.keys()) != set(full.keys()):
+        return False
+    for tag in full.keys():
+        if tag == 0x7FE00010:
+            continue
+        if quick[tag].VR != full[tag].VR or quick[tag].value != full[tag].value:
+            return False
+    return True
+
+
+def _checked_quick(datasets: list[tuple[Path, Dataset]]) -> list[tuple[Path, Dataset]]:
+    """Cross-check the quick parse against pydicom once per series.
+
+    The first quickly read file is read again by pydicom: its elements and its stored
+    pixel values must be the same. When they differ, every quickly read file is read by
+    pydicom instead.
+    """
+    quick = [i for i, (_, ds) in enumerate(datasets) if quick_pixels_of(ds) is not None]
+    if not quick:
+        return datasets
+    path, ds = datasets[quick[0]]
+    try:
+        full = read_dataset(path)
+        stored = _stored_frames(ds, path)
+        agree = _same_elements(ds, full) and np.array_equal(stored, _stored_frames(full, path))
+    except ReconauditError:
+        agree = False
+    if agree:
+        return datasets
+    out = list(datasets)
+    for i in quick:
+        try:
+            out[i] = (out[i][0], read_dataset(out[i][0]))
+        except ReconauditError:
+            pass  # kept as read; its pixels raise when read
+    return out
 
 
 def _validate_objects(datasets: list[tuple[Path, Dataset]], bad: list, label: str, notes: list[str]) -> list[tuple[Path, Dataset]]:
@@ -456,6 +507,10 @@ def _rescale_into(stored: np.ndarray, slope: float, intercept: float, out: np.nd
         out += np.float32(intercept)
 
 
+#: Threads reading and rescaling files (file reads and numpy release the interpreter lock).
+READ_THREADS = 2
+
+
 def _fill(datasets, frames, geometry, rows, cols):
     out_index = np.empty(len(frames), dtype=int)
     out_index[geometry.order] = np.arange(len(frames))
@@ -465,19 +520,30 @@ def _fill(datasets, frames, geometry, rows, cols):
     hu = np.empty((len(frames), rows, cols), dtype=np.float32)
     failed: dict[int, tuple[Path, ReconauditError]] = {}
     pad = _PaddingTracker()
-    for ds_index in sorted(by_ds, key=lambda i: min(out_index[j] for j in by_ds[i])):
+
+    def fill_one(ds_index: int):
         path, ds = datasets[ds_index]
         try:
             stored = _stored_frames(ds, path)
         except ReconauditError as err:
-            for j in by_ds[ds_index]:
-                failed[int(out_index[j])] = (path, err)
-            continue
-        pad_range = _padding_range(ds)
+            return ds_index, None, err
         for j in by_ds[ds_index]:
-            f, k = frames[j], int(out_index[j])
-            _rescale_into(stored[f.frame], f.slope, f.intercept, hu[k])
-            pad.add(stored[f.frame], pad_range, f.slope, f.intercept)
+            f = frames[j]
+            _rescale_into(stored[f.frame], f.slope, f.intercept, hu[int(out_index[j])])
+        return ds_index, stored, None
+
+    order = sorted(by_ds, key=lambda i: min(out_index[j] for j in by_ds[i]))
+    with ThreadPoolExecutor(max_workers=READ_THREADS) as pool:
+        for ds_index, stored, err in pool.map(fill_one, order):
+            path, ds = datasets[ds_index]
+            if err is not None:
+                for j in by_ds[ds_index]:
+                    failed[int(out_index[j])] = (path, err)
+                continue
+            pad_range = _padding_range(ds)
+            for j in by_ds[ds_index]:
+                f = frames[j]
+                pad.add(stored[f.frame], pad_range, f.slope, f.intercept)
     return hu, failed, pad.result()
 
 

@@ -1,0 +1,149 @@
+"""The quick DICOM read (own header parse, pixels read straight from disk) against pydicom.
+
+Every file the quick read accepts must give pydicom's elements and pydicom's stored
+pixel values; a series loads to the same Volume whether the quick read is used or not;
+a disagreement found by the once-per-series cross-check sends every file to pydicom.
+"""
+from __future__ import annotations
+
+import shutil
+from pathlib import Path
+
+import numpy as np
+import pydicom
+import pytest
+from pydicom.data import get_testdata_file
+
+from reconaudit.checker.dicom_write import write_ct_series
+from reconaudit.checker.errors import UnreadableFileError
+from reconaudit.checker.load import _dicom, _headers, discover, load_series
+from reconaudit.checker.volume import Volume
+
+
+def _volume(nz: int = 5, n: int = 24) -> Volume:
+    rng = np.random.default_rng(3)
+    hu = rng.normal(-300.0, 400.0, (nz, n, n)).round().astype(np.float32)
+    pad = np.zeros((n, n), dtype=bool)
+    pad[:3, :3] = True
+    hu[:, pad] = -2000.0
+    return Volume.from_array(hu, spacing_mm=(2.0, 0.8, 0.8), origin_mm=(-10.0, -10.0, 40.0), padding_mask=pad)
+
+
+def _series(folder: Path, **kw) -> list[Path]:
+    return write_ct_series(_volume(), folder, series_description="quick read test", padding_value=-2000, **kw)
+
+
+def _load(folder: Path) -> Volume:
+    found = discover([folder])
+    assert len(found.series) == 1
+    return load_series(found.series[0])
+
+
+def _same_volume(a: Volume, b: Volume) -> None:
+    assert a.hu.dtype == b.hu.dtype == np.float32
+    np.testing.assert_array_equal(a.hu, b.hu)
+    np.testing.assert_array_equal(a.affine, b.affine)
+    assert a.spacing_mm == b.spacing_mm and a.metadata == b.metadata and a.notes == b.notes
+    assert (a.padding_mask is None) == (b.padding_mask is None)
+    if a.padding_mask is not None:
+        np.testing.assert_array_equal(a.padding_mask, b.padding_mask)
+
+
+def test_pydicom_ct_small_read_quickly_equals_pydicom():
+    """pydicom's shipped CT test file CT_small.dcm (pydicom.data.get_testdata_file): the
+    quick read accepts it (a sequence of undefined length, elements after the pixel data)
+    and gives pydicom's elements and pydicom's stored pixel values."""
+    path = Path(get_testdata_file("CT_small.dcm"))
+    quick = _headers.quick_dataset(path)
+    assert quick is not None
+    full = pydicom.dcmread(path)
+    assert _dicom._same_elements(quick, full)
+    stored = _headers.read_quick_pixels(path, _headers.quick_pixels_of(quick))
+    np.testing.assert_array_equal(stored.reshape(full.pixel_array.shape), full.pixel_array)
+    assert float(quick.RescaleIntercept) == float(full.RescaleIntercept)
+
+
+def test_every_pydicom_test_file_accepted_quickly_equals_pydicom():
+    """Every file shipped with pydicom (pydicom.data) that the quick read accepts gives
+    pydicom's elements and stored values; the rest are left to pydicom (None)."""
+    from pydicom.data import get_testdata_files
+
+    accepted = 0
+    for name in get_testdata_files("*"):
+        path = Path(name)
+        quick = _headers.quick_dataset(path)
+        if quick is None:
+            continue
+        accepted += 1
+        full = pydicom.dcmread(path)
+        assert _dicom._same_elements(quick, full), path.name
+        stored = _headers.read_quick_pixels(path, _headers.quick_pixels_of(quick))
+        np.testing.assert_array_equal(stored.reshape(full.pixel_array.shape), full.pixel_array, err_msg=path.name)
+    assert accepted >= 1
+
+
+def test_series_loads_the_same_with_and_without_the_quick_read(tmp_path, monkeypatch):
+    _series(tmp_path)
+    assert all(_headers.quick_dataset(p) is not None for p in tmp_path.glob("*.dcm"))
+    quick = _load(tmp_path)
+    monkeypatch.setattr(_dicom, "quick_dataset", lambda path: None)
+    plain = _load(tmp_path)
+    _same_volume(quick, plain)
+    np.testing.assert_array_equal(quick.hu[:, ~quick.padding_mask], _volume().hu[:, ~quick.padding_mask])
+
+
+def test_one_reading_thread_gives_the_same_volume(tmp_path, monkeypatch):
+    _series(tmp_path)
+    two = _load(tmp_path)
+    monkeypatch.setattr(_dicom, "READ_THREADS", 1)
+    _same_volume(two, _load(tmp_path))
+
+
+def test_cross_check_disagreement_sends_every_file_to_pydicom(tmp_path, monkeypatch):
+    """When the quick read of the first file disagrees with pydicom, no quick pixels are used."""
+    _series(tmp_path)
+    real = _headers.read_quick_pixels
+
+    def wrong(path, where):
+        return real(path, where) + 1  # a quick read that is off by one stored value
+
+    monkeypatch.setattr(_dicom, "read_quick_pixels", wrong)
+    vol = _load(tmp_path)
+    monkeypatch.setattr(_dicom, "quick_dataset", lambda path: None)
+    _same_volume(vol, _load(tmp_path))
+
+
+def test_file_truncated_inside_pixel_data_is_left_to_pydicom_and_refused(tmp_path):
+    paths = _series(tmp_path)
+    data = paths[2].read_bytes()
+    paths[2].write_bytes(data[: len(data) - 100])
+    assert _headers.quick_dataset(paths[2]) is None
+    with pytest.raises(UnreadableFileError) as info:
+        _load(tmp_path)
+    assert paths[2].name in str(info.value)
+
+
+def test_file_truncated_after_the_quick_parse_names_the_file(tmp_path):
+    paths = _series(tmp_path)
+    quick = _headers.quick_dataset(paths[1])
+    data = paths[1].read_bytes()
+    paths[1].write_bytes(data[:-10])
+    with pytest.raises(UnreadableFileError, match="truncated pixel data") as info:
+        _headers.read_quick_pixels(paths[1], _headers.quick_pixels_of(quick))
+    assert paths[1].name in str(info.value)
+
+
+def test_other_bit_depths_and_implicit_vr_are_left_to_pydicom(tmp_path):
+    paths = _series(tmp_path)
+    ds = pydicom.dcmread(paths[0])
+    ds.BitsStored = 12
+    ds.HighBit = 11
+    ds.save_as(paths[0])
+    assert _headers.quick_dataset(paths[0]) is None
+    other = tmp_path / "implicit.dcm"
+    shutil.copy(paths[1], other)
+    ds = pydicom.dcmread(other)
+    ds.file_meta.TransferSyntaxUID = pydicom.uid.ImplicitVRLittleEndian
+    ds.save_as(other, implicit_vr=True, little_endian=True, enforce_file_format=True)
+    assert pydicom.dcmread(other).file_meta.TransferSyntaxUID == pydicom.uid.ImplicitVRLittleEndian
+    assert _headers.quick_dataset(other) is None
