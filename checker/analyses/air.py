@@ -436,28 +436,74 @@ def _masked_plane_sum_unchecked(h: np.ndarray, a: np.ndarray, out: np.ndarray) -
     return out
 
 
+def _plane_block_sum(plane: np.ndarray, ky: int, kx: int, rows: np.ndarray, out: np.ndarray) -> np.ndarray:
+    """Sums of ``plane`` (y, x) over blocks of ``ky`` x ``kx`` pixels into ``out``, through
+    the row buffer ``rows`` (y / ky, x); both dimensions whole multiples of the block."""
+    ny, nx = plane.shape
+    if ky == 1:
+        rows[...] = plane
+    else:
+        v = plane.reshape(ny // ky, ky * nx)  # the ky rows of a block side by side
+        np.add(v[:, 0:nx], v[:, nx : 2 * nx], out=rows, casting="unsafe")
+        for o in range(2, ky):
+            np.add(rows, v[:, o * nx : (o + 1) * nx], out=rows, casting="unsafe")
+    if kx == 1:
+        out[...] = rows
+        return out
+    np.add(rows[:, 0::kx], rows[:, 1::kx], out=out, casting="unsafe")
+    for o in range(2, kx):
+        np.add(out, rows[:, o::kx], out=out, casting="unsafe")
+    return out
+
+
 def coarse_air_grid(hu: np.ndarray, air: np.ndarray, factors: tuple[int, int, int]) -> tuple[np.ndarray, np.ndarray]:
     """Sums of the CT number over the air pixels of each block, and the number of air
     pixels in it (float32 grids of ``ceil(shape / factors)`` cells).
 
     The one full-resolution pass of the analysis, one layer of blocks (``factors[0]``
     slices) at a time: the slices are added and masked once (:func:`_masked_plane_sum`),
-    then summed over the block's rows and columns. A block whose air holds a non-finite
-    CT number is left out (count 0); a non-finite value outside the air is ignored.
+    then summed over the block's rows and columns into buffers made once. A block whose
+    air holds a non-finite CT number is left out (count 0); a non-finite value outside
+    the air is ignored.
 
     References
     ----------
     .. [1] Block averaging to a coarser grid: common practice, no source.
     """
+    kz, ky, kx = factors
+    nz, ny, nx = hu.shape
+    if ny % ky or nx % kx:  # edges that are not whole blocks: the general block sums
+        return _coarse_air_grid_ragged(hu, air, factors)
+    cdt = _count_dtype(int(np.prod(factors)))
+    out_shape = (-(-nz // kz), ny // ky, nx // kx)
+    sums = np.empty(out_shape, dtype=np.float32)
+    counts = np.empty(out_shape, dtype=np.float32)
+    plane = np.empty((ny, nx), dtype=np.float32)
+    rows = np.empty((ny // ky, nx), dtype=np.float32)
+    step = kz * max(1, 16 // kz)
+    for z0 in range(0, nz, step):  # the counts, 16 slices at a time
+        counts[z0 // kz : -(-min(nz, z0 + step) // kz)] = _grid_sum(air[z0 : z0 + step].view(np.uint8), factors, cdt)
+    for b, z0 in enumerate(range(0, nz, kz)):
+        h, a = hu[z0 : z0 + kz], air[z0 : z0 + kz]
+        _plane_block_sum(_masked_plane_sum(h, a, plane), ky, kx, rows, sums[b])
+        if not np.isfinite(sums[b]).all():
+            part = _exact_masked_sum(h, a, (1, ky, kx), factors)
+            bad = ~np.isfinite(part)
+            counts[b][bad] = 0.0
+            sums[b] = np.where(bad, np.float32(0), part)
+    return sums, counts
+
+
+def _coarse_air_grid_ragged(hu: np.ndarray, air: np.ndarray, factors: tuple[int, int, int]) -> tuple[np.ndarray, np.ndarray]:
+    """:func:`coarse_air_grid` for images that are not whole blocks (general block sums)."""
     kz = factors[0]
-    nz = hu.shape[0]
     in_plane = (1,) + tuple(factors[1:])
     cdt = _count_dtype(int(np.prod(factors)))
     out_shape = tuple(-(-n // f) for n, f in zip(hu.shape, factors))
     sums = np.empty(out_shape, dtype=np.float32)
     counts = np.empty(out_shape, dtype=np.float32)
     plane = np.empty((1,) + hu.shape[1:], dtype=np.float32)
-    for b, z0 in enumerate(range(0, nz, kz)):
+    for b, z0 in enumerate(range(0, hu.shape[0], kz)):
         h, a = hu[z0 : z0 + kz], air[z0 : z0 + kz]
         v = _masked_plane_sum(h, a, plane[0])
         part = _grid_sum(v[None], in_plane, np.dtype(np.float32))[0]

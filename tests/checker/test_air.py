@@ -194,12 +194,21 @@ def test_coarse_air_grid_equals_plain_masked_block_sums():
         assert sums.shape == want_s.shape
         assert np.array_equal(counts, want_c.astype(np.float32)), f
         assert np.max(np.abs(sums - want_s)) < 1e-2, f
-    bad = hu.copy()
-    bad[0, 0, 0] = np.nan  # an air pixel (row 0 is air everywhere)
-    sums, counts = air.coarse_air_grid(bad, mask, (2, 4, 4))
-    want_s, want_c = _plain_masked_block_sums(hu, mask, (2, 4, 4))
-    assert counts[0, 0, 0] == 0 and sums[0, 0, 0] == 0
-    assert np.array_equal(counts[1:], want_c[1:].astype(np.float32))
+    whole = (slice(None), slice(0, 36), slice(0, 40))  # images of whole blocks (the buffered path)
+    for f in [(2, 4, 4), (3, 2, 5), (1, 4, 8)]:
+        sums, counts = air.coarse_air_grid(hu[whole], mask[whole], f)
+        want_s, want_c = _plain_masked_block_sums(hu[whole], mask[whole], f)
+        assert sums.shape == want_s.shape
+        assert np.array_equal(counts, want_c.astype(np.float32)), f
+        assert np.max(np.abs(sums - want_s)) < 1e-2, f
+    for part in [(slice(None),) * 3, whole]:
+        bad = hu[part].copy()
+        bad[0, 0, 0] = np.nan  # an air pixel (row 0 is air everywhere)
+        sums, counts = air.coarse_air_grid(bad, mask[part], (2, 4, 4))
+        want_s, want_c = _plain_masked_block_sums(hu[part], mask[part], (2, 4, 4))
+        assert counts[0, 0, 0] == 0 and sums[0, 0, 0] == 0
+        assert np.array_equal(counts[1:], want_c[1:].astype(np.float32))
+        assert np.max(np.abs(sums[1:] - want_s[1:])) < 1e-2
 
 
 def test_block_factors_make_blocks_of_about_three_mm():
