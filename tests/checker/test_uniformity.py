@@ -181,3 +181,16 @@ def test_thin_insert_on_one_slice_is_seen():
     ph = _phantom.find_phantom(vol, find_regions(vol))
     assert list(np.flatnonzero(ph.inserts)) == [4]
     assert ph.uniform_runs()[0] in ((5, 8), (0, 3))
+
+
+def test_slices_between_screened_slices_are_measured_near_a_disc():
+    """With 1 mm slices the disc test screens every 5th slice; a phantom starting
+    between two screened slices is found from its first slice on."""
+    yy, xx = np.mgrid[:160, :160]
+    disc = np.where((yy - 80) ** 2 + (xx - 80) ** 2 <= 60**2, 0.0, -1000.0)
+    ellipse = np.where(((yy - 80) / 30.0) ** 2 + ((xx - 80) / 70.0) ** 2 <= 1, 0.0, -1000.0)
+    hu = np.stack([ellipse, ellipse] + [disc] * 7)
+    hu += np.random.default_rng(8).normal(0.0, 5.0, hu.shape)
+    vol = Volume.from_array(hu, (1.0, 0.8, 0.8))
+    ph = _phantom.find_phantom(vol, find_regions(vol))
+    assert list(np.flatnonzero(ph.on_slice)) == list(range(2, 9))
