@@ -13,6 +13,7 @@ in water, a bone rod in water) gives the same, positive LSF.
 """
 from __future__ import annotations
 
+import math
 from dataclasses import dataclass, field
 
 import numpy as np
@@ -434,10 +435,14 @@ def refine_circle_centre(
     cy, cx = float(centre_yx[0]), float(centre_yx[1])
     if inside_hu == outside_hu:
         return cy, cx
-    yy, xx = np.indices(image.shape, dtype=float)
+    window = radius_px + reach_px
+    pool = None  # the pixels within window + 2 px of the centre the pool was taken about
     for _ in range(iterations):
-        inside = (yy - cy) ** 2 + (xx - cx) ** 2 <= (radius_px + reach_px) ** 2
-        w = np.clip((image[inside] - outside_hu) / (inside_hu - outside_hu), 0.0, 1.0)
+        if pool is None or np.hypot(cy - pool[0], cx - pool[1]) > 2.0:
+            pool = (cy, cx) + _pixels_near(image, (cy, cx), window + 2.0)
+        yy, xx, values = pool[2:]
+        inside = (yy - cy) ** 2 + (xx - cx) ** 2 <= window**2
+        w = np.clip((values[inside] - outside_hu) / (inside_hu - outside_hu), 0.0, 1.0)
         total = w.sum()
         if total <= 0:
             break
@@ -447,6 +452,18 @@ def refine_circle_centre(
         if moved < 1e-4:
             break
     return cy, cx
+
+
+def _pixels_near(image: np.ndarray, centre: tuple[float, float], reach: float
+                 ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Row and column indices (float) and values of the pixels within ``reach`` of
+    ``centre``, in row-major order (so that sums over them run as over the whole image)."""
+    y0, x0 = max(int(math.floor(centre[0] - reach)), 0), max(int(math.floor(centre[1] - reach)), 0)
+    y1 = min(int(math.ceil(centre[0] + reach)) + 1, image.shape[0])
+    x1 = min(int(math.ceil(centre[1] + reach)) + 1, image.shape[1])
+    yy, xx = np.mgrid[y0:y1, x0:x1].astype(float)
+    near = (yy - centre[0]) ** 2 + (xx - centre[1]) ** 2 <= reach**2
+    return yy[near], xx[near], image[y0:y1, x0:x1][near]
 
 
 def radial_distances(shape: tuple[int, int], centre_yx: tuple[float, float], spacing_yx_mm: tuple[float, float]) -> np.ndarray:

@@ -215,15 +215,17 @@ def find_rod_inserts(volume: Volume, regions: Regions, settings: dict[str, Any] 
         z0, z1, mid = k0 * step, min(k1 * step, volume.shape[0] - 1), kmid * step
         centre = phantom.centre_yx_vox[kmid] * factor
         radius = phantom.radius_vox[kmid] * factor
-        mean = volume.hu[z0 : z1 + 1 : max(1, (z1 - z0 + 1) // 8)].mean(axis=0)
+        (by0, bx0), box = _box_about(centre, 0.92 * radius + int(4.0 / px + 0.5) + 1, volume.shape[1:])
+        mean = volume.hu[z0 : z1 + 1 : max(1, (z1 - z0 + 1) // 8), box[0], box[1]].mean(axis=0)
         smooth = ndimage.gaussian_filter(mean, 1.0 / px) - float(np.nanmedian(phantom.median_hu[k0 : k1 + 1]))
-        inner = _disc(mean.shape, centre, 0.92 * radius)
+        inner = _disc(mean.shape, (centre[0] - by0, centre[1] - bx0), 0.92 * radius)
         for sign in (1.0, -1.0):
             lab, _ = ndimage.label((sign * smooth > float(s["min_contrast_hu"])) & inner)
             for i, sl in enumerate(ndimage.find_objects(lab), start=1):
                 if sl is None:
                     continue
-                found = _insert_from_component(volume.hu, sign * smooth[sl], lab[sl] == i, sl, mid, px, s)
+                full = (slice(sl[0].start + by0, sl[0].stop + by0), slice(sl[1].start + bx0, sl[1].stop + bx0))
+                found = _insert_from_component(volume.hu, sign * smooth[sl], lab[sl] == i, full, mid, px, s)
                 if found is not None:
                     inserts.append(found)
     inserts.sort(key=lambda r: (r.z0, r.centre_yx_vox[0], r.centre_yx_vox[1]))
@@ -252,6 +254,17 @@ def _phantom_of(volume: Volume, regions: Regions) -> tuple[Any, int, int]:
         body_centroid_zyx_vox=None if centroid is None else (centroid[0] / step, centroid[1] / factor, centroid[2] / factor),
     )
     return find_phantom(small, small_regions), factor, step
+
+
+def _box_about(centre: Sequence[float], half: float, shape: tuple[int, int]
+               ) -> tuple[tuple[int, int], tuple[slice, slice]]:
+    """The square of half-size ``half`` about ``centre`` clipped to ``shape``: its corner
+    and its slices. The smoothing of the insert search reaches at most 4 sigma (1 mm), so
+    inside the phantom a crop grown by that much gives the values of the whole image."""
+    y0, x0 = max(int(math.floor(centre[0] - half)), 0), max(int(math.floor(centre[1] - half)), 0)
+    y1 = min(int(math.ceil(centre[0] + half)) + 1, shape[0])
+    x1 = min(int(math.ceil(centre[1] + half)) + 1, shape[1])
+    return (y0, x0), (slice(y0, y1), slice(x0, x1))
 
 
 def _runs_of(flags: np.ndarray) -> list[tuple[int, int]]:
