@@ -451,9 +451,12 @@ def measure_circular_edge(
             )
         half_mm = max(reach_mm, px)
     radius_mm = insert.radius_mm
+    # the pixels either pass may use (the second moves the range by at most half of it)
+    near = free[None] & (np.abs(dist - radius_mm) < 1.5 * half_mm)
+    d_near, v_near = dist[near], crop[near]
     for _ in range(2):  # the second pass centres the range on the measured edge radius
         acc = _edges.EsfAccumulator(bin_mm=px * float(s["bin_fraction"]), lo_mm=-half_mm, hi_mm=half_mm)
-        acc.add(dist - radius_mm, crop, np.broadcast_to(free, dist.shape))
+        acc.add(d_near - radius_mm, v_near)
         esf = acc.binned()
         shift = _esf_centre_or_zero(esf)
         if abs(shift) > 0.5 * half_mm:
