@@ -1264,14 +1264,19 @@ def measure_structures(
 
 
 def label_overlay(shape: tuple[int, ...], found: list[tuple[dict[str, Any], tuple[slice, ...], np.ndarray]]) -> np.ndarray:
-    """The int32 label volume (label == id), written only inside the structures' boxes.
+    """The int32 label volume (z, y, x; label == id), written only inside the structures.
 
-    Untouched pages of the zero array stay with the operating system, so only the boxes cost.
+    Its memory is laid out with z fastest (a transposed view of a zero (y, x, z) array):
+    untouched pages stay with the operating system, and a structure that runs through
+    many slices (an arm, a cable) fills a few runs of memory instead of rows in every
+    slice, so only a small part of the volume's size is ever touched. Indexing, shape and
+    dtype are those of any (z, y, x) array.
     """
-    labels = np.zeros(shape, dtype=np.int32)
+    nz, ny, nx = shape
+    labels = np.zeros((ny, nx, nz), dtype=np.int32).transpose(2, 0, 1)
     for record, sl, comp in found:
-        view = labels[sl]
-        view[comp] = record["id"]
+        view = labels[sl].transpose(1, 2, 0)  # memory order
+        np.copyto(view, np.int32(record["id"]), where=comp.transpose(1, 2, 0))
     return labels
 
 
