@@ -72,12 +72,16 @@ Cost of the screen. The screen runs on every slice, so its smooth fields are est
 on coarser grids: the soft weight near masked pixels on 2 x 2 blocks of the screen
 grid, the local noise level on 8 x 8 blocks (each with a Gaussian whose variance, with
 the block mean and the bilinear interpolation back, is that of the full-grid filter),
-and the fill value and the robust noise scale from sub-grids of at most
-``ROBUST_SAMPLES`` pixels. The high-pass residual, the strong edges and the spectrum
-stay on the screen grid. These are estimates of the same quantities, so the indices
-differ slightly from a full-grid computation (a documented method choice); the
-record's keys and meaning are unchanged. Dense-pair lines and the localisation of
-flagged slices use the full-grid texture (:func:`slice_texture`).
+and the fill value and the robust noise scale from regular sub-grids of about
+``FILL_SAMPLES`` and ``ROBUST_SAMPLES`` pixels. The high-pass residual, the strong
+edges and the spectrum stay on the screen grid (the band is in cycles per pixel of
+that grid). Slices go through in stacks of ``SCREEN_STACK``: the coarse-grid work, the
+FFT and the cell sums are done for the stack at once, the full-grid filters slice by
+slice; each slice's outcome depends on that slice only. These are estimates of the
+same quantities, so the indices differ slightly from a full-grid computation (a
+documented method choice); the record's keys, types and meaning are unchanged.
+Dense-pair lines and the localisation of flagged slices use the full-grid texture
+(:func:`slice_texture`).
 
 References
 ----------
@@ -619,16 +623,15 @@ def _shift_add_axis(ext: np.ndarray, taps: tuple[float, ...], axis: int, n: int)
     two rows fall in the padding columns and are dropped.
     """
     radius = len(taps) // 2
-    if axis in (-1, ext.ndim - 1):
-        flat = np.ascontiguousarray(ext).reshape(-1)
-        length = flat.size - 2 * radius
-        buf = np.empty(flat.size, dtype=np.float32)
-        out = buf[:length]
-        shifted = lambda k: flat[k : k + length]  # noqa: E731
-    else:
-        nd = ext.ndim
-        shifted = lambda k: ext[_along(axis, slice(k, k + n), nd)]  # noqa: E731
-        buf = out = None
+    along_rows = axis in (-1, ext.ndim - 1)
+    flat = np.ascontiguousarray(ext).reshape(-1) if along_rows else ext
+    length = flat.size - 2 * radius
+
+    def shifted(k: int) -> np.ndarray:
+        return flat[k : k + length] if along_rows else ext[_along(axis, slice(k, k + n), ext.ndim)]
+
+    buf = np.empty(flat.size, dtype=np.float32) if along_rows else None
+    out = buf[:length] if buf is not None else None
     first = shifted(radius)
     if out is None:
         out = first * np.float32(taps[radius])
@@ -788,7 +791,7 @@ def grid_subsample(values: np.ndarray, mask: np.ndarray, max_samples: int, count
     samples when the mask covers part of the array, no pass to count them).
     """
     n = mask.size if count is None else count
-    step = max(1, int(math.ceil(math.sqrt(n / max(1, max_samples)))))
+    step = max(1, math.ceil(math.sqrt(n / max(1, max_samples))))
     return values[::step, ::step][mask[::step, ::step]]
 
 
