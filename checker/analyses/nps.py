@@ -107,16 +107,13 @@ _CHUNK = 128  # ROIs detrended or transformed at a time (bounds memory)
 
 
 # --------------------------------------------------------------------------- core maths
-def _design_matrix(ny: int, nx: int, order: int) -> np.ndarray:
-    y, x = np.mgrid[:ny, :nx]
-    y = (y - (ny - 1) / 2.0).ravel() / max(ny, 1)
-    x = (x - (nx - 1) / 2.0).ravel() / max(nx, 1)
-    cols = [np.ones_like(x)]
-    if order >= 1:
-        cols += [x, y]
-    if order >= 2:
-        cols += [x * x, x * y, y * y]
-    return np.stack(cols, axis=1)
+@lru_cache(maxsize=16)
+def _poly_basis(m: int, order: int) -> np.ndarray:
+    """Orthonormal discrete polynomials of degree 0..order on m equally spaced points,
+    as columns (m, order + 1)."""
+    v = (np.arange(m) - (m - 1) / 2.0) / max(m, 1)
+    q, _ = np.linalg.qr(np.stack([v**k for k in range(order + 1)], axis=1))
+    return q
 
 
 def detrend_rois(stack: np.ndarray, method: str = "poly2") -> np.ndarray:
@@ -126,6 +123,7 @@ def detrend_rois(stack: np.ndarray, method: str = "poly2") -> np.ndarray:
     ----------
     stack : ndarray (n, Ny, Nx)
     method : {"mean", "poly1", "poly2"}
+        ``poly1``: a + b x + c y; ``poly2`` adds x^2, x y and y^2.
 
     Returns
     -------
@@ -134,8 +132,10 @@ def detrend_rois(stack: np.ndarray, method: str = "poly2") -> np.ndarray:
 
     Notes
     -----
-    The fit of every ROI at once is two matrix products with the design matrix and its
-    pseudo-inverse (computed once per ROI shape).
+    The polynomials of total degree <= d on a rectangular grid are spanned by the
+    products P_i(y) Q_j(x), i + j <= d, of orthonormal discrete polynomials along each
+    axis, and those products are orthonormal: the least-squares fit is the sum of the
+    projections on them, computed one axis at a time (a few products per pixel).
 
     References
     ----------
@@ -146,21 +146,17 @@ def detrend_rois(stack: np.ndarray, method: str = "poly2") -> np.ndarray:
     stack = np.asarray(stack, dtype=np.float64)
     if method == "mean":
         return stack - stack.mean(axis=(-2, -1), keepdims=True)
-    n, ny, nx = stack.shape
-    a_t, a_pinv = _fit_operator(ny, nx, 1 if method == "poly1" else 2)
-    flat = stack.reshape(n, -1)
-    # einsum over contiguous rows, not BLAS: these thin products stall on a loaded
-    # machine's BLAS threads
-    coef = np.einsum("nk,pk->np", flat, a_pinv)
-    return (flat - np.einsum("np,pk->nk", coef, a_t)).reshape(stack.shape)
-
-
-@lru_cache(maxsize=8)
-def _fit_operator(ny: int, nx: int, order: int) -> tuple[np.ndarray, np.ndarray]:
-    """Transposed design matrix (p, k) and its pseudo-inverse (p, k), both C-contiguous
-    (the least-squares fit operator)."""
-    a = _design_matrix(ny, nx, order)
-    return np.ascontiguousarray(a.T), np.ascontiguousarray(np.linalg.pinv(a))
+    order = 1 if method == "poly1" else 2
+    _, ny, nx = stack.shape
+    py = _poly_basis(ny, order)
+    qx_t = np.ascontiguousarray(_poly_basis(nx, order).T)
+    keep = np.add.outer(np.arange(order + 1), np.arange(order + 1)) <= order
+    # einsum over contiguous rows, not BLAS: thin products stall on a loaded machine's
+    # BLAS threads
+    along_x = np.einsum("nyx,jx->nyj", stack, qx_t)
+    coef = np.einsum("nyj,yi->nij", along_x, py) * keep
+    fit_rows = np.einsum("nij,yi->nyj", coef, py)
+    return stack - np.einsum("nyj,jx->nyx", fit_rows, qx_t)
 
 
 def _full_from_half(half: np.ndarray, m: int) -> np.ndarray:

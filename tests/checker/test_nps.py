@@ -251,3 +251,19 @@ def test_patient_patches_found_on_more_slices_when_few():
     assert few["applicable"] and more["applicable"]
     assert more["roi_count"] > few["roi_count"]
     assert abs(more["noise_hu"] - 12.0) < 1.5
+
+
+@pytest.mark.parametrize("method, order", [("poly1", 1), ("poly2", 2)])
+def test_detrend_equals_least_squares_fit(method, order):
+    """The axis-by-axis projection equals the least-squares polynomial fit of
+    numpy.linalg.lstsq (reference), on square and non-square ROIs."""
+    rng = np.random.default_rng(9)
+    for shape in ((4, 16, 16), (3, 15, 23)):
+        stack = rng.normal(40.0, 10.0, shape)
+        n, ny, nx = shape
+        y, x = (a.ravel().astype(float) for a in np.mgrid[:ny, :nx])
+        cols = [np.ones_like(x), x, y] + ([x * x, x * y, y * y] if order == 2 else [])
+        a = np.stack(cols, axis=1)
+        flat = stack.reshape(n, -1)
+        ref = flat - (a @ np.linalg.lstsq(a, flat.T, rcond=None)[0]).T
+        assert np.abs(nps.detrend_rois(stack, method).reshape(n, -1) - ref).max() < 1e-9
