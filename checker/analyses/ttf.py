@@ -534,8 +534,8 @@ def _refine_centres(crop: np.ndarray, centre: tuple[float, float], r_px: float, 
     c0 = _edges.refine_circle_centre(first, centre, r_px, inside_hu, outside_hu, reach_px=reach)
     nz = crop.shape[0]
     runs = np.array_split(np.arange(nz), min(groups, nz))
-    images = [crop[r[0]] if r.size == 1 else crop[r[0] : r[-1] + 1].mean(axis=0) for r in runs]
-    per = np.array([_edges.refine_circle_centre(img, c0, r_px, inside_hu, outside_hu, reach_px=reach) for img in images])
+    images = crop if len(runs) == nz else np.stack([crop[r[0] : r[-1] + 1].mean(axis=0) for r in runs])
+    per = _edges.refine_circle_centres(images, c0, r_px, inside_hu, outside_hu, reach_px=reach)
     z = np.arange(nz, dtype=float)
     if len(per) >= 3:
         zc = np.array([r.mean() for r in runs])
