@@ -187,13 +187,14 @@ def _air_sample(hu: np.ndarray, air: np.ndarray, max_samples: int = 500_000, n: 
         n = int(np.count_nonzero(air))
     step = max(1, int(math.ceil((n / max_samples) ** (1.0 / 3.0))))
     sl = (slice(None, None, step),) * 3
-    return hu[sl][air[sl]].astype(np.float64)
+    return hu[sl][air[sl]]
 
 
 def robust_mean_and_noise(
     values: np.ndarray, clip_sigma: float = 4.0, iterations: int = 3, max_median_samples: int = 100_000
 ) -> tuple[float, float]:
-    """Mean and standard deviation of ``values`` after iterative robust clipping.
+    """Mean and standard deviation of ``values`` after iterative robust clipping
+    (float32 values stay float32; the sums are accumulated in float64).
 
     Values farther than ``clip_sigma`` robust standard deviations (1.4826 x MAD) from the
     median are left out, so structures in the air do not bias the air's statistics. The
@@ -206,21 +207,22 @@ def robust_mean_and_noise(
     .. [1] Rousseeuw PJ, Croux C. Alternatives to the median absolute deviation.
            J Am Stat Assoc 88(424), 1993 (1.4826 x MAD estimates a Gaussian SD).
     """
-    v = np.asarray(values, dtype=np.float64)
+    v = np.asarray(values)
+    if v.dtype not in (np.float32, np.float64):
+        v = v.astype(np.float64)
     v = v[np.isfinite(v)]
     if v.size == 0:
         return float("nan"), float("nan")
     keep = v
-    lo, hi = -np.inf, np.inf
     for _ in range(iterations):
         part = _subsample(keep, max_median_samples)
         med = float(np.median(part))
         mad = 1.4826 * float(np.median(np.abs(part - med)))
         if mad <= 0:
             break
-        lo, hi = med - clip_sigma * mad, med + clip_sigma * mad
-        keep = v[(v >= lo) & (v <= hi)]
-    return float(keep.mean()), float(keep.std())
+        keep = v[np.abs(v - v.dtype.type(med)) <= v.dtype.type(clip_sigma * mad)]
+    mean = float(keep.mean(dtype=np.float64))
+    return mean, float(np.sqrt(np.mean(np.square(keep - mean, dtype=np.float64))))
 
 
 def _padded_box(mask2d: np.ndarray, pad: int) -> tuple[slice, slice] | None:
@@ -1189,6 +1191,8 @@ def refine_structure(
     )
     local = tuple(slice(a, b) for a, b in ranges)
     tight = tuple(slice(x.start + a, x.start + b) for x, (a, b) in zip(fbox, ranges))
+    if all(b - a == n for (a, b), n in zip(ranges, comp.shape)):
+        return tight, comp, count, centroid
     return tight, np.ascontiguousarray(comp[local]), count, centroid
 
 
