@@ -540,9 +540,13 @@ def _full_box(box: tuple[slice, ...]) -> tuple[slice, ...]:
 
 def _upsample_into(target: np.ndarray, coarse: np.ndarray) -> None:
     """``target`` (z, BLOCK y, BLOCK x) = ``coarse`` (z, y, x) repeated BLOCK times in y and x."""
+    nz, cy, cx = coarse.shape
+    if BLOCK == 4 and target.strides[-1] == 1 and target.ctypes.data % 4 == 0 and target.strides[-2] % 4 == 0:
+        words = coarse.view(np.uint8) * np.uint32(0x01010101)  # one pixel per byte, four per word
+        target.view(np.uint32).reshape(nz, cy, BLOCK, cx)[...] = words[:, :, None, :]
+        return
     wide = np.repeat(coarse, BLOCK, axis=2)
-    nz, cy, nx = wide.shape
-    target.reshape(nz, cy, BLOCK, nx)[...] = wide[:, :, None, :]
+    target.reshape(nz, cy, BLOCK, cx * BLOCK)[...] = wide[:, :, None, :]
 
 
 def _block_pixels(idx: tuple[np.ndarray, ...], shape: tuple[int, ...]) -> tuple[np.ndarray, np.ndarray]:
@@ -638,6 +642,20 @@ def _paint_body(body: np.ndarray, hu: np.ndarray, fov2d: np.ndarray, threshold_h
     return _count_and_centroid(whole, cbox, dense.reshape(-1, BLOCK, BLOCK), idx)
 
 
+def _row_and_column_counts(dense: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Pixels per row and per column of each (n, 4, 4) bool block, (n, 4) each.
+
+    Each block row is one 32-bit word of four 0/1 bytes: its byte sum (multiply, shift)
+    counts the row; the sum of the four row words holds the column counts in its bytes.
+    """
+    if BLOCK != 4:
+        return np.count_nonzero(dense, axis=2), np.count_nonzero(dense, axis=1)
+    words = np.ascontiguousarray(dense).view(np.uint32).reshape(-1, BLOCK)
+    rows = (words * np.uint32(0x01010101)) >> 24
+    cols = words.sum(axis=1, dtype=np.uint32).view(np.uint8).reshape(-1, BLOCK)
+    return rows, cols
+
+
 def _count_and_centroid(whole: np.ndarray, cbox: tuple[slice, ...], dense: np.ndarray,
                         idx: tuple[np.ndarray, ...]) -> tuple[int, tuple[float, float, float]]:
     """Voxel count and centre of mass of the body from its whole blocks and its refined
@@ -649,12 +667,10 @@ def _count_and_centroid(whole: np.ndarray, cbox: tuple[slice, ...], dense: np.nd
     py = np.repeat(np.count_nonzero(whole, axis=(0, 2)).astype(np.int64) * b, b)
     px = np.repeat(np.count_nonzero(whole, axis=(0, 1)).astype(np.int64) * b, b)
     zi, yi, xi = idx
-    per_block = dense.sum(axis=(1, 2))
-    np.add.at(pz, zi - z0, per_block)
-    rows = dense.sum(axis=2)  # (n, b)
-    cols = dense.sum(axis=1)
-    np.add.at(py, ((yi[:, None] * b + np.arange(b)) - y0).ravel(), rows.ravel())
-    np.add.at(px, ((xi[:, None] * b + np.arange(b)) - x0).ravel(), cols.ravel())
+    rows, cols = _row_and_column_counts(dense)
+    pz += np.bincount(zi - z0, rows.sum(axis=1), minlength=pz.size).astype(np.int64)
+    py += np.bincount(((yi[:, None] * b + np.arange(b)) - y0).ravel(), rows.ravel(), minlength=py.size).astype(np.int64)
+    px += np.bincount(((xi[:, None] * b + np.arange(b)) - x0).ravel(), cols.ravel(), minlength=px.size).astype(np.int64)
     total = int(pz.sum())
     if total == 0:
         return 0, None  # type: ignore[return-value]
@@ -681,23 +697,29 @@ def _is_table_from(comp_slices: tuple[slice, ...], areas: np.ndarray, body_bbox:
 
 # --------------------------------------------------------------------------- air
 def _shift_words(w: np.ndarray, bits: int) -> np.ndarray:
-    """Bit rows (little-endian words along the last axis) moved ``bits`` pixels: pixel p
-    of the result is pixel p + bits of ``w`` (p - |bits| when negative); zeros enter."""
+    """Bit rows moved ``bits`` pixels, words along the FIRST axis (little-endian: pixel p
+    is bit p % 64 of word p // 64): pixel p of the result is pixel p + bits of ``w``
+    (p - |bits| when negative); zeros enter. Word-major, so every operation is on whole
+    contiguous planes."""
     q, r = divmod(abs(bits), 64)
     out = np.zeros_like(w)
-    n = w.shape[-1]
+    n = w.shape[0]
     if q >= n:
         return out
     if bits > 0:
-        src = w[..., q:]
-        out[..., : n - q] = src >> np.uint64(r) if r else src
-        if r and n - q > 1:
-            out[..., : n - q - 1] |= w[..., q + 1 :] << np.uint64(64 - r)
+        if r:
+            np.right_shift(w[q:], np.uint64(r), out=out[: n - q])
+            if n - q > 1:
+                out[: n - q - 1] |= w[q + 1 :] << np.uint64(64 - r)
+        else:
+            out[: n - q] = w[q:]
     else:
-        src = w[..., : n - q]
-        out[..., q:] = src << np.uint64(r) if r else src
-        if r and n - q > 1:
-            out[..., q + 1 :] |= w[..., : n - q - 1] >> np.uint64(64 - r)
+        if r:
+            np.left_shift(w[: n - q], np.uint64(r), out=out[q:])
+            if n - q > 1:
+                out[q + 1 :] |= w[: n - q - 1] >> np.uint64(64 - r)
+        else:
+            out[q:] = w[: n - q]
     return out
 
 
@@ -705,17 +727,19 @@ def _or_bits(w: np.ndarray, half: int) -> np.ndarray:
     """OR over pixels p - half .. p + half along the packed last axis (doubling spans).
 
     Running ORs look back (pixel p gathers p - span + 1 .. p) into room of ``half``
-    extra pixels past the row's end, then the result moves back by ``half``.
+    extra pixels past the row's end, then the result moves back by ``half``. The words
+    are worked on word-major (first axis) and handed back in the layout of ``w``.
     """
     length = 2 * half + 1
     room = -(-half // 64)
-    acc = np.concatenate([w, np.zeros(w.shape[:-1] + (room,), dtype=w.dtype)], axis=-1)
+    acc = np.zeros((w.shape[-1] + room,) + w.shape[:-1], dtype=w.dtype)
+    acc[: w.shape[-1]] = np.moveaxis(w, -1, 0)
     span = 1
     while span < length:
         step = min(span, length - span)
         acc |= _shift_words(acc, -step)  # acc[p] = OR w[p - span - step + 1 .. p]
         span += step
-    return _shift_words(acc, half)[..., : w.shape[-1]]
+    return np.ascontiguousarray(np.moveaxis(_shift_words(acc, half)[: w.shape[-1]], 0, -1))
 
 
 def _packed(mask: np.ndarray) -> np.ndarray:

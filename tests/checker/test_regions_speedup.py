@@ -250,3 +250,23 @@ def test_fov_slices_pick_a_slice_whose_padding_differs() -> None:
 def _disc_mask(n: int, cy: float, cx: float, r: float) -> np.ndarray:
     y, x = np.mgrid[0:n, 0:n]
     return (y - cy) ** 2 + (x - cx) ** 2 <= r * r
+
+
+@pytest.mark.parametrize("seed", range(3))
+def test_one_slice_512_volume_on_the_coarse_grid(seed: int) -> None:
+    """The viewer's one-slice volume at 512 x 512 takes the coarse grid: body and table
+    within one pixel of the full-resolution outline, air exact given them."""
+    from reconaudit.checker.regions import uses_coarse_grid
+
+    volume = random_phantom(seed, nz=1, n=512)
+    assert uses_coarse_grid(volume.shape)
+    fast = find_regions(volume)
+    body, table, _, _ = reference_regions(volume)
+    assert not ((fast.body ^ body) & ~_outline_band(body)).any()
+    assert not ((fast.table ^ table) & ~_outline_band(table)).any()
+    half = max(1, int(round(4.0 / min(volume.spacing_mm[1:]))))
+    grown = ndimage.maximum_filter(fast.body | fast.table, size=(1, 2 * half + 1, 2 * half + 1))
+    expected_air = ~grown & fast.fov[None]
+    if volume.padding_mask is not None:
+        expected_air &= ~volume.padding_mask[None]
+    assert np.array_equal(fast.air, expected_air)
