@@ -10,6 +10,12 @@ a tenth of the phantom diameter. Means and SDs are pooled over the slices.
 - ``uniformity_hu``: max |peripheral mean - centre mean|;
 - ``centre_sd_hu``: pixel SD in the centre ROI.
 
+The phantom's centre, radius and uniform slices come from the shared search of
+:mod:`._phantom`, made on a strided working grid for speed: they are estimates, so the
+ROIs may sit a pixel away from where a full-resolution search would put them; the
+statistics are then taken over every pixel of the ROIs. The check for non-finite voxels
+is one pass over the volume, shared with the noise analysis.
+
 References
 ----------
 Hounsfield scale (water 0 HU, by definition). The ROI layout (one central and four
