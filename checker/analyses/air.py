@@ -43,8 +43,10 @@ Method
    box only: its voxels are the air pixels of its blocks; volume, centroid, mean and max
    HU, contrast-to-noise and slices are measured there. Structures smaller than
    ``min_volume_mm3`` or whose mean is less than ``min_contrast_hu`` above the air are
-   dropped (blur tails of neighbours). The label overlay is written only inside the
-   boxes.
+   dropped (blur tails of neighbours). The label overlay (int32, z, y, x) is written
+   only inside the structures; its memory is laid out with z fastest, so a structure
+   running through the whole series touches a few runs of memory rather than rows in
+   every slice (the untouched rest stays with the operating system).
 5. Classification (at full resolution): ``leaves_scan`` (reaches the first or last slice:
    arms, tubes, cables, a mattress), ``touching_body``, ``table``, ``fov_edge`` (touches
    the edge of the reconstruction circle or padding) and ``isolated`` (touches nothing
@@ -1357,7 +1359,8 @@ def analyse(volume: Volume, regions: Regions, settings: dict[str, Any] | None = 
     -------
     AnalysisResult
         ``record``: ``mean_hu``, ``noise_hu``, ``body_noise_hu``, ``structures``,
-        ``flagged`` (and ``applicable``); ``overlays.labels``: int32, label == id;
+        ``flagged`` (and ``applicable``); ``overlays.labels``: int32 (z, y, x), label
+        == id (z fastest in memory, see :func:`label_overlay`);
         ``overlays.points``: the centroid of each flagged structure.
 
     References
