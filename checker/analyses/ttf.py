@@ -1067,7 +1067,7 @@ def analyse(volume: Volume, regions: Regions, settings: dict[str, Any] | None = 
     if s["find_inserts"] == "always" or (s["find_inserts"] == "auto" and not user):
         auto = find_rod_inserts(volume, regions, s, phantom=phantom_found())
     inserts = user + auto
-    allowed = regions.body.any(axis=0) if auto and regions.has_body else None
+    allowed = _body_footprint(volume, regions, inserts, s) if auto and regions.has_body else None
     for ins in inserts:
         measurements.append(measure_circular_edge(volume, ins, s, allowed=allowed if ins.source == "auto" else None,
                                                   others=inserts))
@@ -1084,6 +1084,23 @@ def analyse(volume: Volume, regions: Regions, settings: dict[str, Any] | None = 
             reason += "; " + notes[0]
         return AnalysisResult.not_applicable(NAME, reason)
     return _assemble(measurements, s, notes)
+
+
+def _body_footprint(volume: Volume, regions: Regions, inserts: Sequence[Insert], s: dict[str, Any]) -> np.ndarray:
+    """(y, x) pixels inside the body on some slice, computed only over the box of the
+    rods' crops (the only place :func:`measure_circular_edge` looks); False elsewhere."""
+    px = 0.5 * (volume.spacing_mm[1] + volume.spacing_mm[2])
+    out = np.zeros(volume.shape[1:], dtype=bool)
+    boxes = []
+    for ins in inserts:
+        half = ins.radius_mm / px + min(float(s["esf_half_range_mm"]), 0.9 * ins.radius_mm) / px + 3
+        boxes.append(_box_about(ins.centre_yx_vox, half, volume.shape[1:])[1])
+    if not boxes:
+        return out
+    y0, y1 = min(b[0].start for b in boxes), max(b[0].stop for b in boxes)
+    x0, x1 = min(b[1].start for b in boxes), max(b[1].stop for b in boxes)
+    out[y0:y1, x0:x1] = regions.body[:, y0:y1, x0:x1].any(axis=0)
+    return out
 
 
 def _user_inserts(volume: Volume, s: dict[str, Any]) -> list[Insert]:
