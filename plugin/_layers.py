@@ -161,12 +161,10 @@ def split_unit(key: str) -> tuple[str, str]:
 def label_centroids(labels: np.ndarray) -> list[tuple[int, tuple[float, float, float], int]]:
     """(label, centroid (z, y, x) voxel, voxel count) of every non-zero label (bincount sums)."""
     labels = np.asarray(labels)
-    flat = labels.ravel()
-    nz_idx = np.flatnonzero(flat)
-    if nz_idx.size == 0:
+    coords = np.nonzero(labels)  # any memory layout (the air labels are stored z fastest), no full copy
+    if coords[0].size == 0:
         return []
-    lab = flat[nz_idx].astype(np.int64)
-    coords = np.unravel_index(nz_idx, labels.shape)
+    lab = labels[coords].astype(np.int64)
     counts = np.bincount(lab)
     ids = np.flatnonzero(counts)
     sums = [np.bincount(lab, weights=c.astype(float), minlength=counts.size) for c in coords]
@@ -194,7 +192,8 @@ def labels_layer(
     labels: np.ndarray, geometry: LayerGeometry, analysis: str, source: str, z_offset: int, record: dict[str, Any] | None = None
 ) -> LayerData:
     g = geometry.shifted(z_offset)
-    ids = [int(i) for i in np.flatnonzero(np.bincount(np.asarray(labels).ravel().astype(np.int64)))[1:] if i != 0] if np.asarray(labels).min() >= 0 else []
+    present = np.asarray(labels)
+    ids = [int(i) for i in np.unique(present[present > 0])]  # the labels in use, without a full-size copy
     kwargs = {
         "name": layer_name(source, analysis, "labels"),
         "scale": g.scale,
