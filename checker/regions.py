@@ -501,7 +501,9 @@ def block_counts(hu: np.ndarray, fov2d: np.ndarray, threshold_hu: float, chunk: 
     inside ``fov2d`` and above ``threshold_hu`` ((z, y / BLOCK, x / BLOCK) uint8, 0..16).
 
     One pass over the volume, a few slices at a time: the threshold of four neighbouring
-    pixels is read as one 32-bit word, whose byte sum (a multiply and a shift) counts them.
+    pixels is read as one 32-bit word; the four row words of a block are added (each byte
+    then counts one column, at most 4) and the byte sum (a multiply and a shift) counts
+    the block.
 
     References
     ----------
@@ -517,12 +519,13 @@ def block_counts(hu: np.ndarray, fov2d: np.ndarray, threshold_hu: float, chunk: 
         part = buf[: min(chunk, nz - z0)]
         np.greater(hu[z0 : z0 + part.shape[0]], threshold_hu, out=part)
         part &= fov2d
-        words = part.view(np.uint32)  # four pixels along x per word
-        sums = ((words * ones) >> 24).reshape(part.shape[0], by, BLOCK, bx)
-        total = sums[:, :, 0] + sums[:, :, 1]
-        total += sums[:, :, 2]
-        total += sums[:, :, 3]
-        out[z0 : z0 + part.shape[0]] = total
+        words = part.view(np.uint32).reshape(part.shape[0], by, BLOCK, bx)  # four pixels along x per word
+        column = words[:, :, 0] + words[:, :, 1]  # per byte: pixels of one column of the block
+        column += words[:, :, 2]
+        column += words[:, :, 3]
+        column *= ones  # the byte sum lands in the top byte
+        column >>= 24
+        out[z0 : z0 + part.shape[0]] = column
     return out
 
 
