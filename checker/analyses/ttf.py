@@ -559,16 +559,16 @@ def _contrast_and_noise(crop: np.ndarray, dist: np.ndarray, free: np.ndarray, ra
     outer = free[None] & (dist >= radius_mm + gap) & (dist <= radius_mm + half_mm)
     if not inner.any() or not outer.any():
         return float("nan"), float("nan")
-    values = crop.astype(float)
-    contrast = float(values.sum(where=inner) / np.count_nonzero(inner) - values.sum(where=outer) / np.count_nonzero(outer))
+    v_in, v_out = crop[inner].astype(float), crop[outer].astype(float)
+    contrast = float(v_in.mean() - v_out.mean())
     ss, n = 0.0, 0
-    for side in (inner, outer):
+    for v, side in ((v_in, inner), (v_out, outer)):
         count = side.sum(axis=(1, 2))
-        mean = values.sum(axis=(1, 2), where=side) / np.maximum(count, 1)
-        several = count > 1
-        dev = values - mean[:, None, None]
-        ss += float((dev * dev).sum(where=side & several[:, None, None]))
-        n += int(count[several].sum())
+        k = np.repeat(np.arange(crop.shape[0]), count)  # slice of each value (row-major order)
+        mean = np.bincount(k, weights=v, minlength=crop.shape[0]) / np.maximum(count, 1)
+        dev = (v - mean[k])[count[k] > 1]
+        ss += float((dev * dev).sum())
+        n += int(count[count > 1].sum())
     return contrast, float(np.sqrt(ss / n)) if n > 1 else float("nan")
 
 
@@ -751,7 +751,8 @@ class _SkinSampler:
         g = np.exp(-(gy**2 + gx**2) / (2 * cls.sigma_px**2))
         reach = int(math.ceil(band_px + 3))
         oy, ox = (a.ravel().astype(float) for a in np.mgrid[-reach : reach + 1, -reach : reach + 1])
-        slack = reach * math.sin(math.pi / cls.directions) + 1e-6  # largest error of a quantised normal
+        # a pixel at distance rho moves by at most rho sin(pi / directions) across a quantised normal
+        slack = (reach + 2) * math.sin(math.pi / cls.directions)
         rows = []
         for a in (np.arange(cls.directions) + 0.5) * 2 * math.pi / cls.directions:
             ny, nx = math.sin(a), math.cos(a)
