@@ -1,4 +1,14 @@
-"""Loading one DICOM CT series (classic single-frame or Enhanced CT multi-frame)."""
+"""Loading one DICOM CT series (classic single-frame or Enhanced CT multi-frame).
+
+Plain files (single-frame CT Image, Explicit VR Little Endian, 16 bits allocated and
+stored, every element of defined length or a followable sequence) are parsed by the
+project's own element scan (:func:`~._headers.quick_dataset`) and their pixels read
+straight from disk into the array; everything else is read by pydicom. The first quickly
+read file of each series is read again by pydicom and must agree in every element and
+every stored value, else the whole series is read by pydicom. Files are read and rescaled
+on ``READ_THREADS`` threads. The Volume is the same either way (same HU, geometry, notes
+and errors); only the time differs.
+"""
 from __future__ import annotations
 
 import math
