@@ -11,7 +11,10 @@ With ``--stages`` the analysis is also timed stage by stage (CPU time, the least
 its robust statistics, the body noise, the matched filter on the coarse grids, the
 hysteresis, the full-resolution refinement in the boxes and the label volume.
 
-Usage: ``python benchmarks/bench_air.py [--slices 400] [--stages] [--repeats 3]``
+With ``--series`` the volume is instead the cached benchmark DICOM series of
+``benchmarks/harness.py`` (the one ``bench_read.py`` times), read with reconaudit's loader.
+
+Usage: ``python benchmarks/bench_air.py [--slices 400] [--series] [--stages] [--repeats 3]``
 """
 from __future__ import annotations
 
@@ -59,6 +62,16 @@ def make_volume(nz: int, n: int = 512, seed: int = 3) -> Volume:
         sub[ball] += value + 1000.0
     hu[:, ~fov] = -3024.0
     return Volume.from_array(hu, spacing_mm=(1.25, 0.7, 0.7), padding_mask=~fov)
+
+
+def load_series_volume(nz: int) -> Volume:
+    """The cached benchmark series of ``benchmarks/harness.py`` read with reconaudit's loader."""
+    sys.path.insert(0, str(Path(__file__).resolve().parent))
+    import harness  # type: ignore[import-not-found]
+    from reconaudit.checker.load import discover, load_series
+
+    found = discover([harness.benchmark_series(nz)])
+    return load_series(found.series[0])
 
 
 def _measure(fn, *args):
@@ -129,10 +142,11 @@ def stage_times(vol: Volume, regions, repeats: int = 3) -> dict[str, float]:
 def main() -> None:
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("--slices", type=int, default=400)
+    ap.add_argument("--series", action="store_true", help="use the cached benchmark DICOM series (bench_read's)")
     ap.add_argument("--stages", action="store_true", help="also time the analysis stage by stage")
     ap.add_argument("--repeats", type=int, default=3, help="runs per stage with --stages")
     args = ap.parse_args()
-    vol = make_volume(args.slices)
+    vol = load_series_volume(args.slices) if args.series else make_volume(args.slices)
     vol_bytes = vol.hu.nbytes
     print(f"volume {vol.shape} float32 = {vol_bytes / 2**20:.0f} MiB")
     regions, t_reg, m_reg = _measure(find_regions, vol)

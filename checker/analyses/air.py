@@ -46,7 +46,8 @@ Method
    dropped (blur tails of neighbours). The label overlay (int32, z, y, x) is written
    only inside the structures; its memory is laid out with z fastest, so a structure
    running through the whole series touches a few runs of memory rather than rows in
-   every slice (the untouched rest stays with the operating system).
+   every slice (the untouched rest stays with the operating system: the array lives in
+   an anonymous memory map of small pages, see :func:`zero_int32`).
 5. Classification (at full resolution): ``leaves_scan`` (reaches the first or last slice:
    arms, tubes, cables, a mattress), ``touching_body``, ``table``, ``fov_edge`` (touches
    the edge of the reconstruction circle or padding) and ``isolated`` (touches nothing
@@ -85,6 +86,7 @@ References
 from __future__ import annotations
 
 import math
+import mmap
 from dataclasses import dataclass
 from typing import Any
 
@@ -1269,17 +1271,33 @@ def measure_structures(
     return out
 
 
+def zero_int32(shape: tuple[int, ...]) -> np.ndarray:
+    """A writable int32 array of zeros in an anonymous memory map of its own.
+
+    The operating system hands out its pages, zero-filled, only when they are first
+    written, in small pages: a label volume written in a few places costs memory and
+    time in proportion to those places only. (numpy asks for huge pages for large arrays;
+    each first write to one zero-fills 2 MiB and may stall while the kernel assembles
+    it.)
+    """
+    n = int(np.prod(shape))
+    if n == 0:
+        return np.zeros(shape, dtype=np.int32)
+    return np.frombuffer(mmap.mmap(-1, 4 * n), dtype=np.int32).reshape(shape)
+
+
 def label_overlay(shape: tuple[int, ...], found: list[tuple[dict[str, Any], tuple[slice, ...], np.ndarray]]) -> np.ndarray:
     """The int32 label volume (z, y, x; label == id), written only inside the structures.
 
-    Its memory is laid out with z fastest (a transposed view of a zero (y, x, z) array):
-    untouched pages stay with the operating system, and a structure that runs through
-    many slices (an arm, a cable) fills a few runs of memory instead of rows in every
-    slice, so only a small part of the volume's size is ever touched. Indexing, shape and
+    Its memory is laid out with z fastest (a transposed view of a zero (y, x, z) array
+    in small pages, :func:`zero_int32`): untouched pages stay with the operating system,
+    and a structure that runs through many slices (an arm, a cable) fills a few runs of
+    memory instead of rows in every slice, so only a small part of the volume's size is
+    ever touched. Indexing, shape and
     dtype are those of any (z, y, x) array.
     """
     nz, ny, nx = shape
-    labels = np.zeros((ny, nx, nz), dtype=np.int32).transpose(2, 0, 1)
+    labels = zero_int32((ny, nx, nz)).transpose(2, 0, 1)
     for record, sl, comp in found:
         view = labels[sl].transpose(1, 2, 0)  # memory order
         np.copyto(view, np.int32(record["id"]), where=comp.transpose(1, 2, 0))
