@@ -74,6 +74,8 @@ def main() -> int:
     series = doc["series"][0]
     print(f"check (figures off, history on): median {total:.3f} s of {args.repeats} "
           f"({', '.join(f'{t:.2f}' for t in totals)}); status {series['status']}, verdict {series['verdict']}")
+    if series["status"] != "ok":
+        print(f"the series was not checked: {series['error']}")
     print(f"report.html alone: {report:.3f} s")
     print(f"whole check, report excluded: {excluded:.3f} s = {excluded / limit:.2f} x read "
           f"(target at most 2.0 x: the read plus at most 1.0 x)")
