@@ -88,7 +88,7 @@ from __future__ import annotations
 import math
 import mmap
 from dataclasses import dataclass
-from typing import Any
+from typing import Any, Callable
 
 import numpy as np
 from scipy import ndimage, optimize, special
@@ -558,29 +558,51 @@ def scale_levels(
     return out
 
 
-def _box_scale(sums: np.ndarray, counts: np.ndarray, cell: float) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-    """Block means as the matched filter: contrast, contrast / white-noise growth
-    (``sqrt(cell / count)``), validity (at least half the block is air)."""
+def _box_scale(sums: np.ndarray, counts: np.ndarray, cell: float) -> tuple[np.ndarray, np.ndarray]:
+    """Block means as the matched filter: the contrast divided by its white-noise growth
+    (``sqrt(cell / count)``), that is ``sums / sqrt(max(count, 1) cell)``, and validity
+    (at least half the block is air). The contrast itself (``sums / count``) is worked
+    out only where it is needed (:meth:`ScaleMap.contrast_in`)."""
     valid = counts >= 0.5 * cell
     m = np.maximum(counts, np.float32(1.0))
-    contrast = np.divide(sums, m)
-    np.multiply(m, np.float32(1.0 / cell), out=m)
+    np.multiply(m, np.float32(cell), out=m)
     np.sqrt(m, out=m)
-    return contrast, np.multiply(contrast, m, out=m), valid
+    return np.divide(sums, m, out=m), valid
 
 
 @dataclass
 class ScaleMap:
-    """One scale of the matched filter on its grid."""
+    """One scale of the matched filter on its grid.
+
+    ``z`` is the filtered contrast divided by its white-noise growth (HU, float32), left
+    as computed where the cells are not valid; its air has median ``z_median`` and robust
+    SD ``noise_hu``. Levels are stated in units of that SD above that median
+    (:meth:`above`), so the map is never normalised as a whole.
+    """
 
     sigma_mm: float
     factors: tuple[int, int, int]
-    contrast_hu: np.ndarray  # filtered contrast above the air, float32
-    z: np.ndarray  # noise-normalised significance, float32 (0 where not valid)
+    z: np.ndarray  # contrast / white-noise growth, float32 (meaningless where not valid)
     valid: np.ndarray  # bool: enough air around to measure
-    noise_hu: float  # robust SD of the filtered air
+    z_median: float  # median of z over the air
+    noise_hu: float  # robust SD of z over the air
     threshold: float  # high threshold in units of that SD
     resels: float
+    contrast_hu: np.ndarray | None = None  # filtered contrast above the air; None: sums / counts
+    sums: np.ndarray | None = None  # block-mean scale: contrast summed over each block's air
+    counts: np.ndarray | None = None  # block-mean scale: air pixels per block
+
+    def above(self, level_sd: float, box: tuple[slice, ...] | None = None) -> np.ndarray:
+        """Valid cells (of ``box``) whose normalised significance exceeds ``level_sd``."""
+        box = box if box is not None else (slice(None),) * self.z.ndim
+        out = self.z[box] > np.float32(self.z_median + level_sd * self.noise_hu)
+        return np.logical_and(out, self.valid[box], out=out)
+
+    def contrast_in(self, box: tuple[slice, ...]) -> np.ndarray:
+        """The filtered contrast above the air (HU) in ``box``."""
+        if self.contrast_hu is not None:
+            return self.contrast_hu[box]
+        return np.divide(self.sums[box], np.maximum(self.counts[box], np.float32(1.0)))
 
 
 def _gaussian_weights(sigma: float, truncate: float = 3.0) -> np.ndarray:
@@ -676,25 +698,28 @@ def _filtered_scale(
     return contrast, growth, valid
 
 
-def _plane_step(valid: np.ndarray, max_samples: int = MAX_ROBUST_SAMPLES) -> int:
-    """Every how many planes (axis 0) to sample so that about ``max_samples`` valid cells remain."""
-    n = int(np.count_nonzero(valid))
+def _plane_step(valid: np.ndarray, max_samples: int = MAX_ROBUST_SAMPLES, n: int | None = None) -> int:
+    """Every how many planes (axis 0) to sample so that about ``max_samples`` valid cells
+    remain (``n``: the number of valid cells, counted when not given)."""
+    if n is None:
+        n = int(np.count_nonzero(valid))
     return max(1, min(valid.shape[0], -(-n // max_samples)))
 
 
-def _smoothness_resels(z: np.ndarray, valid: np.ndarray) -> float:
+def _smoothness_resels(z: np.ndarray, valid: np.ndarray, sd: float = 1.0, n: int | None = None) -> float:
     """Resel count of the air: voxels / prod(FWHM), FWHM per axis from finite differences.
 
-    The differences are taken on every ``k``-th plane (about ``MAX_ROBUST_SAMPLES`` of
-    them), between neighbours that are both valid.
+    ``z / sd`` is the unit-variance field (``n``: the number of valid cells, counted when
+    not given). The differences are taken on every ``k``-th plane (about
+    ``MAX_ROBUST_SAMPLES`` of them), between neighbours that are both valid.
 
     References
     ----------
     .. [1] Worsley KJ, et al. J Cereb Blood Flow Metab 12(6), 1992;
            FWHM = sqrt(4 ln 2 / var(dZ/dx)) for a unit-variance field (from memory).
     """
-    n = float(np.count_nonzero(valid))
-    step = _plane_step(valid)
+    n = float(np.count_nonzero(valid)) if n is None else float(n)
+    step = _plane_step(valid, n=int(n))
     fwhm = 1.0
     for axis in range(3):
         if z.shape[axis] < 2:
@@ -710,7 +735,7 @@ def _smoothness_resels(z: np.ndarray, valid: np.ndarray) -> float:
         if np.count_nonzero(both) < 20:
             continue
         d = z1[both] - z0[both]
-        var = _robust_sd(d, RESEL_SAMPLES)[1] ** 2
+        var = (_robust_sd(d, RESEL_SAMPLES)[1] / sd) ** 2
         fwhm *= max(1.0, math.sqrt(_FWHM_FACTOR / max(var, 1e-12)))
     return n / fwhm
 
@@ -785,23 +810,25 @@ def matched_filter_scales(
     maps = []
     for sigma_mm, (rel, sig), (S, C) in zip(s["scales_mm"], levels, grids):
         cell = base_cell * float(np.prod(rel))
+        extra: dict[str, Any] = {}
         if max(sig) == 0.0:
-            contrast, z, valid = _box_scale(S, C, cell)
+            z, valid = _box_scale(S, C, cell)
+            extra = {"sums": S, "counts": C}
         else:
             contrast, growth, valid = _filtered_scale(S.copy() if S is sums else S, C, cell, sig)
-            z = np.divide(contrast, growth, out=growth)  # noise-normalised contrast, in place
+            z = np.divide(contrast, growth, out=growth)  # contrast / white-noise growth, in place
+            extra = {"contrast_hu": contrast}
         del S, C
-        if np.count_nonzero(valid) < 20:
+        n_valid = int(np.count_nonzero(valid))
+        if n_valid < 20:
             continue
-        step = _plane_step(valid)
+        step = _plane_step(valid, n=n_valid)
         med, sd = _robust_sd(z[::step][valid[::step]])
         sd = max(sd, noise_floor_hu / math.sqrt(cell))
-        z -= np.float32(med)
-        z *= np.float32(1.0 / sd)
-        np.multiply(z, valid, out=z)  # 0 where not valid
-        resels = _smoothness_resels(z, valid)
+        resels = _smoothness_resels(z, valid, sd, n_valid)
         t = max(float(s["min_high_sigma"]), threshold_for_false_alarms(alpha, resels, dims))
-        maps.append(ScaleMap(sigma_mm, tuple(b * r for b, r in zip(base, rel)), contrast, z, valid, sd, t, resels))
+        factors = tuple(b * r for b, r in zip(base, rel))
+        maps.append(ScaleMap(sigma_mm, factors, z, valid, med, sd, t, resels, **extra))
     del grids
     return maps
 
@@ -912,15 +939,14 @@ def hysteresis_structures_boxes(
     out = np.zeros(m.z.shape, dtype=np.int32)
     snr: dict[int, float] = {}
     outer: dict[int, tuple[slice, ...]] = {}
-    high = m.z > m.threshold
+    high = m.above(m.threshold)
     box = _padded_box_3d(high, 2)
     if box is None:
         return out, snr, []
-    low = m.valid & (m.z > grow_sigma)
     if m.threshold > grow_sigma:  # every core lies in one component of ``low``
-        box, lab, n = components_box(low, high, box)
+        box, lab, n = components_box(lambda b: m.above(grow_sigma, b), high, box)
     else:
-        lab, n = ndimage.label(low[box])
+        lab, n = ndimage.label(m.above(grow_sigma, box))
     if n == 0:
         return out, snr, []
     high = high[box]
@@ -933,15 +959,21 @@ def hysteresis_structures_boxes(
     else:
         objects = ndimage.find_objects(lab)
         cores = _cores_by_labelling(lab, objects, high)
-    contrast_map = m.contrast_hu[box]
     out_full, out = out, out[box]
+    maps: dict[int, np.ndarray] = {}  # the contrast in the box of each component holding a core
+
+    def contrast_of(i: int) -> np.ndarray:
+        if i not in maps:
+            maps[i] = m.contrast_in(_shifted_box(objects[i - 1], box))
+        return maps[i]
+
     found = []
     for j, (i, core) in enumerate(cores, start=1):
-        sl = objects[i - 1]
-        found.append((float(np.percentile(contrast_map[sl][core], 90)), j, i, core))
+        found.append((float(np.percentile(contrast_of(i)[core], 90)), j, i, core))
     for contrast, j, i, core in sorted(found, key=lambda f: f[:3], reverse=True):
         sl = objects[i - 1]
-        region = (lab[sl] == i) & (contrast_map[sl] > 0.5 * contrast)
+        region = contrast_of(i) > np.float32(0.5 * contrast)
+        np.logical_and(region, lab[sl] == i, out=region)
         pieces, n_pieces = ndimage.label(region)
         touched = present_labels(pieces[core])
         keep = np.zeros(n_pieces + 1, dtype=bool)
@@ -953,7 +985,9 @@ def hysteresis_structures_boxes(
         existing = existing[existing > 0]
         target = int(existing[0]) if existing.size else len(snr) + 1
         view = out[sl]
-        view[region & (view == 0)] = target
+        if existing.size:
+            np.logical_and(region, view == 0, out=region)
+        np.copyto(view, np.int32(target), where=region)
         snr[target] = max(snr.get(target, 0.0), contrast / max(m.noise_hu, 1e-6))
         outer[target] = _union_box(outer.get(target), sl)
     boxes = tight_boxes(out, len(snr), [outer[k] for k in range(1, len(snr) + 1)])
@@ -977,22 +1011,27 @@ def _padded_box_3d(mask: np.ndarray, pad: int) -> tuple[slice, ...] | None:
 
 
 def components_box(
-    low: np.ndarray, high: np.ndarray, box: tuple[slice, ...], max_rounds: int = 4
+    low: np.ndarray | Callable[[tuple[slice, ...]], np.ndarray],
+    high: np.ndarray,
+    box: tuple[slice, ...],
+    max_rounds: int = 4,
 ) -> tuple[tuple[slice, ...], np.ndarray, int]:
     """A box that holds every component of ``low`` containing a ``high`` cell whole, with
     ``ndimage.label(low[box])``.
 
-    Starts from ``box`` (around the high cells) and grows every face that such a
-    component reaches (a component that reaches a face may go on beyond it) until none
-    does; after ``max_rounds`` the whole grid.
+    ``low``: the mask, or a function giving the mask inside a box (so it is worked out
+    only where it is labelled). Starts from ``box`` (around the high cells) and grows
+    every face that such a component reaches (a component that reaches a face may go on
+    beyond it) until none does; after ``max_rounds`` the whole grid.
     """
+    low_in = low if callable(low) else (lambda b: low[b])
     for _ in range(max_rounds):
-        lab, n = ndimage.label(low[box])
+        lab, n = ndimage.label(low_in(box))
         hold = present_labels(lab[high[box]])
         keep = np.zeros(n + 1, dtype=bool)
         keep[hold[hold > 0]] = True
         grown = []
-        for axis, (x, size) in enumerate(zip(box, low.shape)):
+        for axis, (x, size) in enumerate(zip(box, high.shape)):
             lo_face = x.start > 0 and bool(keep[lab.take(0, axis=axis)].any())
             hi_face = x.stop < size and bool(keep[lab.take(-1, axis=axis)].any())
             step = max(4, (x.stop - x.start) // 2)
@@ -1001,8 +1040,8 @@ def components_box(
         if grown == box:
             return box, lab, n
         box = grown
-    full = tuple(slice(0, n) for n in low.shape)
-    lab, n = ndimage.label(low)
+    full = tuple(slice(0, n) for n in high.shape)
+    lab, n = ndimage.label(low_in(full))
     return full, lab, n
 
 
