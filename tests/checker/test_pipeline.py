@@ -1,0 +1,82 @@
+"""The engine's runner of analyses: side by side or one after the other, the same results."""
+from __future__ import annotations
+
+from pathlib import Path
+
+import numpy as np
+import pytest
+
+from reconaudit.checker import pipeline
+from reconaudit.checker.load import load_path
+from reconaudit.checker.results import dumps
+
+DEMO = Path(__file__).resolve().parents[2] / "sample_volumes" / "fernhollow" / "20240611"
+
+
+@pytest.fixture(scope="module")
+def phantom_volume():
+    (volume,) = load_path(DEMO / "qa_phantom")
+    return volume
+
+
+def _run(volume, monkeypatch, threads: int, **kwargs):
+    monkeypatch.setattr(pipeline, "ANALYSIS_THREADS", threads)
+    return pipeline.analyse_volume(volume, **kwargs)
+
+
+def test_concurrent_analyses_give_the_sequential_results_in_the_same_order(phantom_volume, monkeypatch):
+    one = _run(phantom_volume, monkeypatch, 1)
+    two = _run(phantom_volume, monkeypatch, 2)
+    assert list(two.results) == list(one.results) == pipeline._analyses.available()
+    for name in one.results:
+        assert dumps(two.results[name].record) == dumps(one.results[name].record), name
+        assert [f.message for f in two.results[name].findings] == [f.message for f in one.results[name].findings]
+    assert two.verdict == one.verdict
+
+
+def test_a_failing_analysis_is_recorded_and_the_others_still_run(phantom_volume, monkeypatch):
+    real_get = pipeline._analyses.get
+
+    def get(name):
+        if name == "air":
+            def broken(volume, regions, settings=None):
+                raise ValueError("simulated failure")
+            return broken
+        return real_get(name)
+
+    monkeypatch.setattr(pipeline._analyses, "get", get)
+    out = _run(phantom_volume, monkeypatch, 2)
+    assert out.errors["air"]["kind"] == "analysis_failed"
+    assert "simulated failure" in out.results["air"].record["reason"]
+    others = [n for n in out.results if n != "air"]
+    assert others and all(n not in out.errors for n in others)
+
+
+def test_progress_reaches_done_and_cancel_stops_the_run(phantom_volume, monkeypatch):
+    seen = []
+    _run(phantom_volume, monkeypatch, 2, progress=lambda stage, fraction: seen.append((stage, fraction)))
+    assert seen[-1] == ("done", 1.0)
+    assert {s for s, _ in seen} >= set(pipeline._analyses.available())
+    fractions = [f for _, f in seen]
+    assert fractions == sorted(fractions)
+
+    calls = {"n": 0}
+
+    def cancel_after_first() -> bool:
+        calls["n"] += 1
+        return calls["n"] > 1
+
+    with pytest.raises(pipeline.Cancelled):
+        _run(phantom_volume, monkeypatch, 2, cancel=cancel_after_first)
+
+
+def test_threads_follow_the_task_budget():
+    from reconaudit.checker import batch
+
+    saved = pipeline.ANALYSIS_THREADS
+    try:
+        batch._limit_threads(1)
+        assert pipeline.ANALYSIS_THREADS == 1
+    finally:
+        pipeline.ANALYSIS_THREADS = saved
+    assert np.isfinite(pipeline._cores())
