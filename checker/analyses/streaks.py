@@ -36,6 +36,23 @@ each): acquisition streaks persist from slice to slice, the largest noise bin do
 The volume index is the largest slice index.
 A slice, and the series, is flagged when its index exceeds ``tolerance_index``.
 
+Thin slices are screened in slabs. A slab is ``round(screen_slab_mm / slice spacing)``
+adjacent slices (at least 1; 2.5 mm and thicker slices are screened one by one, as
+before slabs existed); the screen takes the mean of the slab's usable binned slices
+(and the intersection of their masks, so every slice's table and body outline stay
+out). Acquisition streaks (missing wedge, view aliasing, metal) persist over a few mm
+along z -- the neighbour mixing above already rests on that -- while the noise of
+adjacent slices is largely independent, so the slab mean keeps the streak energy and
+lowers the noise; the ring whitening against the measured spectrum keeps the index at 1
+for isotropic texture. A slab's index and profile are those of each of its slices (the
+neighbour mixing works between slabs). A slab above the tolerance is refined: each of
+its slices is screened alone and keeps the smaller of the slab's index and its own
+(per-slice rule, neighbours being slices), so a flag lands on the slices that carry it.
+This is a method choice of the speed rule (screen coarse, refine where something was
+found): the indices of thin-slice series are estimates from slabs; record keys, types
+and meaning are unchanged. Localisation of flagged slices stays per slice at full
+resolution.
+
 Missing wedge: a contiguous run of at least ``wedge_min_deg`` of orientation bins of the
 mean profile below ``wedge_level``; each end is the boundary streak peak just outside
 the half-level crossing (or that crossing when there is no such peak).
@@ -115,6 +132,7 @@ DEFAULTS: dict[str, Any] = {
     "tolerance_index": 2.0,
     "severity": "review",
     "screen_max_px": 256,
+    "screen_slab_mm": 2.5,
     "min_slice_px": 32,
     "band_cycles_per_px": [0.1, 0.45],
     "angle_bin_deg": 2.0,
@@ -154,6 +172,10 @@ SOURCES: dict[str, str] = {
     "noise_equalise_sigma_px": "site choice (about 10 binned pixels: larger than a streak's width)",
     "table_band_px": "site choice",
     "neighbour_weight": "site choice",
+    "screen_slab_mm": (
+        "site choice (acquisition streaks persist over a few mm along z; 2.5 mm and thicker "
+        "slices are screened one by one)"
+    ),
     "dense_hu": "site choice, above cortical bone (about 2000 HU or less, from memory); metal reads far higher",
     "dense_band_hu": "site choice (several times the noise SD of a routine body series)",
 }
@@ -174,6 +196,9 @@ def resolve_settings(settings: dict[str, Any] | None) -> dict[str, Any]:
     lo, hi = (float(v) for v in merged["band_cycles_per_px"])
     if not 0.0 < lo < hi <= 0.5:
         raise ProfileError(f"band_cycles_per_px {[lo, hi]}; expected 0 < low < high <= 0.5", source=NAME)
+    slab_mm = float(merged["screen_slab_mm"])
+    if not (math.isfinite(slab_mm) and slab_mm >= 0.0):
+        raise ProfileError(f"screen_slab_mm {merged['screen_slab_mm']!r}; expected a finite value >= 0", source=NAME)
     if not 180.0 / float(merged["angle_bin_deg"]) >= 12:
         raise ProfileError(f"angle_bin_deg {merged['angle_bin_deg']}; expected at most 15", source=NAME)
     return merged
@@ -1478,10 +1503,25 @@ class Screen:
 SCREEN_THREADS = max(1, min(2, os.cpu_count() or 1))
 
 
-def screen_volume(volume: Volume, regions: Regions | None, cfg: dict[str, Any]) -> Screen:
-    """Angular profile and streak index of every axial slice (binned screen).
+def slab_size(slice_mm: float, cfg: dict[str, Any]) -> int:
+    """Slices per screen slab: ``round(screen_slab_mm / slice spacing)``, at least 1.
 
-    Slices are independent; they are screened by :data:`SCREEN_THREADS` threads and the
+    A spacing that is not a positive finite number (a one-slice volume may carry any)
+    gives 1: the slices are screened one by one.
+    """
+    spacing = float(slice_mm)
+    if not (math.isfinite(spacing) and spacing > 0.0):
+        return 1
+    return max(1, int(round(float(cfg["screen_slab_mm"]) / spacing)))
+
+
+def screen_volume(volume: Volume, regions: Regions | None, cfg: dict[str, Any]) -> Screen:
+    """Angular profile and streak index of every axial slice (binned screen, slabs of thin slices).
+
+    Slices are screened in slabs of :func:`slab_size` adjacent slices (the mean of the
+    slab's usable slices, see the module docstring); a slab's profile and index are
+    those of each of its slices. Slabs are independent; they are screened by
+    :data:`SCREEN_THREADS` threads, :data:`SCREEN_STACK` slabs per task, and the
     outcomes gathered in slice order, so the result does not depend on the thread count.
     """
     nz, ny, nx = volume.shape
@@ -1489,12 +1529,16 @@ def screen_volume(volume: Volume, regions: Regions | None, cfg: dict[str, Any]) 
     shape_b = (ny // factor, nx // factor)
     bins = spectral_bins(shape_b, tuple(float(v) for v in cfg["band_cycles_per_px"]), float(cfg["angle_bin_deg"]))
     masks = AllowedMasks(regions, factor, shape_b, cfg)
-    starts = list(range(0, nz, SCREEN_STACK))
+    slab = min(slab_size(volume.spacing_mm[0], cfg), nz)
+    per_task = SCREEN_STACK * slab
+    starts = list(range(0, nz, per_task))
 
     def one(i: int) -> list[np.ndarray | str]:
-        z0, z1 = starts[i], min(starts[i] + SCREEN_STACK, nz)
+        z0, z1 = starts[i], min(starts[i] + per_task, nz)
         allowed = masks.stack(z0, z1)
-        return screen_stack(volume.hu[z0:z1], allowed, factor, bins, cfg)
+        if slab == 1:
+            return screen_stack(volume.hu[z0:z1], allowed, factor, bins, cfg)
+        return screen_slab_stack(volume.hu[z0:z1], allowed, factor, bins, cfg, slab)
 
     outcomes = [o for stack in map_slices(one, len(starts), SCREEN_THREADS) for o in stack]
     profiles: dict[int, np.ndarray] = {}
@@ -1504,8 +1548,59 @@ def screen_volume(volume: Volume, regions: Regions | None, cfg: dict[str, Any]) 
             skipped[outcome] += 1
         else:
             profiles[z] = outcome
-    indices = [None if z not in profiles else round(slice_index_with_neighbours(profiles, z, float(cfg["neighbour_weight"])), 3) for z in range(nz)]
+    indices = slab_indices(profiles, nz, slab, float(cfg["neighbour_weight"]))
+    if slab > 1:
+        refine_flagged_slabs(volume, masks, factor, bins, cfg, profiles, indices)
     return Screen(factor=factor, shape_b=shape_b, profiles=profiles, indices=indices, skipped=skipped)
+
+
+def slab_indices(profiles: dict[int, np.ndarray], nz: int, slab: int, neighbour_weight: float) -> list[float | None]:
+    """Streak index of every slice: its slab's index mixed with the neighbouring slabs.
+
+    Slab ``j`` holds slices ``j * slab`` to ``(j + 1) * slab - 1``; its profile is the
+    one shared by its screened slices (:func:`slice_index_with_neighbours` works between
+    slabs). With ``slab`` 1 this is the per-slice rule. Unscreened slices get None.
+    """
+    by_slab: dict[int, np.ndarray] = {}
+    for z in sorted(profiles):
+        by_slab.setdefault(z // slab, profiles[z])
+    index = {j: round(slice_index_with_neighbours(by_slab, j, neighbour_weight), 3) for j in by_slab}
+    return [index[z // slab] if z in profiles else None for z in range(nz)]
+
+
+def refine_flagged_slabs(volume: Volume, masks: "AllowedMasks", factor: int, bins: SpectralBins,
+                         cfg: dict[str, Any], profiles: dict[int, np.ndarray], indices: list[float | None]) -> None:
+    """Screen the slices of flagged slabs one by one; each keeps the smaller index (in place).
+
+    A slab above ``tolerance_index`` may owe its excess to some of its slices only, so
+    each of its screened slices is screened alone (:func:`screen_stack`) and its index
+    becomes the smaller of the slab's and its own (the per-slice rule of
+    :func:`slice_index_with_neighbours`, neighbours taken from the refined slices or,
+    outside them, from their slabs' profiles); its own profile replaces the slab's. A
+    slice is therefore flagged only when its slab and the slice itself exceed the
+    tolerance. Slabs below the tolerance are left as they are.
+    """
+    tol = float(cfg["tolerance_index"])
+    chosen = [z for z in sorted(profiles) if indices[z] is not None and indices[z] > tol]
+    if not chosen:
+        return
+    runs = [chosen[i : i + SCREEN_STACK] for i in range(0, len(chosen), SCREEN_STACK)]
+
+    def one(i: int) -> list[np.ndarray | str]:
+        zs = runs[i]
+        allowed = np.stack([masks(z) for z in zs])
+        return screen_stack(volume.hu[zs], allowed, factor, bins, cfg)
+
+    own: dict[int, np.ndarray] = dict(profiles)
+    for zs, outcomes in zip(runs, map_slices(one, len(runs), SCREEN_THREADS)):
+        for z, outcome in zip(zs, outcomes):
+            if not isinstance(outcome, str):
+                own[z] = outcome
+    weight = float(cfg["neighbour_weight"])
+    for z in chosen:
+        indices[z] = round(min(indices[z], slice_index_with_neighbours(own, z, weight)), 3)
+    for z in chosen:
+        profiles[z] = own[z]
 
 
 def screen_slice(image: np.ndarray, allowed: np.ndarray, factor: int, bins: SpectralBins, cfg: dict[str, Any]) -> np.ndarray | str:
@@ -1546,6 +1641,60 @@ def screen_stack(images: np.ndarray, allowed: np.ndarray, factor: int, bins: Spe
             if profile is not None:
                 outcomes[keep[j]] = profile
     return outcomes
+
+
+def screen_slab_stack(images: np.ndarray, allowed: np.ndarray, factor: int, bins: SpectralBins,
+                      cfg: dict[str, Any], slab: int) -> list[np.ndarray | str]:
+    """Outcome of every slice of a ``(k, ny, nx)`` stack screened in slabs of ``slab`` slices.
+
+    Each slice is binned and checked as in :func:`screen_stack`; a slab's image is the
+    mean of its usable binned slices and its mask the intersection of their masks
+    (every slice's table and body outline stay left out). The slab's profile is the
+    outcome of each of its usable slices; unusable slices keep their reason.
+    """
+    k = images.shape[0]
+    binned = bin_slice(images, factor) if factor == 1 else np.stack([bin_slice(images[i], factor) for i in range(k)])
+    high, low = binned.reshape(k, -1).max(axis=1), binned.reshape(k, -1).min(axis=1)
+    finite = np.isfinite(high) & np.isfinite(low)
+    outcomes: list[np.ndarray | str] = ["without usable pixels"] * k
+    members: list[list[int]] = []
+    for z0 in range(0, k, slab):
+        keep = []
+        for i in range(z0, min(z0 + slab, k)):
+            kind = None if finite[i] and high[i] != low[i] else _unusable(binned[i], images[i])
+            if kind:
+                outcomes[i] = kind
+            else:
+                keep.append(i)
+        if keep:
+            members.append(keep)
+    if not members:
+        return outcomes
+    means = np.stack([slab_mean(binned, m) for m in members])
+    masks = np.stack([np.logical_and.reduce(allowed[m], axis=0) for m in members])
+    slab_finite = np.array([bool(np.all(finite[m])) for m in members])
+    textures, usable = screen_textures(means, masks, cfg, slab_finite)
+    good = [j for j in range(len(members)) if usable[j]]
+    if good:
+        stack = textures if len(good) == len(members) else textures[good]
+        cells = cell_powers(sfft.rfft2(stack, axes=(-2, -1)), bins)
+        for j, c in zip(good, cells):
+            profile = profile_of_cells(c, bins)
+            if profile is not None:
+                for i in members[j]:
+                    outcomes[i] = profile
+    return outcomes
+
+
+def slab_mean(binned: np.ndarray, members: list[int]) -> np.ndarray:
+    """Mean (float32) of the binned slices ``members`` of ``binned``."""
+    if len(members) == 1:
+        return binned[members[0]]
+    out = np.add(binned[members[0]], binned[members[1]], dtype=np.float32)
+    for i in members[2:]:
+        out += binned[i]
+    out *= np.float32(1.0 / len(members))
+    return out
 
 
 def map_slices(fn: Callable[[int], Any], nz: int, threads: int) -> list[Any]:
