@@ -83,9 +83,16 @@ class EsfAccumulator:
         self.counts = np.zeros(self.n_bins, dtype=np.int64)
         self.sums = np.zeros(self.n_bins)
 
-    def add(self, distance_mm: np.ndarray, values: np.ndarray, mask: np.ndarray | None = None) -> None:
+    def add(self, distance_mm: np.ndarray, values: np.ndarray, mask: np.ndarray | None = None, *,
+            multiplicity: np.ndarray | None = None) -> None:
         """Bin one batch: ``distance_mm`` and ``values`` of the same shape; ``mask``
-        (same shape, optional) selects the pixels that count."""
+        (same shape, optional) selects the pixels that count.
+
+        With ``multiplicity`` (same shape, positive integers), each entry of ``values``
+        is the sum of that many pixel values at the same distance (pixels pooled over
+        slices before binning): it adds its value to the bin sum and its multiplicity
+        to the bin count, which is what binning the pooled pixels one by one gives.
+        """
         d = np.asarray(distance_mm, dtype=float).ravel()
         v = np.asarray(values, dtype=float).ravel()
         keep = (d >= self.lo_mm) & (d < self.hi_mm) & np.isfinite(v)
@@ -95,7 +102,11 @@ class EsfAccumulator:
         with np.errstate(invalid="ignore"):
             idx = np.minimum(((d - self.lo_mm) / self.bin_mm).astype(np.int64), n - 1)
         idx = np.where(keep, idx, n)
-        self.counts += np.bincount(idx, minlength=n + 1)[:n]
+        if multiplicity is None:
+            self.counts += np.bincount(idx, minlength=n + 1)[:n]
+        else:
+            m = np.asarray(multiplicity, dtype=float).ravel()
+            self.counts += np.rint(np.bincount(idx, weights=m, minlength=n + 1)[:n]).astype(np.int64)
         self.sums += np.bincount(idx, weights=np.where(keep, v, 0.0), minlength=n + 1)[:n]
 
     def binned(self) -> BinnedEsf:
