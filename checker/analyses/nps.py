@@ -26,7 +26,10 @@ of the detrended ROI pixels, reported beside it as ``roi_sd_hu``).
 Speed (method choices, not approximations of the formulas above): the ROIs are detrended
 once for the 2-D NPS, their SD and the 3-D NPS; DFTs are real-input DFTs completed by
 Hermitian symmetry, and the 3-D DFT of a block is the DFT along z of its slices' 2-D
-DFTs. The phantom search reads a strided working grid (:mod:`._phantom`) and the
+DFTs. The ROIs are gathered once into one single-precision array (one block copy per
+ROI), their means taken out in double precision and the polynomial fit removed in place
+on the mean-free pixels; squared spectra are summed in single precision over chunks of
+16 ROIs and in double precision across chunks. The phantom search reads a strided working grid (:mod:`._phantom`) and the
 patient search a few slices, so the records are estimates that may differ slightly
 from a search over every pixel; record keys, types and meaning are unchanged.
 
@@ -104,6 +107,7 @@ SOURCES: dict[str, str] = {
 
 _DETRENDS = ("mean", "poly1", "poly2")
 _CHUNK = 128  # ROIs detrended or transformed at a time (bounds memory)
+_POWER_CHUNK = 16  # spectra whose squares are summed in single precision before adding in double
 
 
 # --------------------------------------------------------------------------- core maths
@@ -173,10 +177,20 @@ def _full_from_half(half: np.ndarray, m: int) -> np.ndarray:
 
 
 def _power(spec: np.ndarray) -> np.ndarray:
-    """Sum over the first axis of |spec|^2, accumulated in float64."""
+    """Sum over the first axis of |spec|^2, accumulated in float64.
+
+    Single-precision spectra: squares summed in float32 over chunks of
+    ``_POWER_CHUNK`` items (on the interleaved real and imaginary parts), the chunks
+    added in float64 (relative error about 1e-7).
+    """
     flat = spec.reshape(spec.shape[0], -1)
     if flat.dtype == np.complex64:
-        return (flat.real**2 + flat.imag**2).sum(axis=0, dtype=np.float64).reshape(spec.shape[1:])
+        parts = flat.view(np.float32)
+        acc = np.zeros(parts.shape[1])
+        for start in range(0, parts.shape[0], _POWER_CHUNK):
+            chunk = parts[start : start + _POWER_CHUNK]
+            acc += np.einsum("nk,nk->k", chunk, chunk)
+        return (acc[0::2] + acc[1::2]).reshape(spec.shape[1:])
     return (np.einsum("nk,nk->k", flat.real, flat.real) + np.einsum("nk,nk->k", flat.imag, flat.imag)).reshape(
         spec.shape[1:])
 
@@ -839,19 +853,28 @@ def measure_nps(
 ) -> dict[str, Any] | str:
     """The NPS record of ``rois`` in ``hu``, or the reason it cannot be measured.
 
-    The ROIs are detrended once; the 2-D NPS, the detrended SD and the 3-D NPS all use
-    those residuals.
+    The ROIs are gathered once (one block copy per ROI, single precision), each ROI's
+    mean is taken out in double precision, and the polynomial fit is removed by the
+    projections of :func:`detrend_rois` (the same least-squares fit, single precision on
+    the mean-free pixels); the 2-D NPS, the detrended SD and the 3-D NPS all use those
+    residuals and their real DFT.
+
+    References
+    ----------
+    IEC 62220-1-1; ICRU Report 87 (2012); AAPM TG-233, Med Phys 46(11), 2019.
     """
-    stack = roi_stack(hu, rois)
+    stack = roi_images(hu, rois)
     if stack.shape[0] < s["min_roi_count"]:
         return f"{stack.shape[0]} ROI images; at least {s['min_roi_count']} are needed"
-    if not np.isfinite(stack.sum(dtype=np.float64)):
+    means = stack.mean(axis=(1, 2), dtype=np.float64)
+    if not np.isfinite(means.sum()):
         return "ROIs contain NaN or infinite values"
-    raw = stack.astype(np.float64)
-    res = detrend_rois(raw, s["detrend"])
+    stack -= means.astype(np.float32)[:, None, None]  # mean-free: no offset in the sums below
+    raw_var = _mean_square(stack)
+    res = _remove_fit_in_place(stack, s["detrend"])
     # single precision DFT (power summed in double): the integral stays within 1e-7 of
     # the pixel variance, far below any tolerance; the spectra are kept for the 3-D NPS
-    spec = scipy.fft.rfft2(res.astype(np.float32))
+    spec = scipy.fft.rfft2(res)
     nps, fy, fx = _nps_2d_of_residuals(res, spacing_zyx_mm[1:], spec)
     variance = float(nps.sum() * abs(fy[1] - fy[0]) * abs(fx[1] - fx[0]))
     if not variance > 1e-12:
@@ -860,9 +883,9 @@ def measure_nps(
     curve = smooth_curve(curve, s["smooth_bins"])
     record: dict[str, Any] = {
         "noise_hu": float(np.sqrt(variance)),
-        "roi_sd_hu": float(np.sqrt(_pixel_variances(res).mean())),
-        "roi_sd_raw_hu": float(np.sqrt(_pixel_variances(raw).mean())),
-        "roi_mean_hu": float(raw.mean()),
+        "roi_sd_hu": float(np.sqrt(_mean_square(res).mean())),
+        "roi_sd_raw_hu": float(np.sqrt(raw_var.mean())),
+        "roi_mean_hu": float(means.mean()),
         "f_peak_per_mm": peak_frequency(f, curve),
         "f_av_per_mm": average_frequency(f, curve),
         "frequency_per_mm": [round(float(v), 6) for v in f],
@@ -876,12 +899,40 @@ def measure_nps(
     return record
 
 
-def _pixel_variances(stack: np.ndarray) -> np.ndarray:
-    """Population variance of the pixels of each ROI of a float64 (n, Ny, Nx) stack,
-    from the mean and the mean square (one pass each)."""
-    flat = stack.reshape(stack.shape[0], -1)
-    mean = flat.mean(axis=1)
-    return np.maximum(np.einsum("nk,nk->n", flat, flat) / flat.shape[1] - mean * mean, 0.0)
+def roi_images(hu: np.ndarray, rois: Sequence[Roi]) -> np.ndarray:
+    """All 2-D ROI images in :func:`roi_stack` order as one new float32 (n, Ny, Nx)
+    array: one block copy per ROI (all ROIs must share one size)."""
+    blocks = [hu[r.z0 : r.z1 + 1, r.y0 : r.y1, r.x0 : r.x1] for r in rois]
+    return np.concatenate(blocks, dtype=np.float32)
+
+
+def _mean_square(stack: np.ndarray) -> np.ndarray:
+    """Mean of the squared pixels of each ROI of a mean-free float32 (n, Ny, Nx) stack
+    (the population variance), squares summed in double."""
+    return np.square(stack).reshape(stack.shape[0], -1).sum(axis=1, dtype=np.float64) / (
+        stack.shape[1] * stack.shape[2])
+
+
+def _remove_fit_in_place(stack: np.ndarray, method: str) -> np.ndarray:
+    """Subtract from each mean-free float32 ROI its least-squares 2-D polynomial
+    (``poly1``/``poly2``; nothing more for ``mean``), in place, by the orthonormal
+    axis-by-axis projections of :func:`detrend_rois`.
+
+    References
+    ----------
+    Dolly S. et al., JACMP 17(3), 2016; AAPM TG-233, Med Phys 46(11), 2019.
+    """
+    if method == "mean":
+        return stack
+    order = 1 if method == "poly1" else 2
+    _, ny, nx = stack.shape
+    py = _poly_basis(ny, order).astype(np.float32)
+    qx_t = np.ascontiguousarray(_poly_basis(nx, order).T.astype(np.float32))
+    keep = (np.add.outer(np.arange(order + 1), np.arange(order + 1)) <= order).astype(np.float32)
+    along_x = np.einsum("nyx,jx->nyj", stack, qx_t)
+    coef = np.einsum("nyj,yi->nij", along_x, py) * keep
+    stack -= np.einsum("nij,yi->nyj", coef, py) @ qx_t
+    return stack
 
 
 def _block_starts(rois: Sequence[Roi], depth: int) -> list[int]:
