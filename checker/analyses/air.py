@@ -196,6 +196,38 @@ def _air_sample(hu: np.ndarray, air: np.ndarray, max_samples: int = 200_000, n: 
     return hu[sl][air[sl]]
 
 
+def order_median(values: np.ndarray) -> float:
+    """``np.median`` of finite values (the same number), by one partition: the lower middle
+    value of an even count is the largest of those below the upper one. NaN when empty."""
+    v = np.asarray(values).ravel()
+    n = v.size
+    if n == 0:
+        return float("nan")
+    k = n // 2
+    p = np.partition(v, k)
+    if n % 2:
+        return float(p[k])
+    return float(np.mean(np.array([p[:k].max(), p[k]])))
+
+
+def order_percentile(values: np.ndarray, q: float) -> float:
+    """``np.percentile(values, q)`` of finite values (linear interpolation, the same
+    number), by one partition, as :func:`order_median`. NaN when empty."""
+    v = np.asarray(values).ravel()
+    n = v.size
+    if n == 0:
+        return float("nan")
+    idx = q / 100.0 * (n - 1)
+    lo = int(math.floor(idx))
+    hi = min(lo + 1, n - 1)
+    p = np.partition(v, hi)
+    b = p[hi]
+    a = p[:hi].max() if hi > lo else b
+    t = idx - lo
+    d = b - a
+    return float(b - d * (1.0 - t)) if t >= 0.5 else float(a + d * t)  # numpy's two-sided interpolation
+
+
 def robust_mean_and_noise(
     values: np.ndarray, clip_sigma: float = 4.0, iterations: int = 3, max_median_samples: int = 100_000
 ) -> tuple[float, float]:
@@ -222,8 +254,8 @@ def robust_mean_and_noise(
     keep = v
     for _ in range(iterations):
         part = _subsample(keep, max_median_samples)
-        med = float(np.median(part))
-        mad = 1.4826 * float(np.median(np.abs(part - med)))
+        med = order_median(part)
+        mad = 1.4826 * order_median(np.abs(part - med))
         if mad <= 0:
             break
         keep = v[np.abs(v - v.dtype.type(med)) <= v.dtype.type(clip_sigma * mad)]
@@ -783,8 +815,8 @@ def _subsample(values: np.ndarray, max_samples: int = MAX_ROBUST_SAMPLES) -> np.
 def _robust_sd(values: np.ndarray, max_samples: int = MAX_ROBUST_SAMPLES) -> tuple[float, float]:
     """Median and 1.4826 x MAD (on a regular subsample of at most ``max_samples`` values)."""
     values = _subsample(values, max_samples)
-    med = float(np.median(values))
-    return med, 1.4826 * float(np.median(np.abs(values - med)))
+    med = order_median(values)
+    return med, 1.4826 * order_median(np.abs(values - med))
 
 
 def matched_filter_scales(
@@ -971,7 +1003,7 @@ def hysteresis_structures_boxes(
 
     found = []
     for j, (i, core) in enumerate(cores, start=1):
-        found.append((float(np.percentile(contrast_of(i)[core], 90)), j, i, core))
+        found.append((order_percentile(contrast_of(i)[core], 90.0), j, i, core))
     for contrast, j, i, core in sorted(found, key=lambda f: f[:3], reverse=True):
         sl = objects[i - 1]
         region = contrast_of(i) > np.float32(0.5 * contrast)

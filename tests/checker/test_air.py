@@ -274,3 +274,16 @@ def test_five_mm_sphere_at_high_contrast_is_found():
     assert flagged[0]["mean_hu"] > -1000.0 + 100.0
     clean = run(_fine_torso())
     assert not any(st["flagged"] for st in clean.record["structures"]) and not clean.flagged
+
+
+def test_order_statistics_equal_numpy_median_and_percentile():
+    """The one-partition median and percentile give numpy's numbers (odd and even counts,
+    float32 and float64, tiny and large samples)."""
+    rng = np.random.default_rng(12)
+    for n in [1, 2, 3, 4, 7, 10, 101, 1000, 20001]:
+        for dtype in (np.float32, np.float64):
+            v = (rng.normal(-1000.0, 12.0, n)).astype(dtype)
+            assert air.order_median(v) == float(np.median(v)), (n, dtype)
+            for q in (10.0, 50.0, 90.0, 99.0):
+                assert air.order_percentile(v, q) == float(np.percentile(v, q)), (n, dtype, q)
+    assert np.isnan(air.order_median(np.zeros(0))) and np.isnan(air.order_percentile(np.zeros(0), 90.0))
