@@ -9,8 +9,6 @@ from __future__ import annotations
 
 import numpy as np
 import pytest
-from scipy import ndimage
-
 from reconaudit.checker.regions import (
     _is_table,
     bounding_box,
@@ -21,6 +19,7 @@ from reconaudit.checker.regions import (
     label_compact,
 )
 from reconaudit.checker.volume import Volume
+from scipy import ndimage
 
 
 def reference_regions(volume: Volume, body_threshold_hu: float = -500.0, margin_mm: float = 4.0):
@@ -270,3 +269,103 @@ def test_one_slice_512_volume_on_the_coarse_grid(seed: int) -> None:
     if volume.padding_mask is not None:
         expected_air &= ~volume.padding_mask[None]
     assert np.array_equal(fast.air, expected_air)
+
+
+# --------------------------------------------------------------------------- exact coarse grid
+def _unpack(pat: np.ndarray) -> np.ndarray:
+    """Block patterns (z, by, bx) as the bool mask (z, 4 by, 4 bx) they stand for."""
+    bits = (pat[..., None] >> np.arange(16, dtype=np.uint16)) & 1
+    nz, by, bx = pat.shape
+    return bits.reshape(nz, by, bx, 4, 4).transpose(0, 1, 3, 2, 4).reshape(nz, 4 * by, 4 * bx).astype(bool)
+
+
+def _same_partition(a: np.ndarray, b: np.ndarray) -> bool:
+    """Whether two label volumes split the same voxels into the same groups."""
+    if not np.array_equal(a > 0, b > 0):
+        return False
+    pairs = np.unique(np.stack([a[a > 0], b[b > 0]]), axis=1)
+    return pairs.shape[1] == np.unique(pairs[0]).size == np.unique(pairs[1]).size
+
+
+@pytest.mark.parametrize("density", [0.3, 0.5, 0.6, 0.75, 0.95])
+def test_pattern_components_equal_full_resolution_labelling(density: float) -> None:
+    """Components found on the 4 x 4 block patterns against ``ndimage.label`` of the
+    unpacked mask (6-connected in 3-D, and 4-connected per slice): the same groups."""
+    from reconaudit.checker.regions import (
+        _INPLANE,
+        _nodes_of,
+        block_patterns,
+        pattern_components,
+    )
+
+    rng = np.random.default_rng(int(density * 100))
+    hu = np.where(rng.random((4, 32, 40)) < density, 100.0, -1000.0).astype(np.float32)
+    fov = np.ones((32, 40), dtype=bool)
+    pat = block_patterns(hu, fov, -500.0)
+    assert np.array_equal(_unpack(pat), hu > -500.0)
+    for in_plane in (False, True):
+        comps = pattern_components(pat, in_plane=in_plane)
+        ref, _ = ndimage.label(hu > -500.0, structure=_INPLANE if in_plane else None)
+        ours = np.zeros(hu.shape, dtype=np.int64)
+        z, y, x = np.nonzero(hu > -500.0)
+        blocks = (z * 8 + y // 4) * 10 + x // 4
+        ours[z, y, x] = 1 + comps.final[_nodes_of(comps, pat.reshape(-1), blocks, (y % 4) * 4 + x % 4)]
+        assert _same_partition(ours, ref)
+
+
+@pytest.mark.parametrize("density", [0.2, 0.45, 0.6, 0.8])
+def test_hole_filling_on_patterns_equals_binary_fill_holes(density: float) -> None:
+    from reconaudit.checker.regions import block_patterns, fill_holes_in_patterns
+
+    rng = np.random.default_rng(int(density * 1000))
+    mask = rng.random((3, 24, 28)) < density
+    mask[1, 4:20, 4:24] = True
+    mask[1, 8:16, 8:20] = False  # one big hole and many small ones
+    pat = block_patterns(np.where(mask, 0.0, -1000.0).astype(np.float32), np.ones((24, 28), dtype=bool), -500.0)
+    expected = np.stack([ndimage.binary_fill_holes(m) for m in mask])
+    assert np.array_equal(_unpack(fill_holes_in_patterns(pat)), expected)
+
+
+def _assert_coarse_equals_full(volume: Volume) -> None:
+    coarse = find_regions(volume, coarse=True)
+    full = find_regions(volume, coarse=False)
+    assert np.array_equal(coarse.body, full.body)
+    assert np.array_equal(coarse.table, full.table)
+    assert np.array_equal(coarse.air, full.air)
+    assert coarse.facts() == full.facts()
+    if full.body_centroid_zyx_vox is not None:
+        assert np.allclose(coarse.body_centroid_zyx_vox, full.body_centroid_zyx_vox, atol=1e-9)
+
+
+DEMO_SERIES = ["compare_reference", "compare_test", "qa_phantom", "qa_phantom_nonlinear", "torso_air_structure",
+               "torso_clean", "torso_limited_angle", "torso_metal", "torso_sparse_views"]
+
+
+@pytest.mark.parametrize("name", DEMO_SERIES)
+def test_coarse_grid_equals_full_resolution_on_demo_series(name: str) -> None:
+    """Body, table and air from the block patterns equal the full-resolution method voxel
+    for voxel on every demo series (among them structures a few pixels apart: the table
+    under the body of the sparse-view and limited-angle torsos)."""
+    from pathlib import Path
+
+    from reconaudit.checker.load import load_path
+
+    folder = Path(__file__).resolve().parents[2] / "sample_volumes" / "fernhollow" / "20240611" / name
+    _assert_coarse_equals_full(load_path(folder)[0])
+
+
+def test_coarse_grid_equals_full_resolution_on_benchmark_torso() -> None:
+    """The benchmark-like 512 x 512 torso (noise SD 12 HU) at 6 slices."""
+    import sys
+    from pathlib import Path
+
+    sys.path.insert(0, str(Path(__file__).resolve().parents[2] / "benchmarks"))
+    import harness
+
+    _assert_coarse_equals_full(harness.benchmark_volume(6))
+
+
+@pytest.mark.parametrize("seed", range(6))
+def test_coarse_grid_equals_full_resolution_on_random_phantoms(seed: int) -> None:
+    """256 x 256 random phantoms with specks, holes and a table close to the body."""
+    _assert_coarse_equals_full(random_phantom(seed, nz=4, n=256))
