@@ -476,6 +476,18 @@ def _masked_plane_sum_unchecked(h: np.ndarray, a: np.ndarray, out: np.ndarray) -
     return out
 
 
+def _mask_plane_count(a: np.ndarray, out: np.ndarray) -> np.ndarray:
+    """Number of slices of the bool ``a`` (k, y, x) that hold at each pixel, into the
+    integer plane ``out`` (exact while k is below its largest value)."""
+    if a.shape[0] == 1:
+        out[...] = a[0]
+        return out
+    np.add(a[0].view(np.uint8), a[1].view(np.uint8), out=out, casting="unsafe")
+    for k in range(2, a.shape[0]):
+        np.add(out, a[k].view(np.uint8), out=out, casting="unsafe")
+    return out
+
+
 def _plane_block_sum(plane: np.ndarray, ky: int, kx: int, rows: np.ndarray, out: np.ndarray) -> np.ndarray:
     """Sums of ``plane`` (y, x) over blocks of ``ky`` x ``kx`` pixels into ``out``, through
     the row buffer ``rows`` (y / ky, x); both dimensions whole multiples of the block."""
@@ -502,7 +514,8 @@ def coarse_air_grid(hu: np.ndarray, air: np.ndarray, factors: tuple[int, int, in
 
     The one full-resolution pass of the analysis, one layer of blocks (``factors[0]``
     slices) at a time: the slices are added and masked once (:func:`_masked_plane_sum`),
-    then summed over the block's rows and columns into buffers made once. A block whose
+    then summed over the block's rows and columns into buffers made once; the layer's
+    mask, just read, is counted the same way (integer sums, exact). A block whose
     air holds a non-finite CT number is left out (count 0); a non-finite value outside
     the air is ignored.
 
@@ -520,12 +533,12 @@ def coarse_air_grid(hu: np.ndarray, air: np.ndarray, factors: tuple[int, int, in
     counts = np.empty(out_shape, dtype=np.float32)
     plane = np.empty((ny, nx), dtype=np.float32)
     rows = np.empty((ny // ky, nx), dtype=np.float32)
-    step = kz * max(1, 16 // kz)
-    for z0 in range(0, nz, step):  # the counts, 16 slices at a time
-        counts[z0 // kz : -(-min(nz, z0 + step) // kz)] = _grid_sum(air[z0 : z0 + step].view(np.uint8), factors, cdt)
+    cplane = np.empty((ny, nx), dtype=cdt)
+    crows = np.empty((ny // ky, nx), dtype=cdt)
     for b, z0 in enumerate(range(0, nz, kz)):
         h, a = hu[z0 : z0 + kz], air[z0 : z0 + kz]
         _plane_block_sum(_masked_plane_sum(h, a, plane), ky, kx, rows, sums[b])
+        _plane_block_sum(_mask_plane_count(a, cplane), ky, kx, crows, counts[b])  # the layer's mask is in the cache
         if not np.isfinite(sums[b]).all():
             part = _exact_masked_sum(h, a, (1, ky, kx), factors)
             bad = ~np.isfinite(part)
