@@ -31,6 +31,7 @@ estimates, as before, and may differ slightly from a search at full resolution.
 """
 from __future__ import annotations
 
+import threading
 import weakref
 from dataclasses import dataclass, field
 
@@ -231,11 +232,34 @@ def _medians_of(values: np.ndarray, masks: np.ndarray, step: int = 4) -> np.ndar
 
 def _strided(a: np.ndarray, f: int, rows: slice = slice(None), cols: slice = slice(None),
              zs: np.ndarray | None = None) -> np.ndarray:
-    """Contiguous copy of ``a[zs, rows][:, ::f, ::f]`` within ``cols``: whole rows are
-    copied first, then the columns picked (faster than one strided gather)."""
-    view = a[:, rows.start : rows.stop : f, cols]
-    part = np.ascontiguousarray(view) if zs is None else view[zs]
-    return np.ascontiguousarray(part[:, :, ::f])
+    """Contiguous copy of ``a[zs, rows][:, ::f, ::f]`` within ``cols``.
+
+    Sorted slices ``zs`` that form one run are taken as a slice (no fancy index). Masks
+    (one byte a pixel) are copied by whole rows first, then the columns picked; wider
+    values in one strided gather (each is faster for its type).
+    """
+    zsel = slice(None) if zs is None else _as_slice(zs)
+    if zsel is None:  # several runs of slices: one slice copy per run
+        cuts = np.flatnonzero(np.diff(zs) != 1) + 1
+        return np.concatenate([_strided(a, f, rows, cols, run) for run in np.split(zs, cuts)])
+    if a.dtype.itemsize == 1:
+        part = np.ascontiguousarray(a[zsel, rows.start : rows.stop : f, cols])
+        return np.ascontiguousarray(part[:, :, ::f])
+    return np.ascontiguousarray(a[zsel, rows.start : rows.stop : f, cols.start : cols.stop : f])
+
+
+def _as_slice(zs: np.ndarray) -> slice | None:
+    """The slice that picks the sorted, distinct indices ``zs`` when they are evenly
+    spaced (None otherwise)."""
+    zs = np.asarray(zs)
+    if zs.size == 0:
+        return slice(0, 0)
+    if zs.size == 1:
+        return slice(int(zs[0]), int(zs[0]) + 1)
+    step = int(zs[1] - zs[0])
+    if step > 0 and np.all(np.diff(zs) == step):
+        return slice(int(zs[0]), int(zs[-1]) + 1, step)
+    return None
 
 
 def smooth_in_plane(stack: np.ndarray, sigma_px: float, truncate: float = 2.5) -> np.ndarray:
@@ -319,11 +343,12 @@ def find_phantom(volume: Volume, regions: Regions, settings: dict | None = None)
     """
     s = {**PHANTOM_DEFAULTS, **(settings or {})}
     key = tuple(sorted(s.items()))
-    hit = _LAST.get("entry")
-    if hit is not None and hit[0]() is volume.hu and hit[1]() is regions.body and hit[2] == key:
-        return hit[3]
-    found = _find_phantom(volume, regions, s)
-    _LAST["entry"] = (weakref.ref(volume.hu), weakref.ref(regions.body), key, found)
+    with _SEARCH_LOCK:  # analyses run on threads: the second waits and reuses the answer
+        hit = _LAST.get("entry")
+        if hit is not None and hit[0]() is volume.hu and hit[1]() is regions.body and hit[2] == key:
+            return hit[3]
+        found = _find_phantom(volume, regions, s)
+        _LAST["entry"] = (weakref.ref(volume.hu), weakref.ref(regions.body), key, found)
     return found
 
 
@@ -332,6 +357,10 @@ def find_phantom(volume: Volume, regions: Regions, settings: dict | None = None)
 _LAST: dict[str, tuple] = {}
 #: The last count of :func:`count_nonfinite`, keyed the same way.
 _LAST_COUNT: dict[str, tuple] = {}
+#: Held while a search or a count is made, so that analyses of one volume running on
+#: threads at once make it once (a re-entrant lock: a search may count).
+_SEARCH_LOCK = threading.RLock()
+_COUNT_LOCK = threading.RLock()
 
 
 def count_nonfinite(volume: Volume, regions: Regions | None = None) -> int:
@@ -347,15 +376,16 @@ def count_nonfinite(volume: Volume, regions: Regions | None = None) -> int:
     IEEE 754 arithmetic: NaN and infinities propagate through a sum (common practice,
     no source).
     """
-    hit = _LAST_COUNT.get("entry")
-    if regions is not None and hit is not None and hit[0]() is volume.hu and hit[1]() is regions.body:
-        return hit[2]
-    hu = volume.hu
-    bad = 0
-    if not np.isfinite(hu.sum(dtype=np.float32)):
-        bad = sum(int(np.count_nonzero(~np.isfinite(hu[z : z + 16]))) for z in range(0, hu.shape[0], 16))
-    if regions is not None:
-        _LAST_COUNT["entry"] = (weakref.ref(hu), weakref.ref(regions.body), bad)
+    with _COUNT_LOCK:  # analyses run on threads: the second waits and reuses the count
+        hit = _LAST_COUNT.get("entry")
+        if regions is not None and hit is not None and hit[0]() is volume.hu and hit[1]() is regions.body:
+            return hit[2]
+        hu = volume.hu
+        bad = 0
+        if not np.isfinite(hu.sum(dtype=np.float32)):
+            bad = sum(int(np.count_nonzero(~np.isfinite(hu[z : z + 16]))) for z in range(0, hu.shape[0], 16))
+        if regions is not None:
+            _LAST_COUNT["entry"] = (weakref.ref(hu), weakref.ref(regions.body), bad)
     return bad
 
 
