@@ -990,15 +990,16 @@ def hysteresis_structures_boxes(
     box = _padded_box_3d(high, 2)
     if box is None:
         return out, snr, []
+    hold = None
     if m.threshold > grow_sigma:  # every core lies in one component of ``low``
-        box, lab, n = components_box(lambda b: m.above(grow_sigma, b), high, box)
+        box, lab, n, hold = _components_box_and_holders(lambda b: m.above(grow_sigma, b), high, box)
     else:
         lab, n = ndimage.label(m.above(grow_sigma, box))
     if n == 0:
         return out, snr, []
     high = high[box]
     if m.threshold > grow_sigma:
-        hold = present_labels(lab[high])
+        hold = present_labels(lab[high]) if hold is None else hold
         if hold.size == 0 or hold[-1] == 0:
             return out, snr, []
         objects = ndimage.find_objects(lab, max_label=int(hold[-1]))  # boxes up to the last label holding a core
@@ -1071,6 +1072,18 @@ def components_box(
     every face that such a component reaches (a component that reaches a face may go on
     beyond it) until none does; after ``max_rounds`` the whole grid.
     """
+    box, lab, n, _ = _components_box_and_holders(low, high, box, max_rounds)
+    return box, lab, n
+
+
+def _components_box_and_holders(
+    low: np.ndarray | Callable[[tuple[slice, ...]], np.ndarray],
+    high: np.ndarray,
+    box: tuple[slice, ...],
+    max_rounds: int = 4,
+) -> tuple[tuple[slice, ...], np.ndarray, int, np.ndarray | None]:
+    """:func:`components_box`, also giving the labels holding a ``high`` cell
+    (``present_labels(lab[high[box]])``; None when the whole grid was labelled last)."""
     low_in = low if callable(low) else (lambda b: low[b])
     for _ in range(max_rounds):
         lab, n = ndimage.label(low_in(box))
@@ -1085,11 +1098,11 @@ def components_box(
             grown.append(slice(max(0, x.start - step) if lo_face else x.start, min(size, x.stop + step) if hi_face else x.stop))
         grown = tuple(grown)
         if grown == box:
-            return box, lab, n
+            return box, lab, n, hold
         box = grown
     full = tuple(slice(0, n) for n in high.shape)
     lab, n = ndimage.label(low_in(full))
-    return full, lab, n
+    return full, lab, n, None
 
 
 def scaled_box(sl: tuple[slice, ...], factors: tuple[int, ...], shape: tuple[int, ...]) -> tuple[slice, ...]:
