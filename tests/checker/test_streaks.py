@@ -476,3 +476,43 @@ def test_screen_gain_flattens_a_two_level_noise():
     plain = streaks.screen_texture(img, allowed, streaks.resolve_settings({"noise_equalise_sigma_px": 0.0}))
     plain_ratio = float(np.sqrt(np.mean(plain[20:108, 84:108] ** 2) / np.mean(plain[20:108, 20:44] ** 2)))
     assert plain_ratio > 3.0, plain_ratio  # without the equalisation the halves differ
+
+
+# ------------------------------------------------------------------------- slabs of thin slices
+def test_slab_screen_is_the_screen_of_the_slab_mean():
+    """A slab's outcome is that of the mean of its slices under the intersection of their masks."""
+    rng = np.random.default_rng(9)
+    hu = np.stack([line_image(40.0, n=96, seed=k) for k in range(4)])
+    hu += rng.normal(0.0, 1.0, hu.shape).astype(np.float32)
+    vol = Volume.from_array(hu, (1.25, 1.0, 1.0))
+    regions = find_regions(vol)
+    cfg = streaks.resolve_settings(None)
+    bins = streaks.spectral_bins((96, 96), tuple(cfg["band_cycles_per_px"]), float(cfg["angle_bin_deg"]))
+    masks = streaks.AllowedMasks(regions, 1, (96, 96), cfg)
+    slabbed = streaks.screen_slab_stack(vol.hu, masks.stack(0, 4), 1, bins, cfg, 2)
+    for z0 in (0, 2):
+        mean = (0.5 * (vol.hu[z0].astype(np.float64) + vol.hu[z0 + 1])).astype(np.float32)
+        alone = streaks.screen_slice(mean, masks(z0) & masks(z0 + 1), 1, bins, cfg)
+        assert slabbed[z0] is slabbed[z0 + 1]
+        assert np.allclose(slabbed[z0], alone, rtol=1e-5, atol=1e-7)
+
+
+def test_flagged_slab_refined_to_the_slices_that_carry_the_flag():
+    """Slabs of two 1.25 mm slices: a line on slice 1 only flags slice 1, not its slab partner."""
+    rng = np.random.default_rng(4)
+    hu = rng.normal(0.0, 10.0, (4, 128, 128)).astype(np.float32)
+    hu[1] = line_image(30.0, seed=7)
+    res = analyse(hu, spacing=(1.25, 1.0, 1.0))
+    rec = res.record
+    assert rec["flagged_slices"] == [1]
+    assert rec["slice_index"][0] <= rec["tolerance"] < rec["slice_index"][1]
+    assert rec["slice_index"][2] == rec["slice_index"][3]  # an unflagged slab: one index
+    m = res.overlays.maps["streak_strength"]
+    assert m[0].max() == 0.0 and m[1].max() > 1.0
+
+
+def test_slab_setting_validated():
+    with pytest.raises(ProfileError):
+        streaks.resolve_settings({"screen_slab_mm": -1.0})
+    with pytest.raises(ProfileError):
+        streaks.resolve_settings({"screen_slab_mm": float("nan")})
