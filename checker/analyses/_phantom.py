@@ -186,13 +186,15 @@ def disc_stats(masks: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray, n
     masks = np.ascontiguousarray(masks, dtype=bool)
     nz, ny, nx = masks.shape
     as_int = masks.view(np.uint8)
-    row_counts = as_int.sum(axis=2, dtype=np.int64)
+    # counts of one row or column fit in 16 bits for grids up to 65535 pixels a side
+    count_type = np.uint16 if max(ny, nx) <= np.iinfo(np.uint16).max else np.int64
+    row_counts = as_int.sum(axis=2, dtype=count_type).astype(np.int64)
     n = row_counts.sum(axis=1)
     safe = np.maximum(n, 1)
     cy = (row_counts @ np.arange(ny)) / safe
-    cx = (as_int.sum(axis=1, dtype=np.int64) @ np.arange(nx)) / safe
+    cx = (as_int.sum(axis=1, dtype=count_type).astype(np.int64) @ np.arange(nx)) / safe
     first = np.argmax(masks, axis=2)
-    last = nx - 1 - np.argmax(np.ascontiguousarray(masks[:, :, ::-1]), axis=2)
+    last = nx - 1 - np.argmax(masks[:, :, ::-1], axis=2)
     dx2 = np.maximum((first - cx[:, None]) ** 2, (last - cx[:, None]) ** 2)
     d2 = np.where(row_counts > 0, (np.arange(ny)[None, :] - cy[:, None]) ** 2 + dx2, 0.0)
     r_max = np.sqrt(d2.max(axis=1)) + 0.5
