@@ -109,6 +109,9 @@ def main() -> None:
           f"(target <= 10 ms)")
     wall, cpu, res = timed_runs(lambda: streaks.analyse(vol, regions), args.repeats)
     n = args.slices
+    slab = streaks.slab_size(vol.spacing_mm[0], streaks.resolve_settings(None))
+    print(f"slices of {vol.spacing_mm[0]:g} mm screened in slabs of {slab} (screen_slab_mm "
+          f"{streaks.DEFAULTS['screen_slab_mm']:g})")
     print(f"whole analysis, 512 x 512 x {n}, {streaks.SCREEN_THREADS} thread(s), median of {args.repeats}: "
           f"wall {wall:.2f} s ({wall / n * 1e3:.2f} ms/slice), CPU {cpu:.2f} s ({cpu / n * 1e3:.2f} ms/slice), "
           f"index {res.record['index']:.2f}, flagged {res.record['flagged']}")

@@ -92,9 +92,12 @@ the block mean and the bilinear interpolation back, is that of the full-grid fil
 and the fill value and the robust noise scale from regular sub-grids of about
 ``FILL_SAMPLES`` and ``ROBUST_SAMPLES`` pixels. The high-pass residual, the strong
 edges and the spectrum stay on the screen grid (the band is in cycles per pixel of
-that grid). Slices go through in stacks of ``SCREEN_STACK``: the coarse-grid work, the
-FFT and the cell sums are done for the stack at once, the full-grid filters slice by
-slice; each slice's outcome depends on that slice only. These are estimates of the
+that grid). Slabs go through in stacks of ``SCREEN_STACK`` (``SCREEN_STACK`` times the
+slab size slices per task, so thin slices give each thread larger tasks): each slice is
+binned once (the one full-resolution pass over the volume), the coarse-grid work, the
+FFT and the cell sums are done for the stack at once, the full-grid filters slab by
+slab; each slab's outcome depends on that slab only. Slabs of two slices (1.25 mm)
+halve the screen's work after the binning. These are estimates of the
 same quantities, so the indices differ slightly from a full-grid computation (a
 documented method choice); the record's keys, types and meaning are unchanged.
 Dense-pair lines and the localisation of flagged slices use the full-grid texture
