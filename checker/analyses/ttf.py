@@ -581,11 +581,16 @@ def _pool_slices(crop: np.ndarray, centres: Sequence[tuple[float, float]], spaci
     """
     c = np.asarray(centres, dtype=float).reshape(-1, 2)
     tol_px = POOL_TOLERANCE_BINS * bin_fraction
-    apart = np.hypot(c[:, None, 0] - c[None, :, 0], c[:, None, 1] - c[None, :, 1])  # (z, z) px
     starts = [0]
-    for k in range(1, c.shape[0]):
-        if apart[starts[-1] : k, k].max() > tol_px:  # the group's diameter would exceed the tolerance
+    ys, xs = c[:, 0].tolist(), c[:, 1].tolist()
+    lo_y = hi_y = ys[0]
+    lo_x = hi_x = xs[0]
+    for k in range(1, len(ys)):
+        lo_y, hi_y, lo_x, hi_x = min(lo_y, ys[k]), max(hi_y, ys[k]), min(lo_x, xs[k]), max(hi_x, xs[k])
+        if math.hypot(hi_y - lo_y, hi_x - lo_x) > tol_px:  # the group's box diagonal (>= its diameter)
             starts.append(k)
+            lo_y = hi_y = ys[k]
+            lo_x = hi_x = xs[k]
     starts_a = np.asarray(starts, dtype=np.int64)
     n = np.diff(np.append(starts_a, c.shape[0]))
     sums = np.stack([crop[s0 : s0 + k].sum(axis=0, dtype=np.float64) for s0, k in zip(starts_a, n)])
@@ -663,13 +668,21 @@ def _refine_centres(crop: np.ndarray, centre: tuple[float, float], r_px: float, 
     per = _edges.refine_circle_centres(images, c0, r_px, inside_hu, outside_hu, reach_px=reach)
     z = np.arange(nz, dtype=float)
     if len(per) >= 3:
-        zc = np.array([r.mean() for r in runs])
-        w = np.sqrt([r.size for r in runs])
-        fit_y = np.polyval(np.polyfit(zc, per[:, 0], 1, w=w), z)
-        fit_x = np.polyval(np.polyfit(zc, per[:, 1], 1, w=w), z)
-        return list(zip(fit_y.tolist(), fit_x.tolist())), inside_hu, outside_hu
+        fit = _line_along_z(np.array([r.mean() for r in runs]), per, np.array([r.size for r in runs], dtype=float), z)
+        return list(zip(fit[:, 0].tolist(), fit[:, 1].tolist())), inside_hu, outside_hu
     per_slice = np.concatenate([np.repeat(p[None], r.size, axis=0) for p, r in zip(per, runs)])
     return [tuple(p) for p in per_slice], inside_hu, outside_hu
+
+
+def _line_along_z(zc: np.ndarray, yx: np.ndarray, weights: np.ndarray, z: np.ndarray) -> np.ndarray:
+    """Weighted least-squares straight line through the points ``yx`` (n, 2) at ``zc``
+    (weights: the number of slices behind each point), both coordinates at once,
+    evaluated at ``z``: (len(z), 2)."""
+    zm = float(np.dot(weights, zc) / weights.sum())
+    dz = zc - zm
+    mean = weights @ yx / weights.sum()
+    slope = (weights * dz) @ (yx - mean) / float(np.dot(weights, dz * dz))
+    return mean[None, :] + (z - zm)[:, None] * slope[None, :]
 
 
 def _contrast_and_noise(crop: np.ndarray, pool: PooledSlices, free: np.ndarray, radius_mm: float, half_mm: float,
@@ -1224,19 +1237,19 @@ def analyse(volume: Volume, regions: Regions, settings: dict[str, Any] | None = 
 
 
 def _body_footprint(volume: Volume, regions: Regions, inserts: Sequence[Insert], s: dict[str, Any]) -> np.ndarray:
-    """(y, x) pixels inside the body on some slice, computed only over the box of the
-    rods' crops (the only place :func:`measure_circular_edge` looks); False elsewhere."""
+    """(y, x) pixels inside the body on some slice of the inserts' slices, computed only
+    over each rod's crop (the only place :func:`measure_circular_edge` looks); False
+    elsewhere. A rod's ESF reads only its own slices, so slices outside every insert's
+    range are not looked at."""
     px = 0.5 * (volume.spacing_mm[1] + volume.spacing_mm[2])
     out = np.zeros(volume.shape[1:], dtype=bool)
-    boxes = []
+    if not inserts:
+        return out
+    z0, z1 = min(ins.z0 for ins in inserts), max(ins.z1 for ins in inserts)
     for ins in inserts:
         half = ins.radius_mm / px + min(float(s["esf_half_range_mm"]), 0.9 * ins.radius_mm) / px + 3
-        boxes.append(_box_about(ins.centre_yx_vox, half, volume.shape[1:])[1])
-    if not boxes:
-        return out
-    y0, y1 = min(b[0].start for b in boxes), max(b[0].stop for b in boxes)
-    x0, x1 = min(b[1].start for b in boxes), max(b[1].stop for b in boxes)
-    out[y0:y1, x0:x1] = regions.body[:, y0:y1, x0:x1].any(axis=0)
+        box = _box_about(ins.centre_yx_vox, half, volume.shape[1:])[1]
+        out[box] |= regions.body[z0 : z1 + 1, box[0], box[1]].any(axis=0)
     return out
 
 
