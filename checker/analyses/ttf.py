@@ -742,8 +742,8 @@ def _edge_result(kind: str, volume: Volume, esf: BinnedEsf, contrast: float, ins
         "contrast_to_noise": _round(cnr, 2),
         "f50_per_mm": _round(curve.f50_per_mm, 4),
         "f10_per_mm": _round(curve.f10_per_mm, 4),
-        "frequency_per_mm": [round(float(f), 4) for f in curve.frequency_per_mm],
-        "ttf": [_round(t, 4) for t in curve.ttf],
+        "frequency_per_mm": _rounded_list(curve.frequency_per_mm, 4),
+        "ttf": _rounded_list(curve.ttf, 4),
         "center_mm": [round(float(v), 3) for v in volume.index_to_patient(centre_zyx)],
         "slices": [int(slices[0]), int(slices[1])],
         "n_slices": int(slices[1] - slices[0] + 1),
@@ -788,6 +788,16 @@ def _edge_label(kind: str, contrast: float, f50: float) -> str:
     c = "?" if not np.isfinite(contrast) else f"{contrast:+.0f} HU"
     f = "f50 ?" if not np.isfinite(f50) else f"f50 {f50:.3f}/mm"
     return f"{kind} {c}, {f}"
+
+
+def _rounded_list(values: np.ndarray, nd: int) -> list[float | None]:
+    """``values`` rounded to ``nd`` decimals (one vectorised rounding), None where not
+    finite, as a list for the JSON record."""
+    v = np.asarray(values, dtype=float)
+    out = np.round(v, nd).tolist()
+    if not np.isfinite(v).all():
+        out = [x if math.isfinite(x) else None for x in out]
+    return out
 
 
 def _round(v: float, nd: int) -> float | None:
