@@ -73,6 +73,28 @@ def _torso(nz: int) -> tuple[Volume, float]:
     return load_series(discover([folder]).series[0]), limit
 
 
+def _print_parts(vol: Volume, regions, repeats: int) -> None:
+    """CPU time of the phantom search, the insert search and the rod measurements on
+    their own (median and best of ``repeats``, ms): the best is the least disturbed by
+    other work on a shared machine."""
+    s = ttf.resolve_settings({})
+    parts = {}
+    _, _, found = _timed(lambda: ttf._phantom_of(vol, regions), 1)
+    parts["phantom search"] = lambda: ttf._phantom_of(vol, regions)
+    parts["insert search"] = lambda: ttf.find_rod_inserts(vol, regions, s, phantom=found)
+    inserts = ttf.find_rod_inserts(vol, regions, s, phantom=found)
+    allowed = ttf._body_footprint(vol, regions, inserts, s)
+    parts[f"measuring {len(inserts)} rods"] = lambda: [
+        ttf.measure_circular_edge(vol, i, s, allowed=allowed, others=inserts) for i in inserts]
+    for name, fn in parts.items():
+        cpus = []
+        for _ in range(max(1, repeats)):
+            c0 = time.process_time()
+            fn()
+            cpus.append(time.process_time() - c0)
+        print(f"    {name}: CPU median {1e3 * float(np.median(cpus)):.1f} ms, best {1e3 * min(cpus):.1f} ms")
+
+
 def main() -> None:
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     parser.add_argument("--slices", type=int, default=120)
@@ -94,6 +116,8 @@ def main() -> None:
     w, c, inserts = _timed(lambda: ttf.find_rod_inserts(vol, regions), args.repeats)
     print(f"  insert finding alone: wall {w:.3f} s = {w / limit:.3f} x, CPU {c:.3f} s = {c / limit:.3f} x read"
           f" ({len(inserts)} rods)")
+    if inserts:
+        _print_parts(vol, regions, args.repeats)
     w, c, res = _timed(lambda: ttf.analyse(vol, regions), args.repeats)
     print(f"  ttf analysis (median of {args.repeats}): wall {w:.3f} s = {w / limit:.3f} x, "
           f"CPU {c:.3f} s = {c / limit:.3f} x read (goal <= 0.1)")
