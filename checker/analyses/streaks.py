@@ -1650,21 +1650,20 @@ def screen_slab_stack(images: np.ndarray, allowed: np.ndarray, factor: int, bins
                       cfg: dict[str, Any], slab: int) -> list[np.ndarray | str]:
     """Outcome of every slice of a ``(k, ny, nx)`` stack screened in slabs of ``slab`` slices.
 
-    Each slice is binned and checked as in :func:`screen_stack`; a slab's image is the
-    mean of its usable binned slices and its mask the intersection of their masks
-    (every slice's table and body outline stay left out). The slab's profile is the
-    outcome of each of its usable slices; unusable slices keep their reason.
+    Each slice is checked as in :func:`screen_stack` (a finite, non-constant sub-grid of
+    every :data:`CHECK_STEP_PX`-th pixel proves it usable; otherwise its block means
+    and pixels decide); a slab's image is the block mean over its usable slices, binned
+    in one pass (:func:`bin_slab`), and its mask the intersection of their masks (every
+    slice's table and body outline stay left out). The slab's profile is the outcome of
+    each of its usable slices; unusable slices keep their reason.
     """
     k = images.shape[0]
-    binned = bin_slice(images, factor) if factor == 1 else np.stack([bin_slice(images[i], factor) for i in range(k)])
-    high, low = binned.reshape(k, -1).max(axis=1), binned.reshape(k, -1).min(axis=1)
-    finite = np.isfinite(high) & np.isfinite(low)
     outcomes: list[np.ndarray | str] = ["without usable pixels"] * k
     members: list[list[int]] = []
     for z0 in range(0, k, slab):
         keep = []
         for i in range(z0, min(z0 + slab, k)):
-            kind = None if finite[i] and high[i] != low[i] else _unusable(binned[i], images[i])
+            kind = unusable_slice(images[i], factor)
             if kind:
                 outcomes[i] = kind
             else:
@@ -1673,10 +1672,10 @@ def screen_slab_stack(images: np.ndarray, allowed: np.ndarray, factor: int, bins
             members.append(keep)
     if not members:
         return outcomes
-    means = np.stack([slab_mean(binned, m) for m in members])
+    means = np.stack([bin_slab(images, m, factor) for m in members])
     masks = np.stack([np.logical_and.reduce(allowed[m], axis=0) for m in members])
-    slab_finite = np.array([bool(np.all(finite[m])) for m in members])
-    textures, usable = screen_textures(means, masks, cfg, slab_finite)
+    high, low = means.reshape(len(members), -1).max(axis=1), means.reshape(len(members), -1).min(axis=1)
+    textures, usable = screen_textures(means, masks, cfg, np.isfinite(high) & np.isfinite(low))
     good = [j for j in range(len(members)) if usable[j]]
     if good:
         stack = textures if len(good) == len(members) else textures[good]
@@ -1689,10 +1688,53 @@ def screen_slab_stack(images: np.ndarray, allowed: np.ndarray, factor: int, bins
     return outcomes
 
 
+#: pixel step of the sub-grid that proves a slice finite somewhere and non-constant
+CHECK_STEP_PX = 16
+
+
+def unusable_slice(image: np.ndarray, factor: int) -> str | None:
+    """"non-finite" or "constant" if the full-resolution slice ``image`` is so, else None.
+
+    A sub-grid of every :data:`CHECK_STEP_PX`-th pixel that is finite and not constant
+    proves the slice usable (a sixteenth of its rows is read); otherwise
+    :func:`_unusable` decides from the block means and the pixels.
+    """
+    sub = image[::CHECK_STEP_PX, ::CHECK_STEP_PX]
+    high, low = float(sub.max()), float(sub.min())
+    if math.isfinite(high) and math.isfinite(low) and high != low:
+        return None
+    return _unusable(bin_slice(image, factor), image)
+
+
+def bin_slab(images: np.ndarray, members: list[int], factor: int) -> np.ndarray:
+    """Mean over ``factor`` x ``factor`` blocks and over the slices ``members`` of ``images``.
+
+    One pass: the rows of every member slice are summed into one array of row sums,
+    then its columns; float32 sums (the same mean as :func:`bin_slice` of each slice
+    followed by :func:`slab_mean`, up to rounding).
+    """
+    if factor == 1:
+        return slab_mean(images, members)
+    ny, nx = (n // factor * factor for n in images.shape[-2:])
+    rows = None
+    for m in members:
+        for dy in range(factor):
+            part = images[m, dy:ny:factor, :nx]
+            if rows is None:
+                rows = part.astype(np.float32, copy=True)
+            else:
+                rows += part
+    out = np.add(rows[:, 0::factor], rows[:, 1::factor])
+    for dx in range(2, factor):
+        out += rows[:, dx::factor]
+    out *= np.float32(1.0 / (factor * factor * len(members)))
+    return out
+
+
 def slab_mean(binned: np.ndarray, members: list[int]) -> np.ndarray:
     """Mean (float32) of the binned slices ``members`` of ``binned``."""
     if len(members) == 1:
-        return binned[members[0]]
+        return np.asarray(binned[members[0]], dtype=np.float32)
     out = np.add(binned[members[0]], binned[members[1]], dtype=np.float32)
     for i in members[2:]:
         out += binned[i]
