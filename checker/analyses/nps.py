@@ -863,7 +863,19 @@ def measure_nps(
     ----------
     IEC 62220-1-1; ICRU Report 87 (2012); AAPM TG-233, Med Phys 46(11), 2019.
     """
-    stack = roi_images(hu, rois)
+    return measure_roi_images(roi_images(hu, rois), spacing_zyx_mm, rois, s)
+
+
+def measure_roi_images(
+    stack: np.ndarray, spacing_zyx_mm: tuple[float, float, float], rois: Sequence[Roi], s: dict[str, Any]
+) -> dict[str, Any] | str:
+    """:func:`measure_nps` of the ROI images ``stack`` (float32, :func:`roi_images`
+    order), which it changes in place; or the reason they cannot be measured.
+
+    References
+    ----------
+    IEC 62220-1-1; ICRU Report 87 (2012); AAPM TG-233, Med Phys 46(11), 2019.
+    """
     if stack.shape[0] < s["min_roi_count"]:
         return f"{stack.shape[0]} ROI images; at least {s['min_roi_count']} are needed"
     means = stack.mean(axis=(1, 2), dtype=np.float64)
@@ -1075,7 +1087,8 @@ def nps_from_pair(
     """NPS by the subtraction method from two repeated reconstructions.
 
     The noise image is (I1 - I2) / sqrt(2), which removes the deterministic content and
-    keeps the variance of one image. ROIs are ``rois`` (the user form), else found on
+    keeps the variance of one image; it is formed only inside the ROIs (single
+    precision), never as a whole volume. ROIs are ``rois`` (the user form), else found on
     ``volume_a`` (phantom, then soft-tissue patches).
 
     Parameters
@@ -1111,8 +1124,11 @@ def nps_from_pair(
     _, found, _ = _choose_rois(volume_a, regions, s)
     if not found.rois:
         return AnalysisResult.not_applicable(NAME, found.reason)
-    diff = (volume_a.hu.astype(np.float64) - volume_b.hu) / np.sqrt(2.0)
-    record = measure_nps(diff, volume_a.spacing_mm, found.rois, s)
+    # the noise image only inside the ROIs: no full-size difference volume
+    diff = roi_images(volume_a.hu, found.rois)
+    diff -= roi_images(volume_b.hu, found.rois)
+    diff *= np.float32(1.0 / np.sqrt(2.0))
+    record = measure_roi_images(diff, volume_a.spacing_mm, found.rois, s)
     if isinstance(record, str):
         return AnalysisResult.not_applicable(NAME, record)
     record["method"] = "pair"
