@@ -190,11 +190,15 @@ def find_rod_inserts(volume: Volume, regions: Regions, settings: dict[str, Any] 
 
     ``find_phantom`` (on an in-plane decimated copy when the slices are larger than 256
     pixels, to keep it cheap) gives the phantom and its slices with inserts. On the mean
-    of each contiguous run of such slices, smoothed by 1 mm, connected groups departing
-    from the phantom median by more than ``min_contrast_hu`` (each sign on its own)
-    whose shape is a disc of ``min_insert_diameter_mm`` to ``max_insert_diameter_mm``
-    are inserts; each insert's slices are those where its disc keeps at least 3/4 of
-    its contrast to the surrounding ring.
+    of each contiguous run of such slices (at most about 8 of them), smoothed by 1 mm,
+    connected groups departing from the phantom median by more than
+    ``min_contrast_hu`` (each sign on its own) whose shape is a disc of
+    ``min_insert_diameter_mm`` to ``max_insert_diameter_mm`` are inserts; each insert's
+    slices are those where its disc keeps at least 3/4 of its contrast to the
+    surrounding ring. The groups are screened on every second row and column of the
+    phantom's box (when the smallest insert spans at least 8 pixels); each group found
+    is then thresholded, labelled and tested as a disc again on a full-resolution crop
+    about it, so the screen decides only where to look.
 
     Parameters
     ----------
