@@ -324,3 +324,26 @@ def test_pooled_slices_bin_as_slice_by_slice_about_the_group_centre():
     a, b = pooled.binned(), single.binned()
     assert np.array_equal(a.counts, b.counts)
     np.testing.assert_allclose(a.esf_hu, b.esf_hu, rtol=1e-9, atol=1e-6)
+
+
+def test_strided_insert_screen_finds_what_full_resolution_finds(monkeypatch):
+    """The insert screen on every second row and column only says where to look: the
+    inserts (centre, radius, slices) equal those of a screen at full resolution."""
+    n, nz = 160, 6
+    yy, xx = np.indices((n, n), dtype=float)
+    img = np.where(np.hypot(yy - 80, xx - 80) <= 70, 0.0, -1000.0)
+    for k, hu in enumerate((-1000.0, 120.0, 340.0, 900.0)):
+        a = 2 * math.pi * k / 4 + 0.4
+        img[np.hypot(yy - 80 - 38 * math.sin(a), xx - 80 - 38 * math.cos(a)) <= 12.0] = hu
+    st = np.repeat(img[None], nz, axis=0) + np.random.default_rng(2).normal(0, 5, (nz, n, n))
+    vol = Volume.from_array(st.astype(np.float32), (1.0, PX, PX))
+    regions = find_regions(vol)
+    assert ttf._screen_factor(PX, ttf.DEFAULTS["min_insert_diameter_mm"]) == 2
+    strided = ttf.find_rod_inserts(vol, regions)
+    monkeypatch.setattr(ttf, "_screen_factor", lambda px, d: 1)
+    full = ttf.find_rod_inserts(vol, regions)
+    assert len(strided) == len(full) == 4
+    for a, b in zip(strided, full):
+        assert (a.z0, a.z1) == (b.z0, b.z1)
+        assert a.centre_yx_vox == pytest.approx(b.centre_yx_vox, abs=1e-9)
+        assert a.radius_mm == pytest.approx(b.radius_mm, abs=1e-9)
