@@ -241,13 +241,19 @@ def _strided(a: np.ndarray, f: int, rows: slice = slice(None), cols: slice = sli
     values in one strided gather (each is faster for its type).
     """
     zsel = slice(None) if zs is None else _as_slice(zs)
-    if zsel is None:  # several runs of slices: one slice copy per run
+    if zsel is None:
         cuts = np.flatnonzero(np.diff(zs) != 1) + 1
-        return np.concatenate([_strided(a, f, rows, cols, run) for run in np.split(zs, cuts)])
+        if cuts.size < _MAX_RUNS:  # a few runs of slices: one slice copy per run
+            return np.concatenate([_strided(a, f, rows, cols, run) for run in np.split(zs, cuts)])
+        zsel = zs
     if a.dtype.itemsize == 1:
         part = np.ascontiguousarray(a[zsel, rows.start : rows.stop : f, cols])
         return np.ascontiguousarray(part[:, :, ::f])
     return np.ascontiguousarray(a[zsel, rows.start : rows.stop : f, cols.start : cols.stop : f])
+
+
+#: Most runs of slices :func:`_strided` copies one by one (more: one fancy index).
+_MAX_RUNS = 8
 
 
 def _as_slice(zs: np.ndarray) -> slice | None:
