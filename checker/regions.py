@@ -646,21 +646,40 @@ def _face_mask(pairs: list[tuple[int, int]], which: int) -> int:
     return sum(1 << p[which] for p in pairs)
 
 
-def _neighbours(idx: np.ndarray, shape: tuple[int, ...], axis: int, step: int) -> tuple[np.ndarray, np.ndarray]:
-    """Flat indices of the neighbours of the flat block indices ``idx`` one step along
-    ``axis``, and which of ``idx`` have one (inside the grid)."""
+def _neighbours(idx: np.ndarray, coords: tuple[np.ndarray, ...], shape: tuple[int, ...], axis: int,
+                step: int) -> tuple[np.ndarray, np.ndarray]:
+    """Flat indices of the neighbours of the flat block indices ``idx`` (grid coordinates
+    ``coords``) one step along ``axis``, and which of ``idx`` have one (inside the grid)."""
     strides = (shape[1] * shape[2], shape[2], 1)
-    coord = (idx // strides[axis]) % shape[axis]
-    ok = coord + step >= 0 if step < 0 else coord + step < shape[axis]
+    coord = coords[axis]
+    ok = coord >= 1 if step < 0 else coord < shape[axis] - 1
     return idx[ok] + step * strides[axis], ok
 
 
-def _touch(pi: np.ndarray, pj: np.ndarray, pairs: list[tuple[int, int]]) -> np.ndarray:
-    """Whether some facing pixel pair is set in both patterns."""
-    hit = np.zeros(pi.shape, dtype=bool)
-    for a, b in pairs:
-        hit |= ((pi >> np.uint16(a)) & (pj >> np.uint16(b)) & np.uint16(1)).astype(bool)
-    return hit
+#: Per face (axis, step): a block's facing pixels moved onto its neighbour's facing pixels
+#: (right shift) and the mask of the neighbour's facing pixels.
+_FACE_SHIFT = {(2, 1): (3, 0x1111), (2, -1): (-3, 0x1111), (1, 1): (12, 0x000F), (1, -1): (-12, 0x000F),
+               (0, 1): (0, 0xFFFF), (0, -1): (0, 0xFFFF)}
+
+
+def _touch(pi: np.ndarray, pj: np.ndarray, face: tuple[int, int]) -> np.ndarray:
+    """Whether some facing pixel pair (see ``_FACE_PAIRS``) is set in both patterns."""
+    shift, mask = face
+    if shift >= 0:
+        return ((pi >> np.uint16(shift)) & pj & np.uint16(mask)) != 0
+    return (pi & (pj >> np.uint16(-shift)) & np.uint16(mask)) != 0
+
+
+def _label_in_box(mask: np.ndarray, structure: np.ndarray | None) -> tuple[np.ndarray, int]:
+    """``label_compact(mask, structure)``, labelling only the bounding box of ``mask``
+    (the same labels: the scan order inside the box is the volume's)."""
+    box = bounding_box(mask)
+    if box is None:
+        return np.zeros(mask.shape, dtype=np.uint16), 0
+    part, n = label_compact(mask[box], structure=structure)
+    lab = np.zeros(mask.shape, dtype=part.dtype)
+    lab[box] = part
+    return lab, n
 
 
 @dataclass
@@ -714,24 +733,25 @@ def pattern_components(pat: np.ndarray, in_plane: bool = False) -> _PatternCompo
     nonempty = flat != 0
     partial = np.flatnonzero(nonempty & (flat != FULL))
     axes = [(2, 1), (2, -1), (1, 1), (1, -1)] + ([] if in_plane else [(0, 1), (0, -1)])
-    marked = [partial[t.nsub[flat[partial]] > 1]]
+    pp = flat[partial]
+    marked = [partial[t.nsub[pp] > 1]]
+    coords = np.unravel_index(partial, shape)
     for axis, step in axes:
-        pairs = _FACE_PAIRS[(axis, step)]
-        j, ok = _neighbours(partial, shape, axis, step)
+        j, ok = _neighbours(partial, coords, shape, axis, step)
         pj = flat[j]
-        apart = (pj != 0) & ~_touch(flat[partial[ok]], pj, pairs)
+        apart = (pj != 0) & ~_touch(pp[ok], pj, _FACE_SHIFT[(axis, step)])
         marked += [partial[ok][apart], j[apart]]
     suspects = np.unique(np.concatenate(marked))
     plain = nonempty.reshape(shape).copy()
     plain.reshape(-1)[suspects] = False
-    lab, n_lab = label_compact(plain, structure=_INPLANE if in_plane else None)
+    lab, n_lab = _label_in_box(plain, _INPLANE if in_plane else None)
     pieces = t.nsub[flat[suspects]].astype(np.int64)
     first_node = n_lab + 1 + np.cumsum(pieces) - pieces
     n_nodes = n_lab + 1 + int(pieces.sum())
     comps = _PatternComponents(lab, int(n_lab), suspects, first_node, pieces, np.zeros(0, dtype=np.int64), 0)
     us, vs = [], []
     for axis, step in axes:
-        j, ok = _neighbours(suspects, shape, axis, step)
+        j, ok = _neighbours(suspects, np.unravel_index(suspects, shape), shape, axis, step)
         s = suspects[ok]
         for a, b in _FACE_PAIRS[(axis, step)]:
             both = ((flat[s] >> np.uint16(a)) & (flat[j] >> np.uint16(b)) & np.uint16(1)).astype(bool)

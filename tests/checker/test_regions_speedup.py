@@ -369,3 +369,18 @@ def test_coarse_grid_equals_full_resolution_on_benchmark_torso() -> None:
 def test_coarse_grid_equals_full_resolution_on_random_phantoms(seed: int) -> None:
     """256 x 256 random phantoms with specks, holes and a table close to the body."""
     _assert_coarse_equals_full(random_phantom(seed, nz=4, n=256))
+
+
+def test_face_touch_equals_pixel_pairs() -> None:
+    """The shifted-mask face test against the pixel pairs it stands for, on all faces."""
+    from reconaudit.checker.regions import _FACE_PAIRS, _FACE_SHIFT, _touch
+
+    rng = np.random.default_rng(13)
+    pi = (rng.integers(0, 65536, 5000) & rng.integers(0, 65536, 5000)).astype(np.uint16)
+    pj = (rng.integers(0, 65536, 5000) & rng.integers(0, 65536, 5000)).astype(np.uint16)
+    for face, pairs in _FACE_PAIRS.items():
+        expected = np.zeros(pi.size, dtype=bool)
+        for a, b in pairs:
+            expected |= ((pi >> a) & (pj >> b) & 1).astype(bool)
+        got = _touch(pi, pj, _FACE_SHIFT[face])
+        assert np.array_equal(got, expected) and 0 < got.sum() < got.size
