@@ -8,7 +8,8 @@ there; otherwise the series is written as CT DICOM (``reconaudit.checker.dicom_w
 into a temporary folder and timed while pydicom reads every file and builds the HU array.
 
 "cold" runs clear the shared phantom search and finite check first, so each analysis
-pays for them; the last line shows uniformity after the noise analysis, as in a check.
+pays for them; uniformity is also shown after the noise analysis, as in a check, and the
+subtraction (pair) NPS of two invented repeated scans of the phantom.
 
 Usage: ``python benchmarks/bench_nps.py [--slices 400] [--repeats 5]``
 """
@@ -80,6 +81,9 @@ def main() -> None:
         ("uniformity, cold", uniformity.analyse, None, True),
         ("uniformity after nps (shared search)", uniformity.analyse, None, False),
     )
+    other = make_phantom(args.slices, seed=8)  # a repeated scan of the same phantom
+    stages += (("nps pair (subtraction), shared search",
+                lambda v, r, _s: nps.nps_from_pair(v, other, r), None, False),)
     for label, fn, settings, cold in stages:
         wall, cpu, res = _timed(fn, vol, regions, settings, repeats=args.repeats, cold=cold)
         record = getattr(res, "record", {})

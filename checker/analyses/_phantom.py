@@ -28,6 +28,10 @@ for a phantom of tens of working pixels), and the slice median and the noise sca
 hundreds of pixels: the median of water to well under 1 HU at the noise of a CT image).
 This is a method choice for speed: the records of the analyses built on it are
 estimates, as before, and may differ slightly from a search at full resolution.
+
+One search and one count of non-finite voxels per volume: the last answers are kept,
+keyed by weak references to the arrays, and a lock makes analyses that run on threads
+at the same time wait for the first one's answer instead of repeating the work.
 """
 from __future__ import annotations
 

@@ -1117,10 +1117,10 @@ def nps_from_pair(
         return AnalysisResult.not_applicable(
             NAME, f"the two reconstructions differ: shapes {volume_a.shape} and {volume_b.shape}, "
                   f"spacing {volume_a.spacing_mm} and {volume_b.spacing_mm} mm")
-    reason = _finite_or_reason(volume_a) or _finite_or_reason(volume_b)
+    regions = regions if regions is not None else find_regions(volume_a)
+    reason = _finite_or_reason(volume_a, regions) or _finite_or_reason(volume_b)  # a's count is shared
     if reason:
         return AnalysisResult.not_applicable(NAME, reason)
-    regions = regions if regions is not None else find_regions(volume_a)
     _, found, _ = _choose_rois(volume_a, regions, s)
     if not found.rois:
         return AnalysisResult.not_applicable(NAME, found.reason)
