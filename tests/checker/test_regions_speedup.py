@@ -384,3 +384,25 @@ def test_face_touch_equals_pixel_pairs() -> None:
             expected |= ((pi >> a) & (pj >> b) & 1).astype(bool)
         got = _touch(pi, pj, _FACE_SHIFT[face])
         assert np.array_equal(got, expected) and 0 < got.sum() < got.size
+
+
+def test_graph_components_equal_scipy_connected_components():
+    """Against scipy.sparse.csgraph.connected_components (a general-purpose reference
+    library): the same number of components and the same numbering, on random sparse
+    graphs, paths (long chains) and graphs without edges."""
+    from scipy.sparse import coo_matrix
+    from scipy.sparse.csgraph import connected_components
+
+    from reconaudit.checker.regions import graph_components
+
+    rng = np.random.default_rng(11)
+    cases = []
+    for n, m in [(1, 0), (5, 0), (50, 20), (500, 300), (2000, 1900), (3000, 6000)]:
+        cases.append((n, rng.integers(0, n, m), rng.integers(0, n, m)))
+    chain = rng.permutation(1000)
+    cases.append((1000, chain[:-1], chain[1:]))  # one long path in random node order
+    for n, u, v in cases:
+        want_n, want = connected_components(coo_matrix((np.ones(u.size), (u, v)), shape=(n, n)), directed=False)
+        got_n, got = graph_components(n, u, v)
+        assert got_n == want_n
+        assert np.array_equal(got, want)
