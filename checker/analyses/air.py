@@ -55,7 +55,9 @@ Method
    the edge of the reconstruction circle or padding) and ``isolated`` (touches nothing
    and begins and ends inside the scanned range: the suspicious kind). A structure may
    stop up to half a block short of the air's edge on the coarse grid, so the touching
-   distances are widened by half a block. Only the kinds in ``flag_kinds`` flag.
+   distances are widened by half a block. Only the kinds in ``flag_kinds`` flag, and only
+   when their contrast-to-noise (mean above the air over the air's pixel noise) is at
+   least ``min_flag_contrast_to_noise``.
 
 What may change with the data path: the values in the record are estimates, and the
 coarse grid and the subsampled robust statistics are documented method choices; the
@@ -113,6 +115,7 @@ DEFAULTS: dict[str, Any] = {
     "min_volume_mm3": 8.0,
     "min_contrast_hu": 20.0,
     "flag_kinds": ["isolated"],
+    "min_flag_contrast_to_noise": 5.0,
     "air_reference_hu": -1000.0,
     "air_mean_tolerance_hu": 30.0,
     "min_air_noise_hu": 1.0,
@@ -132,6 +135,7 @@ SOURCES: dict[str, str] = {
     "min_volume_mm3": "site choice",
     "min_contrast_hu": "site choice: ghosts worth a look are tens of HU above air; fainter one-block blotches are the texture of denoised reconstructions (common practice, no source)",
     "flag_kinds": "site choice: only structures that touch nothing are suspicious",
+    "min_flag_contrast_to_noise": "site choice: a structure less than five times the air's pixel noise above the air is listed, not flagged (in streaked air such blobs are pieces of streaks)",
     "air_reference_hu": "Hounsfield scale: air -1000 HU by definition",
     "air_mean_tolerance_hu": "from memory; site choice",
     "min_air_noise_hu": "site choice",
@@ -1373,6 +1377,7 @@ def measure_structures(
         if mean_hu - air_mean < float(s["min_contrast_hu"]):  # a blur tail, not a structure
             continue
         kind = classify(sl, comp, ctx)
+        cnr = (mean_hu - air_mean) / max(noise, 1e-6)
         record = {
             "id": 0,
             "label": i,
@@ -1382,10 +1387,10 @@ def measure_structures(
             "volume_mm3": round(count * vox, 2),
             "mean_hu": round(mean_hu, 2),
             "max_hu": round(float(np.max(volume.hu[sl], where=comp, initial=-np.inf)), 2),
-            "contrast_to_noise": round((mean_hu - air_mean) / max(noise, 1e-6), 2),
+            "contrast_to_noise": round(cnr, 2),
             "slices": [sl[0].start, sl[0].stop - 1],
             "kind": kind,
-            "flagged": kind in s["flag_kinds"],
+            "flagged": kind in s["flag_kinds"] and cnr >= float(s["min_flag_contrast_to_noise"]),
         }
         out.append((record, sl, comp))
     return out
