@@ -29,6 +29,7 @@ radon, iradon = skimage_transform.radon, skimage_transform.iradon
 from reconaudit.checker.analyses import streaks
 from reconaudit.checker.regions import find_regions
 from reconaudit.checker.volume import Volume
+from test_streaks_reference import fbp_like_noise  # same folder: the FBP-like noise of the one-by-one checks
 
 MU_WATER_PER_MM = 0.02  # from memory (water near 70 keV); only ratios matter
 PIXEL_MM = 1.5
@@ -78,18 +79,6 @@ def ray_display_angle(theta_deg: float) -> float:
     """Display orientation (GUIDE convention) of the rays of skimage's view ``theta``:
     90 + theta (derived and checked numerically in test_streaks_reference.py)."""
     return (90.0 + theta_deg) % 180.0
-
-
-def fbp_like_noise(shape: tuple[int, ...], sd: float, seed: int) -> np.ndarray:
-    """White noise shaped to a ramp-like NPS, |f| with a smooth roll-off (the FBP noise
-    power spectrum shape, Kak & Slaney 1988 ch. 5); isotropic, independent per slice."""
-    rng = np.random.default_rng(seed)
-    white = rng.normal(size=shape)
-    ky = np.fft.fftfreq(shape[-2])[:, None]
-    kx = np.fft.fftfreq(shape[-1])[None, :]
-    f = np.sqrt(ky**2 + kx**2)
-    shaped = np.real(np.fft.ifft2(np.fft.fft2(white) * np.sqrt(f) * np.exp(-((f / 0.35) ** 2))))
-    return shaped / shaped.std() * sd
 
 
 def test_slab_size_rule():
