@@ -492,6 +492,49 @@ def _mask_plane_count(a: np.ndarray, out: np.ndarray) -> np.ndarray:
     return out
 
 
+_PACKED_WORDS = {2: np.dtype(np.uint16), 4: np.dtype(np.uint32), 8: np.dtype(np.uint64)}
+
+
+def packed_mask_count_fits(a: np.ndarray, ky: int, kx: int) -> bool:
+    """Whether :func:`packed_mask_block_count` applies: a C-contiguous bool layer, ``kx``
+    of 2, 4 or 8 dividing the row, and fewer than 256 pixels per block (byte counts)."""
+    word = _PACKED_WORDS.get(kx)
+    k, ny, nx = a.shape
+    return bool(word is not None and a.dtype == np.bool_ and a.flags.c_contiguous and nx % kx == 0 and ny % ky == 0 and k * ky * kx < 256)
+
+
+def packed_mask_block_count(a: np.ndarray, ky: int, kx: int, words: np.ndarray, wrows: np.ndarray, out: np.ndarray) -> np.ndarray:
+    """Number of True pixels of the bool layer ``a`` (k, y, x) in each block of ``k`` x
+    ``ky`` x ``kx`` pixels, into ``out`` (y / ky, x / kx), with the ``kx`` pixels of a
+    block row packed into one unsigned word.
+
+    Each byte of a word is one pixel (0 or 1); words are added slice by slice and row by
+    row (every byte stays below 256, so no byte carries into the next), and the bytes of
+    a word are then summed by one multiplication with 0x01...01, whose top byte is their
+    sum (exact integers). ``words`` (y, x / kx) and ``wrows`` (y / ky, x / kx) are
+    buffers of the word type; :func:`packed_mask_count_fits` must hold.
+
+    References
+    ----------
+    .. [1] Byte sums within a word by multiplication ("SIMD within a register"): common
+           practice, no source.
+    """
+    k, ny, nx = a.shape
+    w = a.view(np.uint8).reshape(k, ny, nx).view(words.dtype)  # (k, y, x / kx)
+    if k == 1:
+        words[...] = w[0]
+    else:
+        np.add(w[0], w[1], out=words)
+        for i in range(2, k):
+            np.add(words, w[i], out=words)
+    _plane_block_sum(words, ky, 1, wrows, wrows)
+    ones = words.dtype.type(int.from_bytes(b"\x01" * kx, "little"))
+    np.multiply(wrows, ones, out=wrows)
+    np.right_shift(wrows, words.dtype.type(8 * (kx - 1)), out=wrows)
+    out[...] = wrows
+    return out
+
+
 def _plane_block_sum(plane: np.ndarray, ky: int, kx: int, rows: np.ndarray, out: np.ndarray) -> np.ndarray:
     """Sums of ``plane`` (y, x) over blocks of ``ky`` x ``kx`` pixels into ``out``, through
     the row buffer ``rows`` (y / ky, x); both dimensions whole multiples of the block."""
@@ -519,7 +562,9 @@ def coarse_air_grid(hu: np.ndarray, air: np.ndarray, factors: tuple[int, int, in
     The one full-resolution pass of the analysis, one layer of blocks (``factors[0]``
     slices) at a time: the slices are added and masked once (:func:`_masked_plane_sum`),
     then summed over the block's rows and columns into buffers made once; the layer's
-    mask, just read, is counted the same way (integer sums, exact). A block whose
+    mask, just read, is counted with the pixels of a block row packed into one word
+    (:func:`packed_mask_block_count`; byte by byte where that does not apply), integer
+    sums, exact. A block whose
     air holds a non-finite CT number is left out (count 0); a non-finite value outside
     the air is ignored.
 
@@ -539,10 +584,16 @@ def coarse_air_grid(hu: np.ndarray, air: np.ndarray, factors: tuple[int, int, in
     rows = np.empty((ny // ky, nx), dtype=np.float32)
     cplane = np.empty((ny, nx), dtype=cdt)
     crows = np.empty((ny // ky, nx), dtype=cdt)
+    word = _PACKED_WORDS.get(kx, np.dtype(np.uint8))
+    words = np.empty((ny, nx // kx), dtype=word)
+    wrows = np.empty((ny // ky, nx // kx), dtype=word)
     for b, z0 in enumerate(range(0, nz, kz)):
         h, a = hu[z0 : z0 + kz], air[z0 : z0 + kz]
         _plane_block_sum(_masked_plane_sum(h, a, plane), ky, kx, rows, sums[b])
-        _plane_block_sum(_mask_plane_count(a, cplane), ky, kx, crows, counts[b])  # the layer's mask is in the cache
+        if packed_mask_count_fits(a, ky, kx):  # the layer's mask is in the cache
+            packed_mask_block_count(a, ky, kx, words, wrows, counts[b])
+        else:
+            _plane_block_sum(_mask_plane_count(a, cplane), ky, kx, crows, counts[b])
         if not np.isfinite(sums[b]).all():
             part = _exact_masked_sum(h, a, (1, ky, kx), factors)
             bad = ~np.isfinite(part)

@@ -211,6 +211,36 @@ def test_coarse_air_grid_equals_plain_masked_block_sums():
         assert np.max(np.abs(sums[1:] - want_s[1:])) < 1e-2
 
 
+def test_packed_mask_block_count_equals_plain_count():
+    """Counting a contiguous bool layer with the pixels of a block row packed into one
+    word gives the plain reshape-sum counts for 2, 4 and 8 pixels per row (blocks of up
+    to 255 pixels), and the coarse grid takes that path on contiguous masks; a layer of
+    256 or more pixels per block is not accepted (byte counts would overflow)."""
+    rng = np.random.default_rng(11)
+    mask = np.ascontiguousarray(rng.random((6, 24, 48)) > 0.4)
+    mask[:, :4] = True
+    mask[:, 8:16, 16:40] = False
+    for f in [(2, 4, 4), (3, 2, 2), (1, 4, 8), (2, 3, 8), (1, 1, 2), (3, 4, 8)]:
+        kz, ky, kx = f
+        a = mask[:kz]
+        assert air.packed_mask_count_fits(a, ky, kx)
+        word = {2: np.uint16, 4: np.uint32, 8: np.uint64}[kx]
+        words = np.empty((24, 48 // kx), dtype=word)
+        wrows = np.empty((24 // ky, 48 // kx), dtype=word)
+        out = np.empty((24 // ky, 48 // kx), dtype=np.float32)
+        got = air.packed_mask_block_count(a, ky, kx, words, wrows, out)
+        want = a.reshape(kz, 24 // ky, ky, 48 // kx, kx).sum(axis=(0, 2, 4))
+        assert np.array_equal(got, want.astype(np.float32)), f
+        hu = rng.normal(-1000, 12, mask.shape).astype(np.float32)
+        sums, counts = air.coarse_air_grid(hu, mask, f)
+        want_s, want_c = _plain_masked_block_sums(hu, mask, f)
+        assert np.array_equal(counts, want_c.astype(np.float32)), f
+        assert np.max(np.abs(sums - want_s)) < 1e-2, f
+    assert not air.packed_mask_count_fits(np.ones((4, 8, 8), dtype=bool), 8, 8)  # 256 pixels a block
+    assert not air.packed_mask_count_fits(np.ones((2, 8, 9), dtype=bool), 4, 3)  # no word of 3 bytes
+    assert not air.packed_mask_count_fits(np.ones((2, 8, 16), dtype=bool)[:, :, :8], 4, 4)  # not contiguous
+
+
 def test_block_factors_make_blocks_of_about_three_mm():
     """Blocks of about 3 mm, never above 4 mm, at least one pixel, along z at most a
     quarter of the slices, one slice for a single-slice volume."""
