@@ -1635,15 +1635,21 @@ def screen_stack(images: np.ndarray, allowed: np.ndarray, factor: int, bins: Spe
     if len(keep) < k:
         binned, allowed, finite = binned[keep], allowed[keep], finite[keep]
     textures, usable = screen_textures(binned, allowed, cfg, finite)
-    good = [j for j in range(len(keep)) if usable[j]]
-    if good:
-        stack = textures if len(good) == len(keep) else textures[good]
-        cells = cell_powers(sfft.rfft2(stack, axes=(-2, -1)), bins)
-        for j, c in zip(good, cells):
-            profile = profile_of_cells(c, bins)
-            if profile is not None:
-                outcomes[keep[j]] = profile
+    for j, profile in profiles_of_textures(textures, usable, bins):
+        outcomes[keep[j]] = profile
     return outcomes
+
+
+def profiles_of_textures(textures: np.ndarray, usable: Any, bins: SpectralBins) -> list[tuple[int, np.ndarray]]:
+    """(index, angular profile) of every usable texture of a stack that has one: one
+    batched FFT of the usable textures, then each one's cells summed into its profile."""
+    good = [j for j in range(len(textures)) if usable[j]]
+    if not good:
+        return []
+    stack = textures if len(good) == len(textures) else textures[good]
+    cells = cell_powers(sfft.rfft2(stack, axes=(-2, -1)), bins)
+    found = [(j, profile_of_cells(c, bins)) for j, c in zip(good, cells)]
+    return [(j, profile) for j, profile in found if profile is not None]
 
 
 def screen_slab_stack(images: np.ndarray, allowed: np.ndarray, factor: int, bins: SpectralBins,
@@ -1676,15 +1682,9 @@ def screen_slab_stack(images: np.ndarray, allowed: np.ndarray, factor: int, bins
     masks = np.stack([np.logical_and.reduce(allowed[m], axis=0) for m in members])
     high, low = means.reshape(len(members), -1).max(axis=1), means.reshape(len(members), -1).min(axis=1)
     textures, usable = screen_textures(means, masks, cfg, np.isfinite(high) & np.isfinite(low))
-    good = [j for j in range(len(members)) if usable[j]]
-    if good:
-        stack = textures if len(good) == len(members) else textures[good]
-        cells = cell_powers(sfft.rfft2(stack, axes=(-2, -1)), bins)
-        for j, c in zip(good, cells):
-            profile = profile_of_cells(c, bins)
-            if profile is not None:
-                for i in members[j]:
-                    outcomes[i] = profile
+    for j, profile in profiles_of_textures(textures, usable, bins):
+        for i in members[j]:
+            outcomes[i] = profile
     return outcomes
 
 

@@ -192,6 +192,17 @@ def test_coarse_body_stays_within_one_pixel_of_full_resolution(name: str) -> Non
     assert np.allclose(coarse.body_centroid_zyx_vox, centroid_of(coarse.body), atol=1e-9)
 
 
+def expected_air_given_body(volume, fast):
+    """The field of view less the padding, outside body and table grown by the 4 mm
+    margin (``maximum_filter`` reference)."""
+    half = max(1, int(round(4.0 / min(volume.spacing_mm[1:]))))
+    grown = ndimage.maximum_filter(fast.body | fast.table, size=(1, 2 * half + 1, 2 * half + 1))
+    expected_air = ~grown & fast.fov[None]
+    if volume.padding_mask is not None:
+        expected_air &= ~volume.padding_mask[None]
+    return expected_air
+
+
 def test_coarse_grid_on_a_large_random_phantom_keeps_outline_and_air_exact_given_body() -> None:
     """A 256 x 256 random phantom (uses the coarse grid by default): the body outline is
     within one pixel of the full-resolution one, and the air is exactly the field of view
@@ -200,12 +211,7 @@ def test_coarse_grid_on_a_large_random_phantom_keeps_outline_and_air_exact_given
     fast = find_regions(volume)
     body, table, _, _ = reference_regions(volume)
     assert not ((fast.body ^ body) & ~_outline_band(body)).any()
-    half = max(1, int(round(4.0 / min(volume.spacing_mm[1:]))))
-    grown = ndimage.maximum_filter(fast.body | fast.table, size=(1, 2 * half + 1, 2 * half + 1))
-    expected_air = ~grown & fast.fov[None]
-    if volume.padding_mask is not None:
-        expected_air &= ~volume.padding_mask[None]
-    assert np.array_equal(fast.air, expected_air)
+    assert np.array_equal(fast.air, expected_air_given_body(volume, fast))
 
 
 def test_block_counts_equal_plain_block_sums() -> None:
@@ -263,12 +269,7 @@ def test_one_slice_512_volume_on_the_coarse_grid(seed: int) -> None:
     body, table, _, _ = reference_regions(volume)
     assert not ((fast.body ^ body) & ~_outline_band(body)).any()
     assert not ((fast.table ^ table) & ~_outline_band(table)).any()
-    half = max(1, int(round(4.0 / min(volume.spacing_mm[1:]))))
-    grown = ndimage.maximum_filter(fast.body | fast.table, size=(1, 2 * half + 1, 2 * half + 1))
-    expected_air = ~grown & fast.fov[None]
-    if volume.padding_mask is not None:
-        expected_air &= ~volume.padding_mask[None]
-    assert np.array_equal(fast.air, expected_air)
+    assert np.array_equal(fast.air, expected_air_given_body(volume, fast))
 
 
 # --------------------------------------------------------------------------- exact coarse grid
