@@ -7,9 +7,13 @@ Outputs in ``--out`` (every file written atomically):
 * ``results.csv`` — one row per series with the headline numbers;
 * ``report.html`` and ``figures/`` — the report.
 
-``results.json`` is rewritten after every finished series, so whatever was measured
-before a crash or a full disk is on disk. A rerun with the same ``--out`` reuses the
-complete per-series records (same content hash and profile) instead of re-checking.
+Every finished series is on disk at once in ``series/<id>.json``, so whatever was
+measured before a crash or a full disk is kept. ``results.json`` is rewritten while the
+run goes on (so a reader can follow it), but at most as often as :class:`InterimWrites`
+allows: its cost grows with the number of series, and rewriting it after every series of
+a run of thousands would make the run quadratic. It is always written at the end. A rerun
+with the same ``--out`` reuses the complete per-series records (same content hash and
+profile) instead of re-checking.
 """
 from __future__ import annotations
 
@@ -112,6 +116,36 @@ def _run_id(out_dir: Path) -> str:
     except (OSError, ValueError, KeyError):
         pass
     return uuid.uuid4().hex[:16]
+
+
+class InterimWrites:
+    """When to rewrite the interim ``results.json``: bounded share of the run's time.
+
+    A rewrite is due when at least ``min_interval_s`` has passed since the last one and
+    at least ``cost_factor`` times the last rewrite's own duration, so the rewrites never
+    take more than about ``1 / cost_factor`` of the run however many series it holds.
+    The first finished series is always written (a reader sees the run has started).
+    """
+
+    def __init__(self, min_interval_s: float = 5.0, cost_factor: float = 20.0,
+                 clock: Callable[[], float] = time.monotonic) -> None:
+        self.min_interval_s = min_interval_s
+        self.cost_factor = cost_factor
+        self._clock = clock
+        self._last_end: float | None = None
+        self._last_cost = 0.0
+
+    def due(self) -> bool:
+        if self._last_end is None:
+            return True
+        waited = self._clock() - self._last_end
+        return waited >= max(self.min_interval_s, self.cost_factor * self._last_cost)
+
+    def write(self, writer: Callable[[], None]) -> None:
+        start = self._clock()
+        writer()
+        self._last_end = self._clock()
+        self._last_cost = self._last_end - start
 
 
 def _write_run_state(out_dir: Path, run_id: str, finished: bool) -> None:
@@ -229,13 +263,15 @@ def check(opts: CheckOptions, progress_factory: Callable[[int], Any] | None = No
         task.threads = _threads_per_task(opts, workers, cores)
 
     progress = progress_factory(len(tasks)) if progress_factory else None
+    interim = InterimWrites()
 
     def on_done(record: dict[str, Any]) -> None:
         records[record["id"]] = record
         if history and record.get("content_hash"):
             history.record_series(run_id, record, record["content_hash"], digest, record.get("protocol_key") or "")
-        _write_outputs(out_dir, _document(records, profile, skipped, started), final=False,
-                       include_identifiers=opts.include_identifiers)
+        if interim.due():
+            interim.write(lambda: _write_outputs(out_dir, _document(records, profile, skipped, started),
+                                                 final=False, include_identifiers=opts.include_identifiers))
         if progress:
             progress.step(record)
 
