@@ -7,7 +7,7 @@ slab and tiled). The read limit is ``benchmarks/harness.py``'s ``read_limit`` wh
 there; otherwise the series is written as CT DICOM (``reconaudit.checker.dicom_write``)
 into a temporary folder and timed while pydicom reads every file and builds the HU array.
 
-"cold" runs clear the shared phantom search and finite check first, so each analysis
+"cold" runs clear the shared phantom search and finite checks first, so each analysis
 pays for them; uniformity is also shown after the noise analysis, as in a check, and the
 subtraction (pair) NPS of two invented repeated scans of the phantom.
 
@@ -55,6 +55,7 @@ def _timed(fn, *args, repeats: int, cold: bool) -> tuple[float, float, object]:
         if cold:
             _phantom._LAST.clear()
             _phantom._LAST_COUNT.clear()
+            _phantom._LAST_SLICES_COUNT.clear()
         t0, c0 = time.perf_counter(), time.process_time()
         res = fn(*args)
         walls.append(time.perf_counter() - t0)

@@ -38,11 +38,13 @@ from __future__ import annotations
 import threading
 import weakref
 from dataclasses import dataclass, field
+from typing import Sequence
 
 import numpy as np
 from scipy import ndimage
 
 from ..regions import Regions
+from ..results import Roi
 from ..volume import Volume
 
 #: Settings of :func:`find_phantom` and their defaults (common practice, no source).
@@ -369,6 +371,8 @@ def find_phantom(volume: Volume, regions: Regions, settings: dict | None = None)
 _LAST: dict[str, tuple] = {}
 #: The last count of :func:`count_nonfinite`, keyed the same way.
 _LAST_COUNT: dict[str, tuple] = {}
+#: The last count of :func:`count_nonfinite_in_slices`: (array, (z0, z1), count).
+_LAST_SLICES_COUNT: dict[str, tuple] = {}
 #: Held while a search or a count is made, so that analyses of one volume running on
 #: threads at once make it once (a re-entrant lock: a search may count).
 _SEARCH_LOCK = threading.RLock()
@@ -399,6 +403,56 @@ def count_nonfinite(volume: Volume, regions: Regions | None = None) -> int:
         if regions is not None:
             _LAST_COUNT["entry"] = (weakref.ref(hu), weakref.ref(regions.body), bad)
     return bad
+
+
+def count_nonfinite_in_slices(volume: Volume, z0: int, z1: int) -> int:
+    """Number of NaN or infinite voxels in every pixel of slices ``z0`` to ``z1``
+    (inclusive) of ``volume.hu``.
+
+    The check of the noise and uniformity analyses: they read only the slices their
+    ROIs lie on, so they check those slices whole (a method choice for speed: a
+    non-finite voxel on a slice they do not measure does not stop them). The same
+    float32 sum as :func:`count_nonfinite`; the last answers are kept, keyed by a weak
+    reference to the array and the slice range, so analyses measuring the same
+    slices of one volume pay for one pass.
+
+    References
+    ----------
+    IEEE 754 arithmetic: NaN and infinities propagate through a sum (common practice,
+    no source).
+    """
+    hu = volume.hu
+    z0, z1 = max(0, int(z0)), min(hu.shape[0] - 1, int(z1))
+    if z1 < z0:
+        return 0
+    with _COUNT_LOCK:
+        hit = _LAST_SLICES_COUNT.get("entry")
+        if hit is not None and hit[0]() is hu and hit[1] == (z0, z1):
+            return hit[2]
+        part = hu[z0 : z1 + 1]
+        bad = 0
+        if not np.isfinite(part.sum(dtype=np.float32)):
+            bad = sum(int(np.count_nonzero(~np.isfinite(part[z : z + 16]))) for z in range(0, part.shape[0], 16))
+        _LAST_SLICES_COUNT["entry"] = (weakref.ref(hu), (z0, z1), bad)
+    return bad
+
+
+def nonfinite_reason(volume: Volume, rois: Sequence[Roi]) -> str:
+    """Why ``rois`` cannot be measured on ``volume`` because of NaN or infinite voxels
+    on their slices (every pixel of each slice they lie on), or ``""``."""
+    bad = sum(count_nonfinite_in_slices(volume, z0, z1) for z0, z1 in _slice_runs(rois))
+    return f"volume contains {bad} NaN or infinite voxels on the measured slices" if bad else ""
+
+
+def _slice_runs(rois: Sequence[Roi]) -> list[tuple[int, int]]:
+    """The slices ``rois`` lie on, as sorted, disjoint inclusive runs (z0, z1)."""
+    runs: list[tuple[int, int]] = []
+    for z0, z1 in sorted((int(r.z0), int(r.z1)) for r in rois):
+        if runs and z0 <= runs[-1][1] + 1:
+            runs[-1] = (runs[-1][0], max(runs[-1][1], z1))
+        else:
+            runs.append((z0, z1))
+    return runs
 
 
 def _slice_step(volume: Volume, s: dict[str, float]) -> int:

@@ -32,6 +32,10 @@ on the mean-free pixels; squared spectra are summed in single precision over chu
 16 ROIs and in double precision across chunks. The phantom search reads a strided working grid (:mod:`._phantom`) and the
 patient search a few slices, so the records are estimates that may differ slightly
 from a search over every pixel; record keys, types and meaning are unchanged.
+Non-finite voxels: phantom, user and pair ROIs are measured only when every pixel of
+the slices they lie on is finite (:func:`._phantom.nonfinite_reason`; a NaN on a slice
+the NPS does not read no longer stops it, a method choice for speed made by the lead's
+rule that records may change); patient images are checked whole, as before.
 
 References
 ----------
@@ -58,7 +62,7 @@ from ..errors import ProfileError
 from ..regions import Regions, find_regions
 from ..results import AnalysisResult, Finding, Overlays, Roi, Severity
 from ..volume import Volume
-from ._phantom import count_nonfinite, find_phantom
+from ._phantom import count_nonfinite, find_phantom, nonfinite_reason
 
 NAME = "nps"
 
@@ -1027,6 +1031,9 @@ def _choose_rois(volume: Volume, regions: Regions, s: dict[str, Any]) -> tuple[s
         return "phantom", found, float("nan")
     if not regions.has_body:
         return "patient", RoiSet([], f"no phantom and no body: {found.reason}"), float("nan")
+    reason = _finite_or_reason(volume, regions)  # patient images: the whole volume, as before
+    if reason:
+        return "patient", RoiSet([], reason), float("nan")
     maps = patient_slice_maps(volume, regions, s["gnl_kernel_mm"], s["soft_tissue_hu"], _patient_slice_count(s))
     gnl, pixels = noise_level_of(maps)
     if not np.isfinite(gnl) or gnl <= 0:
@@ -1062,12 +1069,12 @@ def analyse(volume: Volume, regions: Regions, settings: dict[str, Any] | None = 
     if s["pair_with"] is not None:
         rest = {k: v for k, v in (settings or {}).items() if k != "pair_with"}
         return nps_from_pair(volume, s["pair_with"], regions, settings=rest)
-    reason = _finite_or_reason(volume, regions)
-    if reason:
-        return AnalysisResult.not_applicable(NAME, reason)
     method, found, gnl = _choose_rois(volume, regions, s)
     if not found.rois:
         return AnalysisResult.not_applicable(NAME, found.reason)
+    reason = nonfinite_reason(volume, found.rois)  # every pixel of the measured slices
+    if reason:
+        return AnalysisResult.not_applicable(NAME, reason)
     record = measure_nps(volume.hu, volume.spacing_mm, found.rois, s)
     if isinstance(record, str):
         return AnalysisResult.not_applicable(NAME, record)
@@ -1118,12 +1125,12 @@ def nps_from_pair(
             NAME, f"the two reconstructions differ: shapes {volume_a.shape} and {volume_b.shape}, "
                   f"spacing {volume_a.spacing_mm} and {volume_b.spacing_mm} mm")
     regions = regions if regions is not None else find_regions(volume_a)
-    reason = _finite_or_reason(volume_a, regions) or _finite_or_reason(volume_b)  # a's count is shared
-    if reason:
-        return AnalysisResult.not_applicable(NAME, reason)
     _, found, _ = _choose_rois(volume_a, regions, s)
     if not found.rois:
         return AnalysisResult.not_applicable(NAME, found.reason)
+    reason = nonfinite_reason(volume_a, found.rois) or nonfinite_reason(volume_b, found.rois)
+    if reason:
+        return AnalysisResult.not_applicable(NAME, reason)
     # the noise image only inside the ROIs: no full-size difference volume
     diff = roi_images(volume_a.hu, found.rois)
     diff -= roi_images(volume_b.hu, found.rois)

@@ -13,8 +13,10 @@ a tenth of the phantom diameter. Means and SDs are pooled over the slices.
 The phantom's centre, radius and uniform slices come from the shared search of
 :mod:`._phantom`, made on a strided working grid for speed: they are estimates, so the
 ROIs may sit a pixel away from where a full-resolution search would put them; the
-statistics are then taken over every pixel of the ROIs. The check for non-finite voxels
-is one pass over the volume, shared with the noise analysis.
+statistics are then taken over every pixel of the ROIs. Non-finite voxels are looked
+for on every pixel of the slices the ROIs lie on, not the whole volume (a method choice
+for speed under the lead's rule that records may change; the count is shared with the
+noise analysis, which measures the same slices).
 
 References
 ----------
@@ -32,7 +34,7 @@ from ..errors import ProfileError
 from ..regions import Regions
 from ..results import AnalysisResult, Finding, Overlays, Roi, Severity
 from ..volume import Volume
-from ._phantom import count_nonfinite, find_phantom
+from ._phantom import find_phantom, nonfinite_reason
 
 NAME = "uniformity"
 
@@ -155,12 +157,12 @@ def analyse(volume: Volume, regions: Regions, settings: dict[str, Any] | None = 
     e.g. IEC 61223-3-5 (from memory).
     """
     s = _settings(settings)
-    bad = count_nonfinite(volume, regions)  # one pass, shared with the noise analysis
-    if bad:
-        return AnalysisResult.not_applicable(NAME, f"volume contains {bad} NaN or infinite voxels")
     rois = _layout(volume, regions, s)
     if isinstance(rois, str):
         return AnalysisResult.not_applicable(NAME, rois)
+    reason = nonfinite_reason(volume, rois)  # every pixel of the measured slices, shared with nps
+    if reason:
+        return AnalysisResult.not_applicable(NAME, reason)
     stats = {r.label: roi_stats(volume.hu, r) for r in rois}
     centre = stats["centre"]
     diffs = {label: stats[label]["mean_hu"] - centre["mean_hu"] for label, _ in _PERIPHERY}

@@ -194,3 +194,24 @@ def test_slices_between_screened_slices_are_measured_near_a_disc():
     vol = Volume.from_array(hu, (1.0, 0.8, 0.8))
     ph = _phantom.find_phantom(vol, find_regions(vol))
     assert list(np.flatnonzero(ph.on_slice)) == list(range(2, 9))
+
+
+def test_nonfinite_check_covers_every_pixel_of_the_measured_slices():
+    """The finite check of nps/uniformity counts NaN and infinities on every pixel of
+    the slices the ROIs lie on (air included) and nothing on the other slices."""
+    from reconaudit.checker.results import Roi
+
+    vol = water_cylinder(nz=9, insert_slices=0)
+    vol.hu[2, 1, 1] = np.nan  # air, on a measured slice
+    vol.hu[3, 150, 5] = -np.inf
+    vol.hu[7, 80, 80] = np.nan  # a slice no ROI lies on
+    rois = [Roi(1, 3, 60, 60, 80, 80, "a"), Roi(2, 4, 90, 90, 110, 110, "b")]
+    assert _phantom._slice_runs(rois + [Roi(6, 6, 0, 0, 4, 4, "c")]) == [(1, 4), (6, 6)]
+    assert _phantom.count_nonfinite_in_slices(vol, 1, 4) == 2
+    assert _phantom.count_nonfinite_in_slices(vol, 4, 6) == 0
+    assert _phantom.count_nonfinite_in_slices(vol, 0, 8) == 3
+    assert "2 NaN" in _phantom.nonfinite_reason(vol, rois)
+    assert _phantom.nonfinite_reason(vol, [Roi(5, 6, 60, 60, 80, 80, "d")]) == ""
+    vol.hu[5, 0, 0] = np.nan  # a new array value, same array: a fresh volume is needed
+    fresh = Volume.from_array(vol.hu.copy(), vol.spacing_mm)
+    assert _phantom.nonfinite_reason(fresh, [Roi(5, 6, 60, 60, 80, 80, "d")]) != ""
