@@ -193,17 +193,18 @@ def esf_overshoot(esf: BinnedEsf, smooth_mm: float = 0.4, floor: float = 0.03) -
     ----------
     Common practice, no source (ringing of edge-enhancing kernels shows as overshoot).
     """
-    size = max(3, int(round(smooth_mm / esf.bin_mm)) | 1)
+    size = _smoothing_bins(esf, smooth_mm)
     y = ndimage.uniform_filter1d(esf.esf_hu, size=size, mode="nearest")
-    shape = esf_shape(esf, smooth_mm)
+    shape = _shape_of_smoothed(y, esf.position_mm)  # esf_shape(esf, smooth_mm), smoothed once
     contrast = shape.high_hu - shape.low_hu
     if not np.isfinite(contrast) or contrast == 0:
         return 0.0
     t = (y - shape.low_hu) / contrast
     over = max(float(t.max()) - 1.0, -float(t.min()), 0.0)
     resid = esf.esf_hu - y
-    n_per_window = max(float(np.mean(esf.counts)) * size, 1.0)
-    se = float(np.std(resid) * np.sqrt(max(float(np.mean(esf.counts)), 1.0)) / np.sqrt(n_per_window))
+    mean_count = float(esf.counts.mean())
+    n_per_window = max(mean_count * size, 1.0)
+    se = float(_std(resid) * np.sqrt(max(mean_count, 1.0)) / np.sqrt(n_per_window))
     limit = max(floor, 4.0 * se / abs(contrast))
     return over if over > limit else 0.0
 
@@ -228,23 +229,48 @@ def esf_shape(esf: BinnedEsf, smooth_mm: float = 0.4) -> EsfShape:
     The plateaus are the medians of the first and last tenth of the range; the centre
     is the midpoint crossing nearest the middle of the range.
     """
-    size = max(3, int(round(smooth_mm / esf.bin_mm)) | 1)
-    y = ndimage.uniform_filter1d(esf.esf_hu, size=size, mode="nearest")
-    pos = esf.position_mm
+    y = ndimage.uniform_filter1d(esf.esf_hu, size=_smoothing_bins(esf, smooth_mm), mode="nearest")
+    return _shape_of_smoothed(y, esf.position_mm)
+
+
+def _smoothing_bins(esf: BinnedEsf, smooth_mm: float) -> int:
+    """Odd number of bins (at least 3) of the running mean of ``smooth_mm``."""
+    return max(3, int(round(smooth_mm / esf.bin_mm)) | 1)
+
+
+def _median(values: np.ndarray) -> float:
+    """``np.median`` of a small 1-D array, from one sort (the same value, bit for bit:
+    the middle element, or the mean of the two middle ones; NaN if any is NaN)."""
+    v = np.sort(values)
+    n = v.size
+    if n == 0 or v[-1] != v[-1]:  # empty, or NaN (sorted last)
+        return float("nan")
+    return float(v[n // 2]) if n % 2 else float((v[n // 2 - 1] + v[n // 2]) / 2.0)
+
+
+def _std(values: np.ndarray) -> float:
+    """``np.std`` of a 1-D float array, computed the same way (mean, squared deviations,
+    their mean, square root) without its argument handling."""
+    dev = values - values.sum() / values.size
+    return float(np.sqrt((dev * dev).sum() / values.size))
+
+
+def _shape_of_smoothed(y: np.ndarray, pos: np.ndarray) -> EsfShape:
+    """:class:`EsfShape` of the smoothed ESF values ``y`` at the bin centres ``pos``."""
     k = max(y.size // 10, 1)
-    first, last = float(np.median(y[:k])), float(np.median(y[-k:]))
+    first, last = _median(y[:k]), _median(y[-k:])
     nan = float("nan")
     if first == last or not np.isfinite(first + last):
         return EsfShape(first, last, nan, nan)
     t = (y - first) / (last - first)
-    cross = np.nonzero((t[:-1] < 0.5) & (t[1:] >= 0.5))[0]
+    cross = np.flatnonzero((t[:-1] < 0.5) & (t[1:] >= 0.5))
     if cross.size == 0:
         return EsfShape(first, last, nan, nan)
     middle = 0.5 * (pos[0] + pos[-1])
     i = int(cross[np.argmin(np.abs(pos[cross] - middle))])
     centre = float(pos[i] + (0.5 - t[i]) * (pos[i + 1] - pos[i]) / (t[i + 1] - t[i]))
-    left = np.nonzero(t[: i + 1] <= 0.1)[0]
-    right = np.nonzero(t[i:] >= 0.9)[0]
+    left = np.flatnonzero(t[: i + 1] <= 0.1)
+    right = np.flatnonzero(t[i:] >= 0.9)
     width = float(pos[i + right[0]] - pos[left[-1]]) if left.size and right.size else nan
     return EsfShape(first, last, centre, width)
 
@@ -268,6 +294,18 @@ def lsf_window(position_mm: np.ndarray, centre_mm: float, half_width_mm: float, 
     w[edge] = 0.5 * (1.0 + np.cos(np.pi * (u[edge] - flat) / taper))
     w[u >= 1.0] = 0.0
     return w
+
+
+def _central_difference(y: np.ndarray, dx: float) -> np.ndarray:
+    """``np.gradient(y, dx)`` of a 1-D array (central differences inside, one-sided at
+    the two ends), computed the same way without its argument handling."""
+    out = np.empty(y.shape, dtype=float)
+    if y.size < 2:
+        raise ValueError("at least two ESF bins are needed for the LSF")
+    out[1:-1] = (y[2:] - y[:-2]) / (2.0 * dx)
+    out[0] = (y[1] - y[0]) / dx
+    out[-1] = (y[-1] - y[-2]) / dx
+    return out
 
 
 def first_crossing(frequency: np.ndarray, ttf: np.ndarray, level: float) -> float:
@@ -311,7 +349,7 @@ def ttf_from_esf(
     14(4):533-537, 1987. Richard et al., Med Phys 39(7), 2012.
     """
     dr = esf.bin_mm
-    lsf = np.gradient(esf.esf_hu, dr)
+    lsf = _central_difference(esf.esf_hu, dr)
     if np.sum(lsf) < 0:
         lsf = -lsf
     shape = esf_shape(esf)

@@ -289,14 +289,22 @@ def _insert_at_full_resolution(hu: np.ndarray, zs: slice, at: tuple[np.ndarray, 
     return _insert_from_component(hu, dev[sl], lab[sl] == j, full, mid, px, s)
 
 
+#: Largest distance (mm) between the slices of the decimated phantom search that
+#: :func:`_phantom_of` makes when a series has more than 16 slices (see there).
+PHANTOM_SEARCH_STEP_MM = 10.0
+
+
 def _phantom_of(volume: Volume, regions: Regions) -> tuple[Any, int, int]:
-    """``find_phantom`` on a copy decimated to at most 256 pixels a side and about 32
-    slices (rods are long; their exact slices are found later at full resolution).
+    """``find_phantom`` on a copy decimated to at most 256 pixels a side and to about
+    16 slices, at most ``PHANTOM_SEARCH_STEP_MM`` apart (and at most 32 slices in all
+    however long the series): rods are long, and their exact slices are found later
+    at full resolution, so the search needs only one slice in each rod module. A
+    method choice for speed: the search costs about its number of slices.
 
     Returns the phantom, the in-plane factor and the slice step.
     """
     factor = max(1, int(math.ceil(max(volume.shape[1:]) / 256)))
-    step = max(1, int(math.ceil(volume.shape[0] / 32)))
+    step = _phantom_search_step(volume.shape[0], float(volume.spacing_mm[0]))
     if factor == 1 and step == 1:
         return find_phantom(volume, regions), 1, 1
     dz, dy, dx = volume.spacing_mm
@@ -311,6 +319,14 @@ def _phantom_of(volume: Volume, regions: Regions) -> tuple[Any, int, int]:
         body_centroid_zyx_vox=None if centroid is None else (centroid[0] / step, centroid[1] / factor, centroid[2] / factor),
     )
     return find_phantom(small, small_regions), factor, step
+
+
+def _phantom_search_step(nz: int, dz_mm: float) -> int:
+    """Slice step of the decimated phantom search: about 16 slices in all, but no more
+    than ``PHANTOM_SEARCH_STEP_MM`` apart unless that would take more than 32."""
+    sixteen, thirty_two = math.ceil(nz / 16), math.ceil(nz / 32)
+    by_mm = int(PHANTOM_SEARCH_STEP_MM // max(dz_mm, 1e-6))
+    return max(1, thirty_two, min(sixteen, by_mm))
 
 
 def _box_about(centre: Sequence[float], half: float, shape: tuple[int, int]
@@ -660,12 +676,13 @@ def _refine_centres(crop: np.ndarray, centre: tuple[float, float], r_px: float, 
     """
     nz = crop.shape[0]
     runs = np.array_split(np.arange(nz), min(groups, nz))
-    run_sums = np.stack([crop[r[0] : r[-1] + 1].sum(axis=0, dtype=np.float64) for r in runs])
+    run_sums = _run_sums(crop, runs)
     first = run_sums.sum(axis=0) / nz
     d = np.hypot(*(np.indices(first.shape) - np.array(centre)[:, None, None]))
-    inside_hu = float(np.median(first[d <= 0.6 * r_px])) if (d <= 0.6 * r_px).any() else float(first.mean())
+    core = d <= 0.6 * r_px
+    inside_hu = _edges._median(first[core]) if core.any() else float(first.mean())
     ring = (d >= r_px + 2.0 / px) & (d <= r_px + 4.0 / px)
-    outside_hu = float(np.median(first[ring])) if ring.any() else float(np.median(first))
+    outside_hu = _edges._median(first[ring]) if ring.any() else _edges._median(first.ravel())
     reach = min(3.0 / px, 0.5 * r_px + 1)
     c0 = _edges.refine_circle_centre(first, centre, r_px, inside_hu, outside_hu, reach_px=reach)
     images = crop if len(runs) == nz else run_sums / np.array([r.size for r in runs], dtype=float)[:, None, None]
@@ -676,6 +693,17 @@ def _refine_centres(crop: np.ndarray, centre: tuple[float, float], r_px: float, 
         return list(zip(fit[:, 0].tolist(), fit[:, 1].tolist())), inside_hu, outside_hu
     per_slice = np.concatenate([np.repeat(p[None], r.size, axis=0) for p, r in zip(per, runs)])
     return [tuple(p) for p in per_slice], inside_hu, outside_hu
+
+
+def _run_sums(crop: np.ndarray, runs: Sequence[np.ndarray]) -> np.ndarray:
+    """Float64 sum of the crop's slices over each run of consecutive slices: (runs, y, x).
+    Runs of one length are summed by one reshape (the same sums, slice by slice in
+    order, as one sum per run)."""
+    sizes = {r.size for r in runs}
+    if len(sizes) == 1:
+        k = sizes.pop()
+        return crop.reshape(len(runs), k, *crop.shape[1:]).sum(axis=1, dtype=np.float64)
+    return np.stack([crop[r[0] : r[-1] + 1].sum(axis=0, dtype=np.float64) for r in runs])
 
 
 def _line_along_z(zc: np.ndarray, yx: np.ndarray, weights: np.ndarray, z: np.ndarray) -> np.ndarray:
