@@ -531,16 +531,21 @@ def pattern_tables() -> _PatternTables:
     """
     if _TABLES:
         return _TABLES[0]
-    p = np.arange(65536, dtype=np.uint32)
-    pixels = ((p[:, None] >> np.arange(16, dtype=np.uint32)) & 1).astype(bool)
+    n = 1 << (BLOCK * BLOCK)
+    codes = np.arange(n, dtype="<u2").view(np.uint8).reshape(n, 2)
+    pixels = np.unpackbits(codes, axis=1, bitorder="little").view(bool)  # bit k of a pattern: pixel k
     st = np.zeros((3, 3, 3), dtype=bool)
     st[1] = ndimage.generate_binary_structure(2, 1)
-    lab, _ = ndimage.label(pixels.reshape(65536, BLOCK, BLOCK), structure=st)  # pieces never span patterns
-    lab = lab.reshape(65536, 16).astype(np.int64)
-    first = np.where(lab > 0, lab, np.iinfo(np.int64).max).min(axis=1)  # labels run in raster order
-    sub = np.where(lab > 0, lab - first[:, None] + 1, 0).astype(np.uint8)
-    submask = np.stack([((sub == k + 1) * _BITS).sum(axis=1, dtype=np.uint16) for k in range(8)], axis=1)
-    tables = _PatternTables(pixels, pixels.sum(axis=1).astype(np.uint8), sub, sub.max(axis=1), submask)
+    lab = np.empty((n, BLOCK, BLOCK), dtype=np.int32)
+    ndimage.label(pixels.reshape(n, BLOCK, BLOCK), structure=st, output=lab)  # pieces never span patterns
+    lab = lab.reshape(n, 16)
+    first = lab[np.arange(n), pixels.argmax(axis=1)]  # labels run in raster order: the first set pixel's is the least
+    sub = lab - (first - 1)[:, None]
+    sub *= pixels
+    sub = sub.astype(np.uint8)
+    submask = np.stack([np.packbits(sub == k + 1, axis=1, bitorder="little").view("<u2")[:, 0]
+                        for k in range(8)], axis=1).astype(np.uint16)
+    tables = _PatternTables(pixels, pixels.sum(axis=1, dtype=np.uint8), sub, sub.max(axis=1), submask)
     _TABLES.append(tables)
     return tables
 
@@ -1038,13 +1043,17 @@ def _unpacked(words: np.ndarray, nx: int) -> np.ndarray:
     return np.unpackbits(words.view(np.uint8), axis=-1, count=nx, bitorder="little").view(bool)
 
 
-def air_outside(found: _BodyTable, open_2d: np.ndarray, margin_px: int, shape: tuple[int, ...]) -> np.ndarray:
+def air_outside(found: _BodyTable, open_2d: np.ndarray, margin_px: int, shape: tuple[int, ...],
+                chunk: int = 16) -> np.ndarray:
     """The field of view (less padding) on every slice, outside body and table dilated by
     a (2 ``margin_px`` + 1)-pixel square in-plane.
 
     The same mask as ``open_2d & ~maximum_filter(body | table, size=(1, 2m+1, 2m+1))``;
     the dilation runs on bit-packed rows (64 pixels per word): shifted ORs along x, row
-    ORs along y, inside the box of the body and table widened by the margin.
+    ORs along y, inside the box of the body and table widened by the margin. The mask is
+    written once: ``open_2d`` copied outside that box, and inside it ``open_2d`` AND NOT
+    the dilation, unpacked ``chunk`` slices at a time (no full-size packed or unpacked
+    intermediate).
 
     References
     ----------
@@ -1052,12 +1061,23 @@ def air_outside(found: _BodyTable, open_2d: np.ndarray, margin_px: int, shape: t
        ORs; bit-parallel binary morphology).
     """
     nz, ny, nx = shape
-    words = np.broadcast_to(_packed(open_2d), (nz,) + _packed(open_2d).shape).copy()
-    if found.grown_box is not None:
-        zs, ys, _ = _widened_in_plane(found.grown_box, margin_px, shape)
-        occupied = _packed(found.body[zs, ys])
-        if found.table_found:
-            occupied |= _packed(found.table[zs, ys])
-        grown = _or_window(_or_bits(occupied, margin_px), margin_px, axis=1)
-        words[zs, ys] &= ~grown
-    return _unpacked(words, nx)
+    air = np.empty(shape, dtype=bool)
+    if found.grown_box is None:
+        air[...] = open_2d
+        return air
+    zs, ys, _ = _widened_in_plane(found.grown_box, margin_px, shape)
+    air[: zs.start] = open_2d
+    air[zs.stop :] = open_2d
+    air[zs, : ys.start] = open_2d[: ys.start]
+    air[zs, ys.stop :] = open_2d[ys.stop :]
+    occupied = _packed(found.body[zs, ys])
+    if found.table_found:
+        occupied |= _packed(found.table[zs, ys])
+    grown = _or_window(_or_bits(occupied, margin_px), margin_px, axis=1)
+    del occupied
+    inside = open_2d[ys]
+    for k0 in range(0, grown.shape[0], chunk):
+        part = grown[k0 : k0 + chunk]
+        z0 = zs.start + k0
+        np.greater(inside, _unpacked(part, nx), out=air[z0 : z0 + part.shape[0], ys])  # open AND NOT grown
+    return air

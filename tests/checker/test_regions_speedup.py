@@ -407,3 +407,23 @@ def test_graph_components_equal_scipy_connected_components():
         got_n, got = graph_components(n, u, v)
         assert got_n == want_n
         assert np.array_equal(got, want)
+
+
+def test_pattern_tables_equal_labelling_each_pattern_alone() -> None:
+    """Every table row equals a 4 x 4 ``ndimage.label`` (4-connected) of that pattern
+    alone, for all patterns of up to three set pixels and a random sample of the rest."""
+    from reconaudit.checker.regions import pattern_tables
+
+    t = pattern_tables()
+    codes = np.arange(65536)
+    few = codes[np.array([bin(c).count("1") <= 3 for c in codes])]
+    sample = np.unique(np.concatenate([few, np.random.default_rng(5).integers(0, 65536, 3000), [0, 65535, 0x5A5A, 0xA5A5]]))
+    for code in sample:
+        pix = ((code >> np.arange(16)) & 1).astype(bool)
+        lab, n = ndimage.label(pix.reshape(4, 4))
+        lab = lab.reshape(16)
+        assert np.array_equal(t.pixels[code], pix)
+        assert t.pop[code] == pix.sum() and t.nsub[code] == n
+        assert np.array_equal(t.sub[code], lab)
+        expected = [int(sum(1 << i for i in range(16) if lab[i] == k + 1)) for k in range(8)]
+        assert t.submask[code].tolist() == expected
