@@ -267,3 +267,46 @@ def test_detrend_equals_least_squares_fit(method, order):
         flat = stack.reshape(n, -1)
         ref = flat - (a @ np.linalg.lstsq(a, flat.T, rcond=None)[0]).T
         assert np.abs(nps.detrend_rois(stack, method).reshape(n, -1) - ref).max() < 1e-9
+
+
+def test_z_profile_from_slice_gram_equals_integrated_3d_nps():
+    """The 3-D record's z profile (from the Gram matrices of the blocks' slices) equals
+    the 3-D NPS of nps_3d (direct spectra) integrated over fy and fx, for blocks that
+    tile the ROI slices and blocks that do not (Parseval; the DFT is separable)."""
+    from reconaudit.checker.results import Roi
+
+    rng = np.random.default_rng(11)
+    spacing = (1.5, 0.6, 0.6)
+    for z1, depth in ((15, 4), (13, 4)):  # 16 slices: 4 blocks tile; 14: 3 blocks, 2 left over
+        rois = [Roi(0, z1, 0, 0, 16, 16, "a"), Roi(2, 2 + z1, 0, 0, 16, 16, "b")]
+        stack = rng.normal(3.0, 7.0, (2 * (z1 + 1), 16, 16)).astype(np.float32)
+        stack += np.linspace(0.0, 9.0, 16, dtype=np.float32)[None, :, None]
+        res, _ = nps._remove_fit_in_place(stack - stack.mean(axis=(1, 2), keepdims=True), "poly1")
+        s = {**nps.DEFAULTS, "roi_depth_vox": depth}
+        got = nps._measure_3d(res, spacing, rois, s)
+        starts = nps._block_starts(rois, depth)
+        blocks = np.stack([res[i : i + depth] for i in starts]).astype(np.float64)
+        ref, fz, fy, fx = nps.nps_3d(blocks, spacing, "mean")  # residuals: "mean" fits nothing more
+        ref_z = ref.sum(axis=(1, 2)) * abs(fy[1] - fy[0]) * abs(fx[1] - fx[0])
+        assert got["roi_count"] == len(starts)
+        assert np.allclose(got["frequency_z_per_mm"], np.round(fz, 6))
+        assert np.allclose(got["nps_z_hu2mm"], ref_z, rtol=1e-5, atol=1e-6 * ref_z.max())
+        dfz = abs(fz[1] - fz[0])
+        assert got["noise_hu"] == pytest.approx(float(np.sqrt(ref.sum() * dfz * abs(fy[1] - fy[0])
+                                                              * abs(fx[1] - fx[0]))), rel=1e-5)
+
+
+@pytest.mark.parametrize("method", ["mean", "poly1", "poly2"])
+def test_in_place_fit_removal_equals_detrend_and_keeps_pythagoras(method):
+    """The single-precision in-place fit removal gives detrend_rois's residuals (float64
+    reference) and the fit energy it returns closes |raw|^2 = |res|^2 + |fit|^2."""
+    rng = np.random.default_rng(12)
+    for shape in ((20, 24, 24), (5, 15, 23)):
+        yy, xx = np.mgrid[: shape[1], : shape[2]]
+        stack = rng.normal(0.0, 10.0, shape) + 0.3 * xx + 0.02 * (yy - 7.0) ** 2
+        stack -= stack.mean(axis=(1, 2), keepdims=True)
+        ref = nps.detrend_rois(stack, method)
+        res, energy = nps._remove_fit_in_place(stack.astype(np.float32), method)
+        assert np.abs(res - ref).max() < 1e-4
+        raw2 = (stack**2).sum(axis=(1, 2))
+        assert np.allclose((ref**2).sum(axis=(1, 2)) + energy, raw2, rtol=1e-5)
