@@ -279,9 +279,14 @@ def _as_slice(zs: np.ndarray) -> slice | None:
 def smooth_in_plane(stack: np.ndarray, sigma_px: float, truncate: float = 2.5) -> np.ndarray:
     """Gaussian smoothing of every slice of a float32 (z, y, x) stack, as
     ``ndimage.gaussian_filter(stack, (0, s, s), truncate=truncate)`` (same kernel,
-    ``reflect`` edges): along rows by ``ndimage.correlate1d``, along columns by weighted
-    sums of whole shifted rows (faster than a filter along non-contiguous lines for the
-    few-pixel kernels used here).
+    ``reflect`` edges).
+
+    The stack is padded by reflection in-plane once; then along rows and along columns
+    each output is a weighted sum of the input shifted by whole pixels (rows) or whole
+    padded rows (columns) along the flattened padded stack, computed in pieces that stay
+    in the processor cache (:data:`_PIECE` values) with one small scratch buffer. Faster
+    than a filter along lines for the few-pixel kernels used here; values off the
+    padded image's valid part are computed but never used.
     """
     radius = int(truncate * float(sigma_px) + 0.5)
     stack = np.asarray(stack, dtype=np.float32)
@@ -290,16 +295,51 @@ def smooth_in_plane(stack: np.ndarray, sigma_px: float, truncate: float = 2.5) -
     k = np.arange(-radius, radius + 1)
     w = np.exp(-0.5 * (k / float(sigma_px)) ** 2)
     w /= w.sum()
-    rows = ndimage.correlate1d(stack, w, axis=2, mode="reflect")
-    ny = rows.shape[1]
-    padded = np.pad(rows, [(0, 0), (radius, radius), (0, 0)], mode="symmetric")
-    out = padded[:, radius : radius + ny] * np.float32(w[radius])
-    pair = np.empty_like(out)
-    for j in range(1, radius + 1):  # the kernel is symmetric: one product per pair
-        np.add(padded[:, radius - j : radius - j + ny], padded[:, radius + j : radius + j + ny], out=pair)
-        pair *= np.float32(w[radius + j])
-        out += pair
+    _, ny, nx = stack.shape
+    padded = _pad_reflect_in_plane(stack, radius)
+    flat = padded.reshape(-1)
+    rows = np.empty_like(flat)
+    scratch = np.empty(min(_PIECE, flat.size), dtype=np.float32)
+    _shifted_sums(flat, w, 1, rows, scratch)
+    _shifted_sums(rows, w, padded.shape[2], flat, scratch)  # the padded input is no longer needed
+    return padded[:, radius : radius + ny, radius : radius + nx]
+
+
+#: Values of one piece of :func:`smooth_in_plane` (256 KiB of float32).
+_PIECE = 1 << 16
+
+
+def _pad_reflect_in_plane(stack: np.ndarray, r: int) -> np.ndarray:
+    """``np.pad(stack, [(0, 0), (r, r), (r, r)], mode="symmetric")`` as float32 (scipy's
+    ``reflect``), by slice copies when ``r`` is at most the slice size."""
+    nz, ny, nx = stack.shape
+    if r > ny or r > nx:
+        return np.pad(stack, [(0, 0), (r, r), (r, r)], mode="symmetric").astype(np.float32, copy=False)
+    out = np.empty((nz, ny + 2 * r, nx + 2 * r), dtype=np.float32)
+    out[:, r : r + ny, r : r + nx] = stack
+    out[:, r : r + ny, :r] = stack[:, :, :r][:, :, ::-1]
+    out[:, r : r + ny, r + nx :] = stack[:, :, nx - r :][:, :, ::-1]
+    out[:, :r] = out[:, r : 2 * r][:, ::-1]
+    out[:, r + ny :] = out[:, ny : ny + r][:, ::-1]
     return out
+
+
+def _shifted_sums(src: np.ndarray, w: np.ndarray, step: int, dst: np.ndarray, scratch: np.ndarray) -> None:
+    """``dst[i] = sum_j w[j] src[i + (j - r) step]`` for a symmetric kernel ``w`` of
+    2 r + 1 taps, where every index lies in ``src`` (0 elsewhere), piece by piece."""
+    r = (len(w) - 1) // 2
+    lo, hi = r * step, src.size - r * step
+    dst[:lo] = 0.0
+    dst[max(lo, hi) :] = 0.0
+    taps = [np.float32(v) for v in w]
+    for start in range(lo, hi, scratch.size):
+        stop = min(start + scratch.size, hi)
+        out, pair = dst[start:stop], scratch[: stop - start]
+        np.multiply(src[start:stop], taps[r], out=out)
+        for j in range(1, r + 1):  # the kernel is symmetric: one product per pair
+            np.add(src[start - j * step : stop - j * step], src[start + j * step : stop + j * step], out=pair)
+            pair *= taps[r + j]
+            out += pair
 
 
 def _largest_groups(mask: np.ndarray) -> np.ndarray:

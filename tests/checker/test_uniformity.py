@@ -215,3 +215,16 @@ def test_nonfinite_check_covers_every_pixel_of_the_measured_slices():
     vol.hu[5, 0, 0] = np.nan  # a new array value, same array: a fresh volume is needed
     fresh = Volume.from_array(vol.hu.copy(), vol.spacing_mm)
     assert _phantom.nonfinite_reason(fresh, [Roi(5, 6, 60, 60, 80, 80, "d")]) != ""
+
+
+def test_smooth_in_plane_on_small_and_one_slice_stacks():
+    """Reference: scipy.ndimage.gaussian_filter (reflect edges), also when the kernel
+    is wider than the slice (the padding falls back to numpy.pad) and for one slice."""
+    from scipy import ndimage
+
+    rng = np.random.default_rng(13)
+    for shape, sigma in (((1, 9, 7), 4.0), ((2, 5, 30), 1.2), ((1, 64, 64), 0.83)):
+        stack = rng.normal(0, 20, shape).astype(np.float32)
+        ref = ndimage.gaussian_filter(stack, (0, sigma, sigma), truncate=2.5)
+        got = _phantom.smooth_in_plane(stack, sigma)
+        assert got.shape == shape and np.abs(got - ref).max() < 1e-4
