@@ -97,7 +97,10 @@ slab size slices per task, so thin slices give each thread larger tasks): each s
 binned once (the one full-resolution pass over the volume), the coarse-grid work, the
 FFT and the cell sums are done for the stack at once, the full-grid filters slab by
 slab; each slab's outcome depends on that slab only. Slabs of two slices (1.25 mm)
-halve the screen's work after the binning. These are estimates of the
+halve the screen's work after the binning. Each screening thread keeps its large
+temporaries in a :class:`Workspace` and reuses them from stack to stack (fresh arrays
+cost a page fault per 4 kB on first touch: about a quarter of the screen's CPU time
+before); a slab's full-resolution sum is formed first and binned once. These are estimates of the
 same quantities, so the indices differ slightly from a full-grid computation (a
 documented method choice); the record's keys, types and meaning are unchanged.
 Dense-pair lines and the localisation of flagged slices use the full-grid texture
@@ -115,6 +118,7 @@ from __future__ import annotations
 import functools
 import math
 import os
+import threading
 from collections.abc import Callable
 from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass, field
@@ -322,35 +326,90 @@ class SliceTexture:
     spectrum: np.ndarray  # complex64 rfft2 of residual
 
 
-def bin_slice(image: np.ndarray, factor: int) -> np.ndarray:
+class Workspace:
+    """Reusable scratch arrays of one screening thread (contents undefined between uses).
+
+    The system maps the pages of a freshly allocated array of a few hundred kB one by
+    one on first touch, and the allocator hands such arrays back to the system when
+    they are freed; a screen that allocated its temporaries anew for every stack spent
+    about a quarter of its CPU time in those page faults. A workspace keeps one flat
+    byte buffer per name, grown when a larger array is asked for, and lends a view of
+    it in the shape and dtype asked for; steps whose temporaries are never alive at the
+    same time share a name (that keeps the workspace small). Callers never return a
+    lent buffer (only values computed from it).
+    """
+
+    def __init__(self) -> None:
+        self._buffers: dict[str, np.ndarray] = {}
+
+    def get(self, name: str, shape: tuple[int, ...], dtype: Any = np.float32) -> np.ndarray:
+        """A C-contiguous view of buffer ``name`` in this shape and dtype (contents undefined)."""
+        shape = tuple(int(s) for s in shape)
+        dtype = np.dtype(dtype)
+        nbytes = math.prod(shape) * dtype.itemsize
+        buf = self._buffers.get(name)
+        if buf is None or buf.size < nbytes:
+            buf = self._buffers[name] = np.empty(max(nbytes, 64), dtype=np.uint8)
+        return buf[:nbytes].view(dtype).reshape(shape)
+
+    @property
+    def nbytes(self) -> int:
+        """Bytes held by the workspace's buffers."""
+        return sum(b.nbytes for b in self._buffers.values())
+
+
+def scratch(ws: Workspace | None, name: str, shape: tuple[int, ...], dtype: Any = np.float32) -> np.ndarray:
+    """An uninitialised array: ``ws``'s buffer ``name`` if a workspace is given, else a new one."""
+    return np.empty(shape, dtype=dtype) if ws is None else ws.get(name, shape, dtype)
+
+
+def bin_slice(image: np.ndarray, factor: int, out: np.ndarray | None = None, ws: "Workspace | None" = None) -> np.ndarray:
     """Mean over ``factor`` x ``factor`` blocks of the last two axes (cropping the remainder).
 
     Rows are summed first (whole contiguous rows), then columns of the much smaller
-    row sums; the full-resolution slice is read once.
+    row sums; the full-resolution slice is read once. ``out`` receives the means (a new
+    array otherwise); ``ws`` lends the row sums (:class:`Workspace`).
     """
     if factor == 1:
         return image
     ny, nx = (n // factor * factor for n in image.shape[-2:])
-    rows = np.add(image[..., 0:ny:factor, :nx], image[..., 1:ny:factor, :nx], dtype=np.float32)
+    rows = scratch(ws, "bin_rows", image.shape[:-2] + (ny // factor, nx))
+    np.add(image[..., 0:ny:factor, :nx], image[..., 1:ny:factor, :nx], out=rows)
     for dy in range(2, factor):
         rows += image[..., dy:ny:factor, :nx]
-    out = np.add(rows[..., 0::factor], rows[..., 1::factor])
+    out = np.add(rows[..., 0::factor], rows[..., 1::factor], out=out)
     for dx in range(2, factor):
         out += rows[..., dx::factor]
     out *= np.float32(1.0 / (factor * factor))
     return out
 
 
-def bin_mask(mask: np.ndarray, factor: int) -> np.ndarray:
+def bin_mask(mask: np.ndarray, factor: int, ws: "Workspace | None" = None, tag: str = "bin_mask") -> np.ndarray:
     """Any-of over ``factor`` x ``factor`` blocks of the last two axes (cropping the remainder).
 
-    For ``factor`` 2 the row pairs are OR-ed and each pair of columns read as one 16-bit
-    word (non-zero if either byte is): two passes over contiguous memory.
+    For ``factor`` 2 the row pairs are OR-ed (as 64-bit words when the rows allow it,
+    eight mask bytes per operation) and each pair of columns read as one 16-bit word
+    (non-zero if either byte is): two passes over contiguous memory. With a
+    :class:`Workspace` ``ws`` the result is its buffer ``tag`` (the word path then goes
+    slice by slice through a small buffer).
     """
     if factor == 1:
         return mask
     ny, nx = (n // factor * factor for n in mask.shape[-2:])
     if factor == 2 and ny and nx:
+        if nx == mask.shape[-1] and nx % 8 == 0 and mask.strides[-1] == 1:
+            # row pairs OR-ed eight bytes at a time (the same bytes as the bool OR)
+            words = mask[..., :ny, :].view(np.uint64)
+            if ws is None or words.ndim == 2:
+                pairs = np.bitwise_or(words[..., 0::2, :], words[..., 1::2, :])
+                return np.not_equal(pairs.view(np.uint16), 0, out=scratch(ws, tag, pairs.shape[:-1] + (nx // 2,), bool))
+            flat = words.reshape((-1,) + words.shape[-2:])
+            out = ws.get(tag, (flat.shape[0], ny // 2, nx // 2), bool)
+            pairs = ws.get(tag + "_words", (ny // 2, words.shape[-1]), np.uint64)
+            for i in range(flat.shape[0]):
+                np.bitwise_or(flat[i, 0::2], flat[i, 1::2], out=pairs)
+                np.not_equal(pairs.view(np.uint16), 0, out=out[i])
+            return out.reshape(words.shape[:-2] + (ny // 2, nx // 2))
         rows = np.logical_or(mask[..., 0:ny:2, :nx], mask[..., 1:ny:2, :nx])
         return rows.view(np.uint16) != 0
     out = np.zeros(mask.shape[:-2] + (ny // factor, nx // factor), dtype=bool)
@@ -360,20 +419,24 @@ def bin_mask(mask: np.ndarray, factor: int) -> np.ndarray:
     return out
 
 
-def inner_boundary(mask: np.ndarray) -> np.ndarray:
+def inner_boundary(mask: np.ndarray, ws: "Workspace | None" = None, tag: str = "inner_kept") -> np.ndarray:
     """Pixels of ``mask`` with a 4-neighbour outside it (or on the array border); last two axes.
 
     Equal to ``mask ^ binary_erosion(mask)`` with the cross-shaped structuring element
-    and a False border, computed with shifted views instead of a filter.
+    and a False border, computed with shifted views instead of a filter (``ws`` lends
+    the eroded mask and the result, buffer ``tag``).
     """
-    kept = mask.copy()
+    kept = scratch(ws, tag, mask.shape, bool)
+    np.copyto(kept, mask)
     kept[..., 0, :] = kept[..., -1, :] = False
     kept[..., 0] = kept[..., -1] = False
     kept[..., 1:, :] &= mask[..., :-1, :]
     kept[..., :-1, :] &= mask[..., 1:, :]
     kept[..., 1:] &= mask[..., :-1]
     kept[..., :-1] &= mask[..., 1:]
-    return mask & ~kept
+    np.logical_not(kept, out=kept)
+    kept &= mask
+    return kept
 
 
 def strong_edges(smoothed: np.ndarray, step_hu: float, sigma_px: float) -> np.ndarray:
@@ -598,18 +661,21 @@ def _along(axis: int, index: slice, ndim: int) -> tuple[slice, ...]:
     return tuple(out)
 
 
-def mirror_extend(image: np.ndarray, radius: int, axis: int, mode: str) -> np.ndarray:
+def mirror_extend(image: np.ndarray, radius: int, axis: int, mode: str, ws: "Workspace | None" = None, tag: str = "") -> np.ndarray:
     """``image`` (float32) extended by ``radius`` samples at both ends of ``axis``.
 
     ``mode`` "reflect" repeats the edge sample (``d c b a | a b c d``, scipy.ndimage's
-    "reflect"); "constant" pads with zeros.
+    "reflect"); "constant" pads with zeros. ``ws`` lends the output (name ``tag``).
     """
     nd = image.ndim
     n = image.shape[axis]
     shape = list(image.shape)
     shape[axis] = n + 2 * radius
-    out = np.zeros(shape, dtype=np.float32) if mode == "constant" else np.empty(shape, dtype=np.float32)
+    out = scratch(ws, tag + "ext", tuple(shape))
     out[_along(axis, slice(radius, radius + n), nd)] = image
+    if mode == "constant" and radius > 0:
+        out[_along(axis, slice(0, radius), nd)] = 0.0
+        out[_along(axis, slice(radius + n, None), nd)] = 0.0
     if mode != "constant" and radius > 0:
         out[_along(axis, slice(0, radius), nd)] = image[_along(axis, slice(radius - 1, None, -1), nd)]
         stop = n - radius - 1
@@ -617,13 +683,15 @@ def mirror_extend(image: np.ndarray, radius: int, axis: int, mode: str) -> np.nd
     return out
 
 
-def shift_add_blur(image: np.ndarray, sigma_px: float, truncate: float, mode: str = "reflect") -> np.ndarray:
+def shift_add_blur(image: np.ndarray, sigma_px: float, truncate: float, mode: str = "reflect",
+                   ws: "Workspace | None" = None, tag: str = "blur") -> np.ndarray:
     """Separable sampled-Gaussian blur over the last two axes by shifted adds.
 
     The kernel is :func:`gaussian_taps`; ``mode`` is "reflect" (as
     ``scipy.ndimage.gaussian_filter``'s default) or "constant" (zeros outside). Equal to
     scipy's filter of each slice up to float32 rounding; a kernel longer than a side
-    falls back to scipy.
+    falls back to scipy. With a :class:`Workspace` ``ws`` the result lives in its
+    buffers (name ``tag``) until the next call with that tag.
 
     References
     ----------
@@ -638,11 +706,13 @@ def shift_add_blur(image: np.ndarray, sigma_px: float, truncate: float, mode: st
         if radius > out.shape[axis]:
             out = ndimage.correlate1d(out, np.asarray(taps), axis=axis, mode=mode).astype(np.float32, copy=False)
             continue
-        out = _shift_add_axis(mirror_extend(out, radius, axis, mode), taps, axis, out.shape[axis])
+        sub = f"{tag}{axis}"
+        out = _shift_add_axis(mirror_extend(out, radius, axis, mode, ws, sub), taps, axis, out.shape[axis], ws, sub)
     return out if out is not image else out.copy()
 
 
-def _shift_add_axis(ext: np.ndarray, taps: tuple[float, ...], axis: int, n: int) -> np.ndarray:
+def _shift_add_axis(ext: np.ndarray, taps: tuple[float, ...], axis: int, n: int,
+                    ws: "Workspace | None" = None, tag: str = "") -> np.ndarray:
     """One axis of :func:`shift_add_blur` on the extended array ``ext`` (``n`` outputs per line).
 
     Along the last axis the rows are processed as one flat, contiguous line: output
@@ -658,14 +728,16 @@ def _shift_add_axis(ext: np.ndarray, taps: tuple[float, ...], axis: int, n: int)
     def shifted(k: int) -> np.ndarray:
         return flat[k : k + length] if along_rows else ext[_along(axis, slice(k, k + n), ext.ndim)]
 
-    buf = np.empty(flat.size, dtype=np.float32) if along_rows else None
-    out = buf[:length] if buf is not None else None
-    first = shifted(radius)
-    if out is None:
-        out = first * np.float32(taps[radius])
+    if along_rows:
+        buf = scratch(ws, tag + "flat", (flat.size,))
+        out = buf[:length]
     else:
-        np.multiply(first, np.float32(taps[radius]), out=out)
-    pair = np.empty_like(out)
+        buf = None
+        shape = list(ext.shape)
+        shape[axis] = n
+        out = scratch(ws, tag + "out", tuple(shape))
+    np.multiply(shifted(radius), np.float32(taps[radius]), out=out)
+    pair = scratch(ws, tag + "pair", out.shape)
     for k in range(radius):
         np.add(shifted(k), shifted(2 * radius - k), out=pair)
         pair *= np.float32(taps[k])
@@ -676,38 +748,49 @@ def _shift_add_axis(ext: np.ndarray, taps: tuple[float, ...], axis: int, n: int)
     return buf.reshape(ext.shape)[..., :n]
 
 
-def block_mean_even(values: np.ndarray, factor: int, pad: str) -> np.ndarray:
+def block_mean_even(values: np.ndarray, factor: int, pad: str, ws: "Workspace | None" = None,
+                    tag: str = "bme") -> np.ndarray:
     """Means over ``factor`` x ``factor`` blocks of the last two axes, sides padded to multiples.
 
     ``pad`` "edge" repeats the last row/column, "zero" adds zeros. ``factor`` is a power
     of two; the means are taken by halving the grid repeatedly (pairs of rows, then of
-    columns), which reads the input once.
+    columns, in float32 whatever the input's type), which reads the input once. ``ws``
+    lends the intermediate and final grids (names from ``tag``); the result is then a
+    lent buffer.
     """
     ny, nx = values.shape[-2:]
     py, px = -ny % factor, -nx % factor
-    v = np.asarray(values, dtype=np.float32)
+    v = values
     if py or px:
         widths = [(0, 0)] * (v.ndim - 2) + [(0, py), (0, px)]
-        v = np.pad(v, widths, mode="edge" if pad == "edge" else "constant")
+        v = np.pad(np.asarray(v, dtype=np.float32), widths, mode="edge" if pad == "edge" else "constant")
     f = 1
     while f < factor:
-        v = v[..., 0::2, :] + v[..., 1::2, :]
-        v = v[..., 0::2] + v[..., 1::2]
+        lead, (my, mx) = v.shape[:-2], v.shape[-2:]
+        rows = scratch(ws, f"{tag}r{f}", lead + (my // 2, mx))
+        np.add(v[..., 0::2, :], v[..., 1::2, :], out=rows, dtype=np.float32)
+        v = scratch(ws, f"{tag}c{f}", lead + (my // 2, mx // 2))
+        np.add(rows[..., 0::2], rows[..., 1::2], out=v)
         f *= 2
+    if f == 1:
+        v = np.array(v, dtype=np.float32)
     v *= np.float32(1.0 / (factor * factor))
     return v
 
 
-def upsample_linear(coarse: np.ndarray, factor: int, shape: tuple[int, int]) -> np.ndarray:
+def upsample_linear(coarse: np.ndarray, factor: int, shape: tuple[int, int], ws: "Workspace | None" = None,
+                    tag: str = "up", out: np.ndarray | None = None) -> np.ndarray:
     """Bilinear interpolation of block-centre values back to the pixels of ``shape`` (last two axes).
 
     ``coarse[..., j, i]`` sits at the centre of block (j, i) of ``factor`` pixels a
     side, i.e. at pixel ``factor * j + (factor - 1) / 2``; beyond the first and last
-    centres the edge value is kept.
+    centres the edge value is kept. ``ws`` lends the result and the intermediates
+    (names from ``tag``); ``out``, if given, receives the full ``factor`` times larger
+    grid (of which the ``shape`` part is returned).
     """
-    out = _upsample_axis(coarse, factor, -1)  # along x on the small grid first,
-    out = _upsample_axis(out, factor, -2)  # then whole rows along y
-    return out[..., : shape[0], : shape[1]]
+    rows = _upsample_axis(coarse, factor, -1, ws, tag + "x")  # along x on the small grid first,
+    rows = _upsample_axis(rows, factor, -2, ws, tag + "y", out)  # then whole rows along y
+    return rows[..., : shape[0], : shape[1]]
 
 
 @functools.lru_cache(maxsize=16)
@@ -720,27 +803,33 @@ def _upsample_weights(factor: int) -> tuple[tuple[int, float], ...]:
     return tuple(out)
 
 
-def _upsample_axis(coarse: np.ndarray, factor: int, axis: int) -> np.ndarray:
-    """Linear interpolation along ``axis`` from block centres to the ``factor`` pixels of each block."""
+def _upsample_axis(coarse: np.ndarray, factor: int, axis: int, ws: "Workspace | None" = None, tag: str = "",
+                   out: np.ndarray | None = None) -> np.ndarray:
+    """Linear interpolation along ``axis`` from block centres to the ``factor`` pixels of each block.
+
+    Pixel ``k`` of block ``j`` is ``c[j] + w (c[j -/+ 1] - c[j])`` (``c[j]`` itself past
+    the first and last centres), formed in the output's own memory.
+    """
     c = np.asarray(coarse, dtype=np.float32)
     nd = c.ndim
-    to_prev = np.empty_like(c)
-    to_next = np.empty_like(c)
-    to_prev[_along(axis, slice(0, 1), nd)] = 0.0
-    to_next[_along(axis, slice(-1, None), nd)] = 0.0
-    np.subtract(c[_along(axis, slice(None, -1), nd)], c[_along(axis, slice(1, None), nd)], out=to_prev[_along(axis, slice(1, None), nd)])
-    np.subtract(c[_along(axis, slice(1, None), nd)], c[_along(axis, slice(None, -1), nd)], out=to_next[_along(axis, slice(None, -1), nd)])
     shape = list(c.shape)
     shape[axis] *= factor
-    out = np.empty(shape, dtype=np.float32)
+    if out is None:
+        out = scratch(ws, tag + "out", tuple(shape))
+    head, tail = _along(axis, slice(None, -1), nd), _along(axis, slice(1, None), nd)
+    first, last = _along(axis, slice(0, 1), nd), _along(axis, slice(-1, None), nd)
     for k, (side, w) in enumerate(_upsample_weights(factor)):
         view = out[_along(axis, slice(k, None, factor), nd)]
-        np.multiply(to_prev if side < 0 else to_next, np.float32(w), out=view)
-        view += c
+        inner, edge = (view[tail], first) if side < 0 else (view[head], last)
+        centre = c[tail] if side < 0 else c[head]
+        np.subtract(c[head] if side < 0 else c[tail], centre, out=inner)
+        inner *= np.float32(w)
+        inner += centre
+        view[edge] = c[edge]
     return out
 
 
-def coarse_soft_weight(bad_fraction: np.ndarray, reach_px: float) -> np.ndarray:
+def coarse_soft_weight(bad_fraction: np.ndarray, reach_px: float, ws: "Workspace | None" = None) -> np.ndarray:
     """:func:`soft_weight` on the grid of 2 x 2 blocks, from the fraction of bad pixels per block.
 
     The fraction is blurred by a Gaussian whose variance, together with the block mean
@@ -750,7 +839,7 @@ def coarse_soft_weight(bad_fraction: np.ndarray, reach_px: float) -> np.ndarray:
     """
     f = WEIGHT_BLOCK_PX
     var = (0.5 * reach_px) ** 2 - (f * f - 1) / 12.0 - f * f / 6.0
-    blur = shift_add_blur(bad_fraction, math.sqrt(max(var, 0.01)) / f, 2.5)
+    blur = shift_add_blur(bad_fraction, math.sqrt(max(var, 0.01)) / f, 2.5, ws=ws, tag="blur")
     blur *= np.float32(-20.0)
     blur += np.float32(1.0)
     np.clip(blur, 0.0, 1.0, out=blur)
@@ -776,7 +865,8 @@ def gaussian_matrix(n: int, sigma: float, truncate: float) -> np.ndarray:
     return out
 
 
-def coarse_noise_gain(square_mean: np.ndarray, weight: np.ndarray, scale_hu: np.ndarray | float, sigma_px: float) -> np.ndarray:
+def coarse_noise_gain(square_mean: np.ndarray, weight: np.ndarray, scale_hu: np.ndarray | float, sigma_px: float,
+                      ws: "Workspace | None" = None) -> np.ndarray:
     """:func:`local_noise_gain` on the grid of 2 x 2 blocks, the local RMS taken over 8 x 8 blocks.
 
     ``square_mean`` is the mean of the clipped residual squared per 2 x 2 block and
@@ -793,8 +883,11 @@ def coarse_noise_gain(square_mean: np.ndarray, weight: np.ndarray, scale_hu: np.
        attenuation along each ray).
     """
     k = NOISE_BLOCK_PX // WEIGHT_BLOCK_PX
-    num = block_mean_even(square_mean * (weight * weight), k, "zero")
-    den = block_mean_even(weight, k, "zero")
+    weighted = scratch(ws, "gain_weighted", weight.shape)
+    np.multiply(weight, weight, out=weighted)
+    weighted *= square_mean
+    num = block_mean_even(weighted, k, "zero", ws, "gain_num")
+    den = block_mean_even(weight, k, "zero", ws, "gain_den")
     f = NOISE_BLOCK_PX
     var = sigma_px * sigma_px - (f * f - 1) / 12.0 - f * f / 6.0
     s = math.sqrt(max(var, 0.01)) / f
@@ -808,7 +901,7 @@ def coarse_noise_gain(square_mean: np.ndarray, weight: np.ndarray, scale_hu: np.
     scale = scale.reshape(scale.shape + (1, 1)) if scale.ndim else scale
     np.maximum(num, np.float32(0.25) * scale, out=num)
     gain = np.divide(scale, num, out=num)
-    return upsample_linear(gain, k, weight.shape[-2:])
+    return upsample_linear(gain, k, weight.shape[-2:], ws, "gain_up")
 
 
 def grid_subsample(values: np.ndarray, mask: np.ndarray, max_samples: int, count: int | None = None) -> np.ndarray:
@@ -823,21 +916,23 @@ def grid_subsample(values: np.ndarray, mask: np.ndarray, max_samples: int, count
     return values[::step, ::step][mask[::step, ::step]]
 
 
-def strong_edges_stack(smoothed: np.ndarray, step_hu: float, sigma_px: float) -> np.ndarray:
+def strong_edges_stack(smoothed: np.ndarray, step_hu: float, sigma_px: float, ws: "Workspace | None" = None) -> np.ndarray:
     """:func:`strong_edges` of every slice of a stack (the same differences and threshold)."""
-    gy = np.zeros_like(smoothed)
-    gx = np.zeros_like(smoothed)
+    gy = scratch(ws, "edge_gy", smoothed.shape)
+    gx = scratch(ws, "edge_gx", smoothed.shape)
+    gy[..., 0, :] = gy[..., -1, :] = 0.0
+    gx[..., 0] = gx[..., -1] = 0.0
     np.subtract(smoothed[..., 2:, :], smoothed[..., :-2, :], out=gy[..., 1:-1, :])
     np.subtract(smoothed[..., 2:], smoothed[..., :-2], out=gx[..., 1:-1])
     gy *= gy
     gx *= gx
     gy += gx  # 4 x the squared gradient magnitude
     threshold = step_hu / (max(sigma_px, 0.5) * math.sqrt(2.0 * math.pi))
-    return gy > np.float32(4.0 * threshold * threshold)
+    return np.greater(gy, np.float32(4.0 * threshold * threshold), out=scratch(ws, "edge_out", gy.shape, bool))
 
 
 def screen_textures(images: np.ndarray, allowed: np.ndarray, cfg: dict[str, Any],
-                    all_finite: np.ndarray | None = None) -> tuple[np.ndarray, np.ndarray]:
+                    all_finite: np.ndarray | None = None, ws: Workspace | None = None) -> tuple[np.ndarray, np.ndarray]:
     """The screen's edge-suppressed, clipped, noise-equalised residual of each binned slice of a stack.
 
     ``images`` is ``(k, ny, nx)``, ``allowed`` the same shape (bool); ``all_finite``
@@ -849,6 +944,8 @@ def screen_textures(images: np.ndarray, allowed: np.ndarray, cfg: dict[str, Any]
     value and the noise scale of each slice from a sub-grid of at most
     :data:`ROBUST_SAMPLES` pixels. Returns the ``(k, ny, nx)`` textures and, per
     slice, whether it has enough pixels left (its texture is meaningless otherwise).
+    With a :class:`Workspace` ``ws`` the textures are one of its buffers (valid until
+    its next stack).
     """
     k = images.shape[0]
     min_count = cfg["min_weight_fraction"] * images[0].size
@@ -858,6 +955,7 @@ def screen_textures(images: np.ndarray, allowed: np.ndarray, cfg: dict[str, Any]
     n_valid = np.count_nonzero(valid.reshape(k, -1), axis=1)
     usable = n_valid >= min_count
     img = images
+    residual = scratch(ws, "tex_residual", images.shape)
     if int(n_valid.min()) < valid[0].size:
         fill = np.zeros((k, 1, 1), dtype=np.float32)
         for i in range(k):
@@ -865,22 +963,21 @@ def screen_textures(images: np.ndarray, allowed: np.ndarray, cfg: dict[str, Any]
                 sample = grid_subsample(images[i], valid[i], FILL_SAMPLES)
                 fill[i] = np.median(sample) if sample.size else np.median(images[i][valid[i]])
         if all(all_finite):  # image - (image - fill) * ~valid, three cheap passes
-            img = np.subtract(images, fill, dtype=np.float32)
+            img = np.subtract(images, fill, dtype=np.float32, out=residual)  # the residual replaces it below
             img *= valid
             img += fill
         else:
             img = np.where(valid, images, fill)
     sigma = float(cfg["highpass_sigma_px"])
     f = WEIGHT_BLOCK_PX
-    residual = np.empty(img.shape, dtype=np.float32)
-    fraction = []
+    fraction = scratch(ws, "tex_fraction", (k,) + tuple(-(-n // f) for n in img.shape[-2:]))
     for i in range(k):  # slice by slice: the full-grid arrays of one slice stay in cache
-        smoothed = shift_add_blur(img[i], sigma, 3.0)
+        smoothed = shift_add_blur(img[i], sigma, 3.0, ws=ws, tag="blur")  # reads img[i] first
         np.subtract(img[i], smoothed, out=residual[i])
-        bad = strong_edges_stack(smoothed, float(cfg["edge_step_hu"]), sigma)
-        bad |= ~valid[i]
-        fraction.append(block_mean_even(bad.view(np.uint8), f, "edge"))
-    weight = coarse_soft_weight(np.stack(fraction), 2.0 * sigma + 2.0)
+        edges = strong_edges_stack(smoothed, float(cfg["edge_step_hu"]), sigma, ws)
+        bad = np.less_equal(valid[i], edges, out=edges)  # an edge or not valid (booleans)
+        fraction[i] = block_mean_even(bad.view(np.uint8), f, "edge", ws, "frac")
+    weight = coarse_soft_weight(fraction, 2.0 * sigma + 2.0, ws)
     inside = weight > 0.5
     n_inside = np.count_nonzero(inside.reshape(k, -1), axis=1)
     scale = np.ones(k, dtype=np.float64)
@@ -896,8 +993,13 @@ def screen_textures(images: np.ndarray, allowed: np.ndarray, cfg: dict[str, Any]
     np.maximum(residual, -limit, out=residual)
     reach_eq = float(cfg["noise_equalise_sigma_px"])
     if reach_eq > 0:
-        weight = weight * coarse_noise_gain(block_mean_even(residual * residual, f, "edge"), weight, scale, reach_eq)
-    residual *= upsample_linear(weight, f, residual.shape[-2:])
+        squares = scratch(ws, "tex_squares", weight.shape)
+        for i in range(k):  # slice by slice (full-grid temporaries of one slice)
+            one = np.multiply(residual[i], residual[i], out=scratch(ws, "tex_slice", residual.shape[-2:]))
+            squares[i] = block_mean_even(one, f, "edge", ws, "sq")
+        weight *= coarse_noise_gain(squares, weight, scale, reach_eq, ws)
+    for i in range(k):
+        residual[i] *= upsample_linear(weight[i], f, residual.shape[-2:], ws, "wt")
     return residual, usable
 
 
@@ -907,17 +1009,18 @@ def screen_texture(image: np.ndarray, allowed: np.ndarray, cfg: dict[str, Any]) 
     return textures[0] if usable[0] else None
 
 
-def cell_powers(spectra: np.ndarray, bins: SpectralBins) -> np.ndarray:
+def cell_powers(spectra: np.ndarray, bins: SpectralBins, ws: Workspace | None = None) -> np.ndarray:
     """Summed |F|^2 of the in-band samples per (ring, orientation) cell: ``(k, n_rings, n_bins)``.
 
     ``spectra`` are rfft2 spectra ``(k, ny, nx // 2 + 1)``; one sparse product with the
-    cell-membership matrix of ``bins`` per spectrum (float64 sums).
+    cell-membership matrix of ``bins`` per spectrum (float64 sums). ``ws`` lends the
+    squares.
     """
     out = np.empty((spectra.shape[0], bins.n_rings, bins.n_bins), dtype=np.float64)
     for i, spectrum in enumerate(spectra):
         v = spectrum.view(np.float32)
-        sq = v * v
-        power = np.add(sq[:, 0::2], sq[:, 1::2]).ravel()
+        sq = np.multiply(v, v, out=scratch(ws, "cell_sq", v.shape))
+        power = np.add(sq[:, 0::2], sq[:, 1::2], out=scratch(ws, "cell_power", spectrum.shape)).ravel()
         out[i] = (bins.cell_matrix @ power).reshape(bins.n_rings, bins.n_bins)
     return out
 
@@ -1381,22 +1484,30 @@ class AllowedMasks:
             allowed &= ~inner_boundary(body)
         return allowed
 
-    def stack(self, z0: int, z1: int) -> np.ndarray:
-        """The masks of slices ``z0`` to ``z1 - 1`` as one ``(k, ny_b, nx_b)`` array (the same masks)."""
+    def stack(self, z0: int, z1: int, ws: "Workspace | None" = None) -> np.ndarray:
+        """The masks of slices ``z0`` to ``z1 - 1`` as one ``(k, ny_b, nx_b)`` array (the same masks).
+
+        With a :class:`Workspace` ``ws`` the masks are one of its buffers (valid until
+        its next stack).
+        """
         k = z1 - z0
-        allowed = np.repeat(self.base[None], k, axis=0)
+        allowed = scratch(ws, "masks_allowed", (k,) + self.base.shape, bool)
+        allowed[...] = self.base
         regions = self.regions
         if regions is None:
             return allowed
-        tables = regions.table[z0:z1]
-        for i in np.flatnonzero(tables.reshape(k, -1).any(axis=1)):
-            table = bin_mask(tables[i], self.factor)
+        # the binned masks and the eroded body lend the buffers of the slab means and the
+        # residual: those are not in use while a stack's masks are formed
+        binned = bin_mask(regions.table[z0:z1], self.factor, ws, "tex_residual")  # one pass for the stack
+        for i in np.flatnonzero(binned.reshape(k, -1).any(axis=1)):
+            table = binned[i]
             key = np.packbits(table).tobytes()
             excluded = self._tables.get(key)
             if excluded is None:
                 excluded = self._tables.setdefault(key, table_exclusion(table, int(self.cfg["table_band_px"])))
             allowed[i] &= ~excluded
-        allowed &= ~inner_boundary(bin_mask(regions.body[z0:z1], self.factor))
+        outline = inner_boundary(bin_mask(regions.body[z0:z1], self.factor, ws, "tex_residual"), ws, "slab_means")
+        allowed &= np.logical_not(outline, out=outline)
         return allowed
 
 
@@ -1535,13 +1646,17 @@ def screen_volume(volume: Volume, regions: Regions | None, cfg: dict[str, Any]) 
     slab = min(slab_size(volume.spacing_mm[0], cfg), nz)
     per_task = SCREEN_STACK * slab
     starts = list(range(0, nz, per_task))
+    workspaces = threading.local()  # one Workspace per screening thread, for this volume
 
     def one(i: int) -> list[np.ndarray | str]:
+        ws = getattr(workspaces, "ws", None)
+        if ws is None:
+            ws = workspaces.ws = Workspace()
         z0, z1 = starts[i], min(starts[i] + per_task, nz)
-        allowed = masks.stack(z0, z1)
+        allowed = masks.stack(z0, z1, ws)
         if slab == 1:
-            return screen_stack(volume.hu[z0:z1], allowed, factor, bins, cfg)
-        return screen_slab_stack(volume.hu[z0:z1], allowed, factor, bins, cfg, slab)
+            return screen_stack(volume.hu[z0:z1], allowed, factor, bins, cfg, ws)
+        return screen_slab_stack(volume.hu[z0:z1], allowed, factor, bins, cfg, slab, ws)
 
     outcomes = [o for stack in map_slices(one, len(starts), SCREEN_THREADS) for o in stack]
     profiles: dict[int, np.ndarray] = {}
@@ -1611,7 +1726,8 @@ def screen_slice(image: np.ndarray, allowed: np.ndarray, factor: int, bins: Spec
     return screen_stack(image[None], allowed[None], factor, bins, cfg)[0]
 
 
-def screen_stack(images: np.ndarray, allowed: np.ndarray, factor: int, bins: SpectralBins, cfg: dict[str, Any]) -> list[np.ndarray | str]:
+def screen_stack(images: np.ndarray, allowed: np.ndarray, factor: int, bins: SpectralBins, cfg: dict[str, Any],
+                 ws: Workspace | None = None) -> list[np.ndarray | str]:
     """:func:`screen_slice` of every full-resolution slice of a ``(k, ny, nx)`` stack.
 
     ``allowed`` is the ``(k, ny_b, nx_b)`` stack of binned masks. The slices are binned,
@@ -1634,26 +1750,27 @@ def screen_stack(images: np.ndarray, allowed: np.ndarray, factor: int, bins: Spe
         return outcomes
     if len(keep) < k:
         binned, allowed, finite = binned[keep], allowed[keep], finite[keep]
-    textures, usable = screen_textures(binned, allowed, cfg, finite)
-    for j, profile in profiles_of_textures(textures, usable, bins):
+    textures, usable = screen_textures(binned, allowed, cfg, finite, ws)
+    for j, profile in profiles_of_textures(textures, usable, bins, ws):
         outcomes[keep[j]] = profile
     return outcomes
 
 
-def profiles_of_textures(textures: np.ndarray, usable: Any, bins: SpectralBins) -> list[tuple[int, np.ndarray]]:
-    """(index, angular profile) of every usable texture of a stack that has one: one
-    batched FFT of the usable textures, then each one's cells summed into its profile."""
+def profiles_of_textures(textures: np.ndarray, usable: Any, bins: SpectralBins,
+                         ws: Workspace | None = None) -> list[tuple[int, np.ndarray]]:
+    """(index, angular profile) of every usable texture of a stack that has one: the FFT
+    of each usable texture (one at a time, the spectrum stays small), its cells summed
+    into its profile."""
     good = [j for j in range(len(textures)) if usable[j]]
     if not good:
         return []
-    stack = textures if len(good) == len(textures) else textures[good]
-    cells = cell_powers(sfft.rfft2(stack, axes=(-2, -1)), bins)
+    cells = [cell_powers(sfft.rfft2(textures[j:j + 1], axes=(-2, -1), overwrite_x=True), bins, ws)[0] for j in good]
     found = [(j, profile_of_cells(c, bins)) for j, c in zip(good, cells)]
     return [(j, profile) for j, profile in found if profile is not None]
 
 
 def screen_slab_stack(images: np.ndarray, allowed: np.ndarray, factor: int, bins: SpectralBins,
-                      cfg: dict[str, Any], slab: int) -> list[np.ndarray | str]:
+                      cfg: dict[str, Any], slab: int, ws: Workspace | None = None) -> list[np.ndarray | str]:
     """Outcome of every slice of a ``(k, ny, nx)`` stack screened in slabs of ``slab`` slices.
 
     Each slice is checked as in :func:`screen_stack` (a finite, non-constant sub-grid of
@@ -1661,7 +1778,8 @@ def screen_slab_stack(images: np.ndarray, allowed: np.ndarray, factor: int, bins
     and pixels decide); a slab's image is the block mean over its usable slices, binned
     in one pass (:func:`bin_slab`), and its mask the intersection of their masks (every
     slice's table and body outline stay left out). The slab's profile is the outcome of
-    each of its usable slices; unusable slices keep their reason.
+    each of its usable slices; unusable slices keep their reason. ``ws`` lends the
+    stack's temporaries.
     """
     k = images.shape[0]
     outcomes: list[np.ndarray | str] = ["without usable pixels"] * k
@@ -1678,11 +1796,17 @@ def screen_slab_stack(images: np.ndarray, allowed: np.ndarray, factor: int, bins
             members.append(keep)
     if not members:
         return outcomes
-    means = np.stack([bin_slab(images, m, factor) for m in members])
-    masks = np.stack([np.logical_and.reduce(allowed[m], axis=0) for m in members])
-    high, low = means.reshape(len(members), -1).max(axis=1), means.reshape(len(members), -1).min(axis=1)
-    textures, usable = screen_textures(means, masks, cfg, np.isfinite(high) & np.isfinite(low))
-    for j, profile in profiles_of_textures(textures, usable, bins):
+    n = len(members)
+    means = scratch(ws, "slab_means", (n,) + tuple(s // factor for s in images.shape[-2:]))
+    masks = scratch(ws, "slab_masks", (n,) + allowed.shape[-2:], bool)
+    for j, m in enumerate(members):
+        bin_slab(images, m, factor, out=means[j], ws=ws)
+        np.copyto(masks[j], allowed[m[0]])
+        for i in m[1:]:
+            masks[j] &= allowed[i]
+    high, low = means.reshape(n, -1).max(axis=1), means.reshape(n, -1).min(axis=1)
+    textures, usable = screen_textures(means, masks, cfg, np.isfinite(high) & np.isfinite(low), ws)
+    for j, profile in profiles_of_textures(textures, usable, bins, ws):
         for i in members[j]:
             outcomes[i] = profile
     return outcomes
@@ -1706,29 +1830,41 @@ def unusable_slice(image: np.ndarray, factor: int) -> str | None:
     return _unusable(bin_slice(image, factor), image)
 
 
-def bin_slab(images: np.ndarray, members: list[int], factor: int) -> np.ndarray:
+def bin_slab(images: np.ndarray, members: list[int], factor: int, out: np.ndarray | None = None,
+             ws: Workspace | None = None) -> np.ndarray:
     """Mean over ``factor`` x ``factor`` blocks and over the slices ``members`` of ``images``.
 
-    One pass: the rows of every member slice are summed into one array of row sums,
-    then its columns; float32 sums (the same mean as :func:`bin_slice` of each slice
-    followed by :func:`slab_mean`, up to rounding).
+    One pass over the members: their pixels are summed into full-resolution float32
+    rows (contiguous adds, the fastest way through the volume, :data:`SLAB_SUM_ROWS`
+    rows at a time), which are then binned (:func:`bin_slice`); the same mean as :func:`bin_slice` of each slice
+    followed by :func:`slab_mean`, up to float32 rounding. ``out`` receives the mean
+    (a new array otherwise); ``ws`` lends the full-resolution sum.
     """
     if factor == 1:
-        return slab_mean(images, members)
-    ny, nx = (n // factor * factor for n in images.shape[-2:])
-    rows = None
-    for m in members:
-        for dy in range(factor):
-            part = images[m, dy:ny:factor, :nx]
-            if rows is None:
-                rows = part.astype(np.float32, copy=True)
-            else:
-                rows += part
-    out = np.add(rows[:, 0::factor], rows[:, 1::factor])
-    for dx in range(2, factor):
-        out += rows[:, dx::factor]
-    out *= np.float32(1.0 / (factor * factor * len(members)))
+        mean = slab_mean(images, members)
+        if out is None:
+            return mean
+        out[...] = mean
+        return out
+    if len(members) == 1:
+        return bin_slice(images[members[0]], factor, out, ws)
+    ny, nx = images.shape[-2:]
+    if out is None:
+        out = np.empty((ny // factor, nx // factor), dtype=np.float32)
+    step = max(1, SLAB_SUM_ROWS // factor) * factor  # rows summed at a time (they stay in cache)
+    for r0 in range(0, ny // factor * factor, step):
+        r1 = min(r0 + step, ny // factor * factor)
+        total = np.add(images[members[0], r0:r1], images[members[1], r0:r1], dtype=np.float32,
+                       out=scratch(ws, "slab_total", (r1 - r0, nx)))
+        for m in members[2:]:
+            total += images[m, r0:r1]
+        bin_slice(total, factor, out[r0 // factor : r1 // factor], ws)
+    out *= np.float32(1.0 / len(members))
     return out
+
+
+#: full-resolution rows of a slab summed at a time by :func:`bin_slab`
+SLAB_SUM_ROWS = 64
 
 
 def slab_mean(binned: np.ndarray, members: list[int]) -> np.ndarray:
