@@ -529,17 +529,18 @@ def refine_circle_centres(
     if inside_hu == outside_hu or n == 0:
         return np.stack([cy, cx], axis=1)
     window = radius_px + reach_px
-    yy, xx, _ = _pixels_near(images[0], (cy[0], cx[0]), window + 2.0)
-    values = _stack_pixels_near(images, (cy[0], cx[0]), window + 2.0)
+    yy, xx, values = _stack_pixels_near(images, (cy[0], cx[0]), window + 2.0)
     weights = np.clip((values - outside_hu) / (inside_hu - outside_hu), 0.0, 1.0)
     active = np.ones(n, dtype=bool)
     alone = np.zeros(n, dtype=bool)
     for _ in range(iterations):
-        rows = np.nonzero(active)[0]
+        rows = np.flatnonzero(active)
         if rows.size == 0:
             break
-        inside = (yy[None] - cy[rows, None]) ** 2 + (xx[None] - cx[rows, None]) ** 2 <= window**2
-        w = np.where(inside, weights[rows], 0.0)
+        every = rows.size == n  # all still moving: no row selection (no copies)
+        ry, rx = (cy[:, None], cx[:, None]) if every else (cy[rows, None], cx[rows, None])
+        inside = (yy[None] - ry) ** 2 + (xx[None] - rx) ** 2 <= window**2
+        w = np.where(inside, weights if every else weights[rows], 0.0)
         total = w.sum(axis=1)
         stop = total <= 0
         active[rows[stop]] = False
@@ -557,14 +558,16 @@ def refine_circle_centres(
     return np.stack([cy, cx], axis=1)
 
 
-def _stack_pixels_near(images: np.ndarray, centre: tuple[float, float], reach: float) -> np.ndarray:
-    """Values (n, m) of the pixels :func:`_pixels_near` takes, for every image of a stack."""
+def _stack_pixels_near(images: np.ndarray, centre: tuple[float, float], reach: float
+                       ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Row and column indices (float) of the pixels :func:`_pixels_near` takes, and their
+    values (n, m) in every image of a stack."""
     y0, x0 = max(int(math.floor(centre[0] - reach)), 0), max(int(math.floor(centre[1] - reach)), 0)
     y1 = min(int(math.ceil(centre[0] + reach)) + 1, images.shape[1])
     x1 = min(int(math.ceil(centre[1] + reach)) + 1, images.shape[2])
     yy, xx = np.mgrid[y0:y1, x0:x1].astype(float)
     near = (yy - centre[0]) ** 2 + (xx - centre[1]) ** 2 <= reach**2
-    return images[:, y0:y1, x0:x1][:, near].astype(float)
+    return yy[near], xx[near], images[:, y0:y1, x0:x1][:, near].astype(float)
 
 
 def _pixels_near(image: np.ndarray, centre: tuple[float, float], reach: float

@@ -182,6 +182,11 @@ class Insert:
     radius_mm: float
     source: str  # "auto", "centre", "roi"
     limit: tuple[int, int, int, int] | None = None  # (y0, x0, y1, x1) the user's ROI
+    #: A contiguous copy of the pixels about the rod read while its slices were found:
+    #: (first slice, first row, first column, float32 (z, y, x) block), so that
+    #: :func:`measure_circular_edge` takes its crop from it instead of reading the
+    #: volume's strided slices again (the same pixel values); None when not taken.
+    pixels: tuple[int, int, int, np.ndarray] | None = field(default=None, compare=False, repr=False)
 
 
 def find_rod_inserts(volume: Volume, regions: Regions, settings: dict[str, Any] | None = None, *,
@@ -238,7 +243,8 @@ def find_rod_inserts(volume: Volume, regions: Regions, settings: dict[str, Any] 
                     continue
                 comp_yx = np.nonzero(lab[sl] == i)
                 at = (comp_yx[0] + sl[0].start) * f + by0, (comp_yx[1] + sl[1].start) * f + bx0
-                found = _insert_at_full_resolution(volume.hu, zs, at, sign, median_hu, centre, radius, mid, px, s)
+                found = _insert_at_full_resolution(volume.hu, zs, at, sign, median_hu, centre, radius, mid, px, s,
+                                                   window=(z0 - step, z1 + step))
                 if found is not None:
                     inserts.append(found)
     inserts.sort(key=lambda r: (r.z0, r.centre_yx_vox[0], r.centre_yx_vox[1]))
@@ -263,7 +269,7 @@ def _may_be_insert(comp: np.ndarray, f: int, px: float, s: dict[str, Any]) -> bo
 
 def _insert_at_full_resolution(hu: np.ndarray, zs: slice, at: tuple[np.ndarray, np.ndarray], sign: float,
                                median_hu: float, centre: Sequence[float], radius: float, mid: int, px: float,
-                               s: dict[str, Any]) -> Insert | None:
+                               s: dict[str, Any], window: tuple[int, int] | None = None) -> Insert | None:
     """The insert a screen component (pixels ``at``, full-resolution indices) stands for:
     the slice mean over ``zs`` on a crop about the component, smoothed by 1 mm (the crop
     grown by the kernel's reach, so its values are those of the whole image), thresholded
@@ -286,7 +292,7 @@ def _insert_at_full_resolution(hu: np.ndarray, zs: slice, at: tuple[np.ndarray, 
     j = 1 + int(np.argmax(votes))
     sl = ndimage.find_objects(lab, max_label=j)[j - 1]
     full = (slice(sl[0].start + y0, sl[0].stop + y0), slice(sl[1].start + x0, sl[1].stop + x0))
-    return _insert_from_component(hu, dev[sl], lab[sl] == j, full, mid, px, s)
+    return _insert_from_component(hu, dev[sl], lab[sl] == j, full, mid, px, s, window=window)
 
 
 #: Largest distance (mm) between the slices of the decimated phantom search that
@@ -354,8 +360,9 @@ def _disc(shape: tuple[int, int], centre: Sequence[float], radius: float) -> np.
 
 
 def _insert_from_component(hu: np.ndarray, dev: np.ndarray, comp: np.ndarray, sl: tuple[slice, ...], z: int,
-                           px: float, s: dict[str, Any]) -> Insert | None:
-    """An Insert if the 2-D component is a disc of the allowed size; its slices from ``z``.
+                           px: float, s: dict[str, Any], window: tuple[int, int] | None = None) -> Insert | None:
+    """An Insert if the 2-D component is a disc of the allowed size; its slices from ``z``
+    (looked at first over ``window``, the slices the phantom search saw it on).
 
     The disc is re-thresholded at half its own contrast (``dev``: smoothed departure from
     the phantom, sign made positive) so that its radius does not grow with contrast.
@@ -363,59 +370,134 @@ def _insert_from_component(hu: np.ndarray, dev: np.ndarray, comp: np.ndarray, sl
     (cy, cx), r_eq, _ = disc_of(comp)
     core = dev[_disc(comp.shape, (cy, cx), 0.5 * r_eq) & comp]
     if core.size:
-        half = comp & (dev > 0.5 * float(np.median(core)))
+        half = comp & (dev > 0.5 * _edges._median(core))
         if half.any():
-            comp = ndimage.binary_fill_holes(half)
+            comp = _fill_holes(half)
     (cy, cx), r_eq, fill = disc_of(comp)
     diameter = 2.0 * r_eq * px
     if fill < 0.7 or not s["min_insert_diameter_mm"] <= diameter <= s["max_insert_diameter_mm"]:
         return None
     centre = (cy + sl[0].start, cx + sl[1].start)
-    z0, z1 = _slices_of_rod(hu, z, centre, r_eq)
-    return Insert(z0, z1, centre, r_eq * px, "auto")
+    ins = Insert(0, 0, centre, r_eq * px, "auto")
+    block = _copy_about_rod(hu, centre, _measure_half_px(ins, px, s), 2.2 * r_eq, window or (z, z))
+    ins.z0, ins.z1 = _slices_of_rod(hu, z, centre, r_eq, window=window, pixels=block)
+    ins.pixels = block
+    return ins
+
+
+def _fill_holes(mask: np.ndarray) -> np.ndarray:
+    """``ndimage.binary_fill_holes(mask)`` of a 2-D mask from one labelling: the pixels
+    outside ``mask`` not 4-connected to the image border are holes (the same mask,
+    checked on 2000 random masks)."""
+    lab, n = ndimage.label(~mask)
+    outside = np.zeros(n + 1, dtype=bool)
+    outside[lab[0]] = outside[lab[-1]] = outside[lab[:, 0]] = outside[lab[:, -1]] = True
+    outside[0] = False
+    return ~outside[lab]
+
+
+def _measure_half_px(insert: Insert, px: float, s: dict[str, Any]) -> float:
+    """Half-size (px) of the square crop :func:`measure_circular_edge` reads about a rod."""
+    half_mm = min(float(s["esf_half_range_mm"]), 0.9 * insert.radius_mm)
+    return insert.radius_mm / px + half_mm / px + 3
+
+
+def _copy_about_rod(hu: np.ndarray, centre: Sequence[float], measure_half: float, ring_half: float,
+                    window: tuple[int, int]) -> tuple[int, int, int, np.ndarray]:
+    """A contiguous copy of the slices ``window`` (inclusive, clipped) of the square
+    about ``centre`` that holds both the slice-extent crop (half ``ring_half``) and the
+    measurement crop (half ``measure_half``), one pixel wider: (z0, y0, x0, block)."""
+    nz = hu.shape[0]
+    z0, z1 = max(0, int(window[0])), min(nz - 1, int(window[1]))
+    y0, x0, crop = _crop(hu[z0 : z1 + 1], centre, max(measure_half, ring_half) + 1.0)
+    return z0, y0, x0, np.ascontiguousarray(crop)
+
+
+def _crop_from(pixels: tuple[int, int, int, np.ndarray] | None, hu: np.ndarray, z0: int, z1: int,
+               centre: Sequence[float], half: float) -> tuple[int, int, np.ndarray]:
+    """:func:`_crop` of slices ``z0``..``z1`` of ``hu``, taken from ``pixels`` (a copy of
+    part of ``hu``, :attr:`Insert.pixels`) when it holds them all, else from ``hu``."""
+    y0, x0, view = _crop(hu[z0 : z1 + 1], centre, half)
+    at = _place_in(pixels, z0, y0, x0, view.shape)
+    if at is None:
+        return y0, x0, view
+    block = pixels[3]  # type: ignore[index]
+    return y0, x0, block[at[0] : at[0] + view.shape[0], at[1] : at[1] + view.shape[1], at[2] : at[2] + view.shape[2]]
+
+
+def _place_in(pixels: tuple[int, int, int, np.ndarray] | None, z0: int, y0: int, x0: int,
+              shape: tuple[int, ...]) -> tuple[int, int, int] | None:
+    """Where the box of ``shape`` at (``z0``, ``y0``, ``x0``) of the volume starts in the
+    block of ``pixels``, or None when the block does not hold all of it."""
+    if pixels is None:
+        return None
+    pz, py, px_, block = pixels
+    zs, ys, xs = z0 - pz, y0 - py, x0 - px_
+    if min(zs, ys, xs) < 0 or zs + shape[0] > block.shape[0] or ys + shape[1] > block.shape[1] \
+            or xs + shape[2] > block.shape[2]:
+        return None
+    return zs, ys, xs
 
 
 def _slices_of_rod(hu: np.ndarray, z: int, centre: tuple[float, float], r_px: float,
-                   keep: float = 0.75, chunk: int = 16) -> tuple[int, int]:
+                   keep: float = 0.75, chunk: int = 16, window: tuple[int, int] | None = None,
+                   pixels: tuple[int, int, int, np.ndarray] | None = None) -> tuple[int, int]:
     """Extend from slice ``z`` while the disc keeps at least ``keep`` of its contrast to its
     ring (mean inside 0.6 r minus mean of the ring 1.4 r .. 2 r).
 
-    The contrasts are computed ``chunk`` slices at a time from one crop about the rod,
-    each as one weighted sum of the crop's pixels (weights 1/n inside, -1/n on the
-    ring, float64): the same means as slice by slice, without copying the pixels out.
+    The contrasts are computed first over ``window`` (the slices the rod is expected on,
+    inclusive; default: ``chunk`` slices from ``z``), then ``chunk`` slices at a time
+    beyond it while the disc keeps its contrast. Each contrast is one weighted sum of
+    the pixels inside and on the ring (weights 1/n inside, -1/n on the ring, float64),
+    taken out of the slices with one gather per batch of slices: the same means as
+    slice by slice, without reading the rest of the crop. Slices held by ``pixels`` (a
+    copy of part of ``hu``, see :func:`_copy_about_rod`) are read from it.
     """
     y0, x0, crop = _crop(hu, centre, 2.2 * r_px)
-    d = np.hypot(*(np.indices(crop.shape[1:]) - np.array([centre[0] - y0, centre[1] - x0])[:, None, None]))
+    ny, nx = crop.shape[1:]
+    d = np.hypot((np.arange(ny) - (centre[0] - y0))[:, None], (np.arange(nx) - (centre[1] - x0))[None, :])
     inside, ring = d <= 0.6 * r_px, (d >= 1.4 * r_px) & (d <= 2.0 * r_px)
     if not inside.any() or not ring.any():
         return z, z
     weights = inside / float(inside.sum()) - ring / float(ring.sum())
+    iy, ix = np.nonzero(weights)
+    w = weights[iy, ix]
 
     def contrasts(k0: int, k1: int) -> np.ndarray:
-        return np.einsum("kyx,yx->k", crop[k0:k1], weights)
+        at = _place_in(pixels, k0, y0, x0, (k1 - k0, ny, nx))
+        if at is None:
+            return crop[k0:k1, iy, ix].astype(np.float64) @ w
+        block = pixels[3]  # type: ignore[index]
+        flat = block.reshape(block.shape[0], -1)[at[0] : at[0] + k1 - k0]
+        return flat.take((iy + at[1]) * block.shape[2] + ix + at[2], axis=1).astype(np.float64) @ w
 
     nz = hu.shape[0]
-    up = contrasts(z, min(z + chunk, nz))
-    c0 = float(up[0])
+    lo_w, hi_w = (z, min(z + chunk, nz) - 1) if window is None else window
+    lo_w, hi_w = max(0, min(int(lo_w), z)), min(nz - 1, max(int(hi_w), z))
+    first = contrasts(lo_w, hi_w + 1)
+    c0 = float(first[z - lo_w])
     if c0 == 0 or not np.isfinite(c0):
         return z, z
-    hi, ok = z, up[1:] / c0 >= keep
+    ok = first / c0 >= keep
+    hi, up = z, ok[z - lo_w + 1 :]
     while True:
-        if not ok.all():
-            hi += int(np.argmin(ok))
+        if not up.all():
+            hi += int(np.argmin(up))
             break
-        hi += ok.size
+        hi += up.size
         if hi + 1 >= nz:
             break
-        ok = contrasts(hi + 1, min(hi + 1 + chunk, nz)) / c0 >= keep
-    lo = z
-    while lo - 1 >= 0:
-        start = max(lo - chunk, 0)
-        ok = (contrasts(start, lo) / c0 >= keep)[::-1]
-        if not ok.all():
-            lo -= int(np.argmin(ok))
+        up = contrasts(hi + 1, min(hi + 1 + chunk, nz)) / c0 >= keep
+    lo, down = z, ok[: z - lo_w][::-1]
+    while True:
+        if not down.all():
+            lo -= int(np.argmin(down))
             break
-        lo -= ok.size
+        lo -= down.size
+        if lo - 1 < 0:
+            break
+        start = max(lo - chunk, 0)
+        down = (contrasts(start, lo) / c0 >= keep)[::-1]
     return lo, hi
 
 
@@ -512,8 +594,8 @@ def measure_circular_edge(
     px = 0.5 * (sy + sx)
     r_px = insert.radius_mm / px
     half_mm = min(float(s["esf_half_range_mm"]), 0.9 * insert.radius_mm)
-    stack = volume.hu[insert.z0 : insert.z1 + 1]
-    y0, x0, crop = _crop(stack, insert.centre_yx_vox, r_px + half_mm / px + 3)
+    y0, x0, crop = _crop_from(insert.pixels, volume.hu, insert.z0, insert.z1, insert.centre_yx_vox,
+                              r_px + half_mm / px + 3)
     crop = np.ascontiguousarray(crop)  # one read of the rod's pixels; every later pass runs on this copy
     free = _free_mask(crop.shape[1:], (y0, x0), volume.hu.shape[1:], insert, others, allowed, px)
     c_local = (insert.centre_yx_vox[0] - y0, insert.centre_yx_vox[1] - x0)
@@ -647,7 +729,11 @@ def _free_mask(shape: tuple[int, int], origin: tuple[int, int], full_shape: tupl
         if other is insert:
             continue
         c = (other.centre_yx_vox[0] - y0, other.centre_yx_vox[1] - x0)
-        free &= ~_disc(shape, c, other.radius_mm / px + 1.0 / px)
+        r = other.radius_mm / px + 1.0 / px
+        # nearest crop pixel to the other disc's centre: a disc that misses it misses the crop
+        gy, gx = max(-c[0], 0.0, c[0] - (shape[0] - 1)), max(-c[1], 0.0, c[1] - (shape[1] - 1))
+        if gy * gy + gx * gx <= r * r:
+            free &= ~_disc(shape, c, r)
     # the crop itself ends at the image border: mark the border ring as not free
     edge = np.zeros(shape, dtype=bool)
     if y0 == 0 or x0 == 0 or y0 + shape[0] >= full_shape[0] or x0 + shape[1] >= full_shape[1]:
