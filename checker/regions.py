@@ -568,20 +568,27 @@ def block_patterns(hu: np.ndarray, fov2d: np.ndarray, threshold_hu: float, chunk
     by, bx = ny // BLOCK, nx // BLOCK
     buf = np.empty((chunk, ny, nx), dtype=bool)
     out = np.empty((nz, by, bx), dtype=np.uint16)
-    gather = np.uint32(0x01020408)  # byte k (bit 8 k) -> bit 24 + k
+    inside = _row_patterns(np.ascontiguousarray(fov2d, dtype=bool)[None], by, bx)[0]  # the field of view, per block
     for z0 in range(0, nz, chunk):
         part = buf[: min(chunk, nz - z0)]
         np.greater(hu[z0 : z0 + part.shape[0]], threshold_hu, out=part)
-        part &= fov2d
-        words = part.view(np.uint32).reshape(part.shape[0], by, BLOCK, bx)  # four pixels along x per word
-        acc = np.zeros((part.shape[0], by, bx), dtype=np.uint32)
-        for r in range(BLOCK):
-            row = words[:, :, r] * gather
-            row >>= np.uint32(24 - 4 * r)
-            row &= np.uint32(0xF << (4 * r))
-            acc |= row
+        acc = _row_patterns(part, by, bx)
+        acc &= inside  # pixel by pixel: threshold AND field of view
         out[z0 : z0 + part.shape[0]] = acc
     return out
+
+
+def _row_patterns(part: np.ndarray, by: int, bx: int) -> np.ndarray:
+    """Block patterns (uint32 holding 16 bits) of the C-contiguous bool slices ``part``."""
+    gather = np.uint32(0x01020408)  # byte k (bit 8 k) -> bit 24 + k
+    words = part.view(np.uint32).reshape(part.shape[0], by, BLOCK, bx)  # four pixels along x per word
+    acc = np.zeros((part.shape[0], by, bx), dtype=np.uint32)
+    for r in range(BLOCK):
+        row = words[:, :, r] * gather
+        row >>= np.uint32(24 - 4 * r)
+        row &= np.uint32(0xF << (4 * r))
+        acc |= row
+    return acc
 
 
 def block_counts(hu: np.ndarray, fov2d: np.ndarray, threshold_hu: float, chunk: int = 8) -> np.ndarray:
@@ -617,17 +624,45 @@ def _block_pixels(idx: tuple[np.ndarray, ...], shape: tuple[int, ...]) -> np.nda
     return (zi * (ny * nx) + yi * (BLOCK * nx) + xi * BLOCK)[:, None] + within[None, :]
 
 
+#: Per 4-bit block row (bit c: pixel c), its four pixels as the bytes of one little-endian word.
+_ROW_WORDS = np.array([sum(((n >> c) & 1) << (8 * c) for c in range(4)) for n in range(16)], dtype="<u4")
+
+
+def _word_rows(view: np.ndarray) -> bool:
+    """Whether the bool box ``view`` can be seen as 32-bit words of four pixels along x."""
+    return (BLOCK == 4 and view.strides[-1] == 1 and view.ctypes.data % 4 == 0
+            and all(st % 4 == 0 for st in view.strides[:-1]) and np.little_endian)
+
+
 def _paint(target: np.ndarray, pat: np.ndarray, cbox: tuple[slice, ...], empty: bool = False) -> None:
-    """Set in ``target`` the pixels of the block patterns ``pat`` (coarse box ``cbox``):
-    whole blocks by upsampling, the others pixel by pixel. ``empty``: the box holds no
-    set pixel yet, so the whole blocks are written in place rather than OR-ed in."""
+    """Set in ``target`` the pixels of the block patterns ``pat`` (coarse box ``cbox``).
+    ``empty``: the box holds no set pixel yet, so its pixels are written rather than
+    OR-ed in.
+
+    Each 4-pixel row of a block is looked up as one 32-bit word of 0/1 bytes (every
+    block, whole or partial, in one pass per block row); where the box cannot be seen as
+    such words, whole blocks are upsampled and the others set pixel by pixel.
+    """
     full = _full_box(cbox)
+    view = target[full]
+    if _word_rows(view):
+        nz, cy, cx = pat.shape
+        words = view.view(np.uint32).reshape(nz, cy, BLOCK, cx)
+        nib = np.empty(pat.shape, dtype=np.uint16)
+        for r in range(BLOCK):
+            np.right_shift(pat, np.uint16(4 * r), out=nib)
+            nib &= np.uint16(0xF)
+            if empty:
+                words[:, :, r] = _ROW_WORDS[nib]
+            else:
+                words[:, :, r] |= _ROW_WORDS[nib]
+        return
     if empty:
-        _upsample_into(target[full], pat == FULL)
+        _upsample_into(view, pat == FULL)
     else:
-        whole = np.empty(target[full].shape, dtype=bool)
+        whole = np.empty(view.shape, dtype=bool)
         _upsample_into(whole, pat == FULL)
-        target[full] |= whole
+        view |= whole
     zi, yi, xi = np.nonzero((pat != 0) & (pat != FULL))
     idx = (zi + cbox[0].start, yi + cbox[1].start, xi + cbox[2].start)
     pixels = pattern_tables().pixels[pat[zi, yi, xi]]
@@ -835,13 +870,14 @@ def _component_sizes(comps: _PatternComponents, pat: np.ndarray) -> np.ndarray:
 def _patterns_of(comps: _PatternComponents, pat: np.ndarray, finals: np.ndarray) -> list[tuple[np.ndarray, tuple[slice, ...]]]:
     """For each final component in ``finals``: its block patterns inside its coarse box,
     and that box."""
-    code = np.zeros(comps.n_final, dtype=np.int32)
+    small = np.uint8 if finals.size < 256 else (np.uint16 if finals.size < 65536 else np.int32)
+    code = np.zeros(comps.n_final, dtype=small)  # the smallest labels that hold them: less to write and scan
     code[finals] = np.arange(1, finals.size + 1)
     label_code = code[comps.final[: comps.n_lab + 1]]
     label_code[0] = 0
     g = label_code[comps.lab]
     nodes, blocks, k = comps.piece_nodes()
-    piece_code = code[comps.final[nodes]] if nodes.size else np.zeros(0, dtype=np.int32)
+    piece_code = code[comps.final[nodes]] if nodes.size else np.zeros(0, dtype=small)
     keep = piece_code > 0
     blocks, k, piece_code = blocks[keep], k[keep], piece_code[keep]
     g.reshape(-1)[blocks] = piece_code  # marks the pieces' blocks for the boxes; their bits come below
@@ -912,6 +948,10 @@ def _coarse_body_and_table(hu: np.ndarray, fov2d: np.ndarray, body_threshold_hu:
     holes of the full-resolution method (see the module docstring)."""
     nz = hu.shape[0]
     pat = block_patterns(hu, fov2d, body_threshold_hu)
+    crop = _nonempty_box(pat)
+    if crop is None:
+        return _BodyTable(np.zeros(hu.shape, dtype=bool), np.zeros(hu.shape, dtype=bool), None, None, 0, 0, False)
+    pat = np.ascontiguousarray(pat[crop])  # every set pixel; components, sizes and order are those of the whole grid
     comps = pattern_components(pat)
     sizes = _component_sizes(comps, pat)
     if sizes.size == 0 or sizes.max() == 0:
@@ -921,7 +961,8 @@ def _coarse_body_and_table(hu: np.ndarray, fov2d: np.ndarray, body_threshold_hu:
     fb = int(np.argmax(sizes))
     others = np.flatnonzero(sizes >= 20)
     others = others[others != fb]
-    found = _patterns_of(comps, pat, np.concatenate([[fb], others]))
+    offset = tuple(c.start for c in crop)
+    found = [(cp, _shifted(b, offset)) for cp, b in _patterns_of(comps, pat, np.concatenate([[fb], others]))]
     del comps
     body = np.zeros(hu.shape, dtype=bool)
     table = np.zeros(hu.shape, dtype=bool)
@@ -940,6 +981,18 @@ def _coarse_body_and_table(hu: np.ndarray, fov2d: np.ndarray, body_threshold_hu:
             table_voxels += int(areas.sum())
             grown_box = _union_box(grown_box, _full_box(cbox))
     return _BodyTable(body, table, centroid, grown_box, body_voxels, table_voxels, table_voxels > 0)
+
+
+def _nonempty_box(pat: np.ndarray) -> tuple[slice, ...] | None:
+    """The smallest box of the block grid ``pat`` holding every non-empty block (None when
+    all are empty), from one OR over the slices and one over each slice."""
+    nz = pat.shape[0]
+    zs = np.flatnonzero(np.bitwise_or.reduce(pat.reshape(nz, -1), axis=1))
+    if zs.size == 0:
+        return None
+    footprint = np.bitwise_or.reduce(pat, axis=0) != 0
+    ys, xs = np.flatnonzero(footprint.any(axis=1)), np.flatnonzero(footprint.any(axis=0))
+    return (slice(int(zs[0]), int(zs[-1]) + 1), slice(int(ys[0]), int(ys[-1]) + 1), slice(int(xs[0]), int(xs[-1]) + 1))
 
 
 def _count_and_centroid(pat: np.ndarray, cbox: tuple[slice, ...]) -> tuple[int, tuple[float, float, float]]:
