@@ -13,6 +13,7 @@ in water, a bone rod in water) gives the same, positive LSF.
 """
 from __future__ import annotations
 
+import functools
 import math
 from dataclasses import dataclass, field
 
@@ -368,20 +369,35 @@ def ttf_from_esf(
     lsf_w = lsf * lsf_window(pos, centre, half)
     n = max(int(2 ** np.ceil(np.log2(max(pad_to_mm / dr, lsf_w.size)))), 8)
     spectrum = np.abs(np.fft.rfft(lsf_w, n=n))
-    freq = np.fft.rfftfreq(n, d=dr)
+    freq, safe_correction, usable = _frequency_grid(n, float(dr))
     if spectrum[0] <= 0:
         nan = np.full_like(freq, np.nan)
-        return TtfCurve(freq, nan, float("nan"), float("nan"), 2 * half, notes + ["LSF integrates to zero"])
+        return TtfCurve(freq.copy(), nan, float("nan"), float("nan"), 2 * half, notes + ["LSF integrates to zero"])
     ttf = spectrum / spectrum[0]
-    correction = np.sinc(2.0 * freq * dr) * np.sinc(freq * dr)
-    usable = correction > 0.2
-    ttf = np.where(usable, ttf / np.where(usable, correction, 1.0), np.nan)
+    ttf = np.where(usable, ttf / safe_correction, np.nan)
     f50 = first_crossing(freq[usable], ttf[usable], 0.5)
     f10 = first_crossing(freq[usable], ttf[usable], 0.1)
     if max_frequency_per_mm is not None:
         keep = freq <= max_frequency_per_mm + 1e-12
         freq, ttf = freq[keep], ttf[keep]
+    else:
+        freq = freq.copy()
     return TtfCurve(freq, ttf, f50, f10, 2 * half, notes)
+
+
+@functools.lru_cache(maxsize=16)
+def _frequency_grid(n: int, dr: float) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Frequencies of an ``n``-point rfft at spacing ``dr`` (mm), the transfer of the
+    central difference and the bin average there, ``sinc(2 f dr) sinc(f dr)``, with 1
+    where it is too small to divide by (below 0.2), and where it is not (computed once
+    per grid; read-only)."""
+    freq = np.fft.rfftfreq(n, d=dr)
+    correction = np.sinc(2.0 * freq * dr) * np.sinc(freq * dr)
+    usable = correction > 0.2
+    out = (freq, np.where(usable, correction, 1.0), usable)
+    for a in out:
+        a.flags.writeable = False
+    return out
 
 
 # ------------------------------------------------------------------ straight edges

@@ -599,8 +599,8 @@ def measure_circular_edge(
     crop = np.ascontiguousarray(crop)  # one read of the rod's pixels; every later pass runs on this copy
     free = _free_mask(crop.shape[1:], (y0, x0), volume.hu.shape[1:], insert, others, allowed, px)
     c_local = (insert.centre_yx_vox[0] - y0, insert.centre_yx_vox[1] - x0)
-    centres, inside_hu, outside_hu = _refine_centres(crop, c_local, r_px, px)
-    pool = _pool_slices(crop, centres, (sy, sx), float(s["bin_fraction"]))
+    centres, inside_hu, outside_hu, total = _refine_centres(crop, c_local, r_px, px)
+    pool = _pool_slices(crop, centres, (sy, sx), float(s["bin_fraction"]), total=total)
     reach_mm = _free_reach_mm(pool.dist, free, insert.radius_mm)
     problems: list[str] = []
     if reach_mm < half_mm:
@@ -663,7 +663,7 @@ class PooledSlices:
 
 
 def _pool_slices(crop: np.ndarray, centres: Sequence[tuple[float, float]], spacing_yx_mm: tuple[float, float],
-                 bin_fraction: float) -> PooledSlices:
+                 bin_fraction: float, *, total: np.ndarray | None = None) -> PooledSlices:
     """Pool consecutive slices whose centres lie within ``POOL_TOLERANCE_BINS`` ESF bins
     of each other (so within that of their group's centre, the mean of theirs).
 
@@ -675,7 +675,9 @@ def _pool_slices(crop: np.ndarray, centres: Sequence[tuple[float, float]], spaci
     pixel's distance by at most the tolerance (a fifth of a bin, 0.02 px at the default
     bin width): a method choice that makes the ESF of a straight rod one binning of one
     summed image instead of one per slice. A tilted rod (centre moving by more than the
-    tolerance from slice to slice) keeps one group per slice, as before.
+    tolerance from slice to slice) keeps one group per slice, as before. ``total``, the
+    float64 sum of all the crop's slices when the caller has it, is taken as the sum of
+    a group that holds every slice (not summed again).
 
     References
     ----------
@@ -695,7 +697,10 @@ def _pool_slices(crop: np.ndarray, centres: Sequence[tuple[float, float]], spaci
             lo_x = hi_x = xs[k]
     starts_a = np.asarray(starts, dtype=np.int64)
     n = np.diff(np.append(starts_a, c.shape[0]))
-    sums = np.stack([crop[s0 : s0 + k].sum(axis=0, dtype=np.float64) for s0, k in zip(starts_a, n)])
+    if total is not None and n.size == 1:
+        sums = total[None]
+    else:
+        sums = np.stack([crop[s0 : s0 + k].sum(axis=0, dtype=np.float64) for s0, k in zip(starts_a, n)])
     mids = np.stack([c[s0 : s0 + k].mean(axis=0) for s0, k in zip(starts_a, n)])
     return PooledSlices(starts_a, n, sums, _radial_distance_stack(crop.shape[1:], mids, spacing_yx_mm))
 
@@ -751,19 +756,21 @@ def _free_reach_mm(dist: np.ndarray, free: np.ndarray, radius_mm: float) -> floa
 
 
 def _refine_centres(crop: np.ndarray, centre: tuple[float, float], r_px: float, px: float,
-                    groups: int = 8) -> tuple[list[tuple[float, float]], float, float]:
+                    groups: int = 8) -> tuple[list[tuple[float, float]], float, float, np.ndarray]:
     """Sub-pixel centre along the rod: refined on the mean of each of at most ``groups``
     runs of consecutive slices (every slice of a shorter rod), then a straight line
     through them along z evaluated at every slice.
 
     Averaging runs of slices before refining lowers the noise of each centre and bounds
     the work; a rod is straight, so the line through the run centres is the line
-    through the slice centres.
+    through the slice centres. Returns the centres, the inside and outside CT numbers
+    and the float64 sum of all slices (the sum of the runs' sums).
     """
     nz = crop.shape[0]
     runs = np.array_split(np.arange(nz), min(groups, nz))
     run_sums = _run_sums(crop, runs)
-    first = run_sums.sum(axis=0) / nz
+    total = run_sums.sum(axis=0)
+    first = total / nz
     d = np.hypot(*(np.indices(first.shape) - np.array(centre)[:, None, None]))
     core = d <= 0.6 * r_px
     inside_hu = _edges._median(first[core]) if core.any() else float(first.mean())
@@ -776,9 +783,9 @@ def _refine_centres(crop: np.ndarray, centre: tuple[float, float], r_px: float, 
     z = np.arange(nz, dtype=float)
     if len(per) >= 3:
         fit = _line_along_z(np.array([r.mean() for r in runs]), per, np.array([r.size for r in runs], dtype=float), z)
-        return list(zip(fit[:, 0].tolist(), fit[:, 1].tolist())), inside_hu, outside_hu
+        return list(zip(fit[:, 0].tolist(), fit[:, 1].tolist())), inside_hu, outside_hu, total
     per_slice = np.concatenate([np.repeat(p[None], r.size, axis=0) for p, r in zip(per, runs)])
-    return [tuple(p) for p in per_slice], inside_hu, outside_hu
+    return [tuple(p) for p in per_slice], inside_hu, outside_hu, total
 
 
 def _run_sums(crop: np.ndarray, runs: Sequence[np.ndarray]) -> np.ndarray:
