@@ -288,21 +288,29 @@ def smooth_in_plane(stack: np.ndarray, sigma_px: float, truncate: float = 2.5) -
     than a filter along lines for the few-pixel kernels used here; values off the
     padded image's valid part are computed but never used.
     """
+    padded, r = _smoothed_padded(stack, sigma_px, truncate)
+    _, ny, nx = np.shape(stack)
+    return padded[:, r : r + ny, r : r + nx]
+
+
+def _smoothed_padded(stack: np.ndarray, sigma_px: float, truncate: float = 2.5) -> tuple[np.ndarray, int]:
+    """:func:`smooth_in_plane` of ``stack`` inside a new contiguous float32 array padded
+    by ``r`` pixels on each side in-plane (the padding holds values to ignore); returns
+    the array and ``r``."""
     radius = int(truncate * float(sigma_px) + 0.5)
     stack = np.asarray(stack, dtype=np.float32)
     if radius < 1:
-        return stack.copy()
+        return stack.copy(), 0
     k = np.arange(-radius, radius + 1)
     w = np.exp(-0.5 * (k / float(sigma_px)) ** 2)
     w /= w.sum()
-    _, ny, nx = stack.shape
     padded = _pad_reflect_in_plane(stack, radius)
     flat = padded.reshape(-1)
     rows = np.empty_like(flat)
     scratch = np.empty(min(_PIECE, flat.size), dtype=np.float32)
     _shifted_sums(flat, w, 1, rows, scratch)
     _shifted_sums(rows, w, padded.shape[2], flat, scratch)  # the padded input is no longer needed
-    return padded[:, radius : radius + ny, radius : radius + nx]
+    return padded, radius
 
 
 #: Values of one piece of :func:`smooth_in_plane` (256 KiB of float32).
@@ -362,8 +370,10 @@ def _insert_slices(
 ) -> np.ndarray:
     """Which slices of a stack hold a connected group inside ``inner`` departing from the
     slice's ``median`` (see the module docstring); ``pixel_mm`` is the grid's pixel."""
-    smooth = smooth_in_plane(hu, s["smooth_mm"] / pixel_mm)
-    dev = np.abs(smooth - median.astype(np.float32)[:, None, None])
+    padded, r = _smoothed_padded(hu, s["smooth_mm"] / pixel_mm)
+    padded -= median.astype(np.float32)[:, None, None]  # in place on the contiguous array
+    np.abs(padded, out=padded)
+    dev = padded[:, r : r + hu.shape[1], r : r + hu.shape[2]]
     mad = _medians_of(dev, inner) * 1.4826
     threshold = np.maximum(s["insert_contrast_hu"], 5.0 * mad).astype(np.float32)
     out = (dev > threshold[:, None, None]) & inner
@@ -519,8 +529,9 @@ def _screened_disc_stats(
     r, fill = np.zeros(nz), np.zeros(nz)
 
     def measure(zs: np.ndarray) -> None:
-        masks[zs] = _strided(body, f, zs=zs)
-        cy[zs], cx[zs], r[zs], fill[zs] = disc_stats(masks[zs])
+        part = _strided(body, f, zs=zs)
+        masks[zs] = part
+        cy[zs], cx[zs], r[zs], fill[zs] = disc_stats(part)
 
     measure(first)
     near = (r[first] * f * pixel_mm >= 0.8 * s["min_radius_mm"]) & (fill[first] >= s["min_fill"] - 0.05)

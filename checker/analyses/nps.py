@@ -925,9 +925,23 @@ def roi_images(hu: np.ndarray, rois: Sequence[Roi]) -> np.ndarray:
 
 def _mean_square(stack: np.ndarray) -> np.ndarray:
     """Mean of the squared pixels of each ROI of a mean-free float32 (n, Ny, Nx) stack
-    (the population variance), squares summed in double."""
-    return np.square(stack).reshape(stack.shape[0], -1).sum(axis=1, dtype=np.float64) / (
-        stack.shape[1] * stack.shape[2])
+    (the population variance), squares summed in double; a few ROIs at a time through
+    one small scratch buffer (no stack-sized temporary)."""
+    n = stack.shape[0]
+    flat = stack.reshape(n, -1)
+    step = max(1, _SQUARE_PIXELS // flat.shape[1])
+    scratch = np.empty((min(step, n), flat.shape[1]), dtype=np.float32)
+    sums = np.empty(n)
+    for start in range(0, n, step):
+        part = flat[start : start + step]
+        squares = scratch[: part.shape[0]]
+        np.square(part, out=squares)
+        sums[start : start + step] = squares.sum(axis=1, dtype=np.float64)
+    return sums / flat.shape[1]
+
+
+#: Pixels squared at a time by :func:`_mean_square` (256 KiB of float32).
+_SQUARE_PIXELS = 1 << 16
 
 
 def _remove_fit_in_place(stack: np.ndarray, method: str) -> tuple[np.ndarray, np.ndarray]:
