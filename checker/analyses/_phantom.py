@@ -225,6 +225,17 @@ def _inner_discs(
     return inside & body[:, y0:y1, x0:x1], (slice(y0, y1), slice(x0, x1))
 
 
+def _finite_inside(values: np.ndarray, masks: np.ndarray) -> np.ndarray:
+    """Per slice, whether every masked value is finite. A slice's float32 sum is finite
+    unless a value is not (or the sum overflows), so only slices whose sum is not are
+    looked at pixel by pixel."""
+    ok = np.ones(values.shape[0], dtype=bool)
+    suspect = np.flatnonzero(~np.isfinite(values.sum(axis=(1, 2), dtype=np.float32)))
+    if suspect.size:
+        ok[suspect] = ~(masks[suspect] & ~np.isfinite(values[suspect])).any(axis=(1, 2))
+    return ok
+
+
 def _medians_of(values: np.ndarray, masks: np.ndarray, step: int = 4) -> np.ndarray:
     """Median of the masked values on every ``step``-th row and column, slice by slice
     (NaN where none): one sort of the whole stack."""
@@ -557,7 +568,7 @@ def _find_phantom(volume: Volume, regions: Regions, s: dict[str, float]) -> Phan
         inner, box = _inner_discs(body[zs], cy[zs], cx[zs], s["inner_fraction"] * r[zs])
         rows = slice(box[0].start * f, box[0].stop * f)
         img = _strided(volume.hu, f, rows, slice(box[1].start * f, box[1].stop * f), zs)
-        finite = ~(inner & ~np.isfinite(img)).any(axis=(1, 2))
+        finite = _finite_inside(img, inner)
         med = _medians_of(img, inner)
         keep = finite & (np.abs(med) <= s["water_window_hu"])  # NaN (no inner pixel) fails
         zs, inner, img, med = zs[keep], inner[keep], img[keep], med[keep]

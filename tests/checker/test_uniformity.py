@@ -228,3 +228,14 @@ def test_smooth_in_plane_on_small_and_one_slice_stacks():
         ref = ndimage.gaussian_filter(stack, (0, sigma, sigma), truncate=2.5)
         got = _phantom.smooth_in_plane(stack, sigma)
         assert got.shape == shape and np.abs(got - ref).max() < 1e-4
+
+
+def test_finite_inside_looks_only_at_masked_values():
+    """A slice passes when every masked value is finite, whatever lies outside the mask."""
+    values = np.zeros((4, 6, 6), dtype=np.float32)
+    masks = np.zeros((4, 6, 6), dtype=bool)
+    masks[:, 2:4, 2:4] = True
+    values[1, 0, 0] = np.nan  # outside the mask
+    values[2, 3, 3] = np.inf  # inside
+    values[3, 2, 2] = np.nan  # inside
+    assert list(_phantom._finite_inside(values, masks)) == [True, True, False, False]
