@@ -11,6 +11,7 @@ and errors); only the time differs.
 """
 from __future__ import annotations
 
+import functools
 import math
 from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass
@@ -32,7 +33,12 @@ from ..errors import (
     UnreadableFileError,
 )
 from ..volume import Volume
-from ._geometry import StackGeometry, orientation_groups, remaining_positions_complete, stack_geometry
+from ._geometry import (
+    StackGeometry,
+    orientation_groups,
+    remaining_positions_complete,
+    stack_geometry,
+)
 from ._headers import (
     MULTIFRAME_CT_SOP_CLASSES,
     as_float,
@@ -40,12 +46,10 @@ from ._headers import (
     check_has_pixels,
     check_is_ct,
     check_monochrome,
-    quick_dataset,
     quick_get,
-    quick_pixels_of,
     read_dataset,
-    read_quick_pixels,
 )
+from ._quick import QuickHeader, quick_dataset, quick_pixels_of, read_quick_pixels
 from ._types import SeriesSource
 
 #: Packages that bring a decoder, by transfer syntax (pip names).
@@ -98,12 +102,21 @@ def _decimal_strings(ds: Dataset, name: str) -> Any:
     Decimal and integer strings are ASCII text in every transfer syntax (DICOM PS3.5,
     6.2), so an unconverted element is split here instead of being converted by pydicom.
     """
-    elem = ds.get_item(name)
-    if elem is None:
-        return None
-    if isinstance(elem, RawDataElement) and isinstance(elem.value, bytes) and elem.VR in (None, "DS", "IS"):
+    if isinstance(ds, QuickHeader):
+        raw = ds.raw(name)
+        if raw is None:
+            return None
+        vr, value = raw
+    else:
+        elem = ds.get_item(name)
+        if elem is None:
+            return None
+        if not (isinstance(elem, RawDataElement) and isinstance(elem.value, bytes)):
+            return ds.get(name)
+        vr, value = (elem.VR or "DS").encode("ascii"), elem.value
+    if vr in (b"DS", b"IS"):
         try:
-            parts = [v.strip(" \x00") for v in elem.value.decode("ascii").split("\\")]
+            parts = [v.strip(" \x00") for v in value.decode("ascii").split("\\")]
         except UnicodeDecodeError:
             return ds.get(name)
         return None if parts == [""] else parts
@@ -166,8 +179,13 @@ def _multiframe_frames(ds: Dataset, i: int, path: Path) -> list[_Frame]:
     return frames
 
 
+def _number_of_frames(ds: Dataset | QuickHeader) -> int:
+    """NumberOfFrames, 1 when absent (read from the raw bytes when it is absent there)."""
+    return int(quick_get(ds, "NumberOfFrames", 1) or 1)
+
+
 def _frames_of(ds: Dataset, i: int, path: Path) -> list[_Frame]:
-    if str(quick_get(ds, "SOPClassUID", "")) in MULTIFRAME_CT_SOP_CLASSES or int(ds.get("NumberOfFrames", 1) or 1) > 1:
+    if str(quick_get(ds, "SOPClassUID", "")) in MULTIFRAME_CT_SOP_CLASSES or _number_of_frames(ds) > 1:
         return _multiframe_frames(ds, i, path)
     return [_classic_frame(ds, i, path)]
 
@@ -175,8 +193,7 @@ def _frames_of(ds: Dataset, i: int, path: Path) -> list[_Frame]:
 # --------------------------------------------------------------------------- checks
 def _declared_bytes(ds: Dataset) -> int:
     rows, cols = int(quick_get(ds, "Rows", 0) or 0), int(quick_get(ds, "Columns", 0) or 0)
-    frames = int(ds.get("NumberOfFrames", 1) or 1)
-    return rows * cols * frames * 4
+    return rows * cols * _number_of_frames(ds) * 4
 
 
 def _check_size(total: int, where: str, max_bytes: int, what: str) -> None:
@@ -259,19 +276,25 @@ def check_decoder(transfer_syntax: str, where: str) -> None:
 
 
 def _transfer_syntax(ds: Dataset) -> str:
+    if isinstance(ds, QuickHeader):
+        return ExplicitVRLittleEndian  # quick_dataset accepts nothing else
     meta = getattr(ds, "file_meta", None)
     ts = meta.get("TransferSyntaxUID") if meta is not None else None
     return str(ts) if ts else ImplicitVRLittleEndian
 
 
 # --------------------------------------------------------------------------- pixels
-def _stored_frames(ds: Dataset, path: Path) -> np.ndarray:
-    """Stored values (frames, rows, cols) of one file; UnreadableFileError if damaged."""
+def _stored_frames(ds: Dataset, path: Path, scratch: np.ndarray | None = None) -> np.ndarray:
+    """Stored values (frames, rows, cols) of one file; UnreadableFileError if damaged.
+
+    The pixels of a quickly read file are read into ``scratch`` when it fits (the
+    returned array is then a view of it)."""
     rows, cols = int(quick_get(ds, "Rows")), int(quick_get(ds, "Columns"))
     where = quick_pixels_of(ds)
     if where is not None:  # a plain native file from quick_dataset: pixels read straight from disk
-        return read_quick_pixels(path, where).reshape(1, rows, cols)
-    frames = int(ds.get("NumberOfFrames", 1) or 1)
+        stored = read_quick_pixels(path, where) if scratch is None else read_quick_pixels(path, where, scratch)
+        return stored.reshape(1, rows, cols)
+    frames = _number_of_frames(ds)
     try:
         if _transfer_syntax(ds) in (ImplicitVRLittleEndian, ExplicitVRLittleEndian) and int(quick_get(ds, "BitsAllocated")) == 16 \
                 and int(quick_get(ds, "BitsStored", 16)) == 16 and "PixelData" in ds:
@@ -320,14 +343,20 @@ def _padding_mask(stored: np.ndarray, pad: tuple[float, float]) -> np.ndarray | 
     lo, hi = pad
     if not np.issubdtype(stored.dtype, np.integer):
         return (stored == lo) if lo == hi else (stored >= lo) & (stored <= hi)
-    info = np.iinfo(stored.dtype)
-    first, last = max(math.ceil(lo), info.min), min(math.floor(hi), info.max)
+    low, high = _integer_range(stored.dtype)
+    first, last = max(math.ceil(lo), low), min(math.floor(hi), high)
     if first > last:
         return None
     kind = stored.dtype.type
     if first == last:
         return stored == kind(first)
     return (stored >= kind(first)) & (stored <= kind(last))
+
+
+@functools.lru_cache(maxsize=None)
+def _integer_range(dtype: np.dtype) -> tuple[int, int]:
+    info = np.iinfo(dtype)
+    return int(info.min), int(info.max)
 
 
 class _PaddingTracker:
@@ -338,19 +367,24 @@ class _PaddingTracker:
         self.same = True
         self.count = 0
         self.hu_values: set[float] = set()
+        self._mask_bytes: bytes | None = None  # the first mask's bytes, for a quick comparison
+
+    def _same_as_first(self, mask: np.ndarray | None) -> bool:
+        """Whether ``mask`` marks exactly the (non-empty) first mask's pixels."""
+        return (mask is not None and self._mask_bytes is not None and mask.shape == self.mask.shape
+                and mask.dtype == self.mask.dtype and mask.tobytes() == self._mask_bytes)
 
     def add(self, stored: np.ndarray, pad: tuple[float, float] | None, slope: float, intercept: float) -> None:
-        if pad is None:
-            mask = None
+        mask = None if pad is None else _padding_mask(stored, pad)
+        same_as_first = self.count > 0 and self._same_as_first(mask)
+        if mask is not None and (same_as_first or mask.any()):
+            self.hu_values.add(round(pad[0] * slope + intercept, 3))
         else:
-            mask = _padding_mask(stored, pad)
-            if mask is not None and mask.any():
-                self.hu_values.add(round(pad[0] * slope + intercept, 3))
-            else:
-                mask = None
+            mask = None
         if self.count == 0:
             self.mask = mask
-        elif self.same and not _same_mask(mask, self.mask):
+            self._mask_bytes = None if mask is None else mask.tobytes()
+        elif self.same and not same_as_first and not _same_mask(mask, self.mask):
             self.same = False
         self.count += 1
 
@@ -390,6 +424,30 @@ def _same_elements(quick: Dataset, full: Dataset) -> bool:
     return True
 
 
+#: Values the loader takes from the raw bytes of a quickly read file (:func:`quick_get`).
+QUICK_VALUES = ("Rows", "Columns", "BitsAllocated", "BitsStored", "PixelRepresentation", "SamplesPerPixel",
+                "PhotometricInterpretation", "Modality", "SOPClassUID", "NumberOfFrames", "PixelPaddingValue",
+                "PixelPaddingRangeLimit")
+
+
+def _same_frame(a: _Frame, b: _Frame) -> bool:
+    def same(x, y):
+        return (x is None and y is None) or (x is not None and y is not None and np.array_equal(x, y))
+
+    return (same(a.position, b.position) and same(a.iop, b.iop) and same(a.pixel_spacing, b.pixel_spacing)
+            and (a.slope, a.intercept, a.rescale_found, a.thickness) == (b.slope, b.intercept, b.rescale_found, b.thickness))
+
+
+def _same_loader_values(quick: QuickHeader, full: Dataset, path: Path) -> bool:
+    """Whether the values the loader reads from the raw bytes of ``quick`` (codes, sizes,
+    padding, geometry, rescale) equal pydicom's values of the same file."""
+    if any(quick_get(quick, n) != quick_get(full, n) or (n in quick) != (n in full) for n in QUICK_VALUES):
+        return False
+    if _padding_range(quick) != _padding_range(full) or (("PixelData" in quick) != ("PixelData" in full)):
+        return False
+    return _same_frame(_classic_frame(quick, 0, path), _classic_frame(full, 0, path))
+
+
 def _checked_quick(datasets: list[tuple[Path, Dataset]]) -> list[tuple[Path, Dataset]]:
     """Cross-check the quick parse against pydicom once per series.
 
@@ -404,7 +462,8 @@ def _checked_quick(datasets: list[tuple[Path, Dataset]]) -> list[tuple[Path, Dat
     try:
         full = read_dataset(path)
         stored = _stored_frames(ds, path)
-        agree = _same_elements(ds, full) and np.array_equal(stored, _stored_frames(full, path))
+        agree = (_same_loader_values(ds, full, path) and _same_elements(ds, full)
+                 and np.array_equal(stored, _stored_frames(full, path)))
     except ReconauditError:
         agree = False
     if agree:
@@ -486,7 +545,8 @@ def load_dicom_series(src: SeriesSource, *, include_identifiers: bool = False, m
     if not datasets:
         raise UnreadableFileError(f"none of the {len(bad)} file(s) could be read; first: {bad[0][1]}" if bad else "no files", source=label)
     for path, ds in datasets:
-        _check_size(_declared_bytes(ds), f"{label}, file {path.name}", max_bytes, f"Rows {ds.get('Rows')} x Columns {ds.get('Columns')} x {ds.get('NumberOfFrames', 1)} frame(s)")
+        if _declared_bytes(ds) > max_bytes:
+            _check_size(_declared_bytes(ds), f"{label}, file {path.name}", max_bytes, f"Rows {ds.get('Rows')} x Columns {ds.get('Columns')} x {ds.get('NumberOfFrames', 1)} frame(s)")
     notes = list(src.notes)
     datasets = _validate_objects(datasets, bad, label, notes)
     rows, cols = _check_rows_columns(datasets, label)
@@ -509,7 +569,17 @@ def load_dicom_series(src: SeriesSource, *, include_identifiers: bool = False, m
 
 
 def _rescale_into(stored: np.ndarray, slope: float, intercept: float, out: np.ndarray) -> None:
-    """out = stored * slope + intercept in float32 (DICOM PS3.3 C.11.1.1.2)."""
+    """out = stored * slope + intercept in float32 (DICOM PS3.3 C.11.1.1.2).
+
+    Integers of up to 16 bits are exact in float32: they are copied into ``out`` and
+    rescaled there (the same float32 arithmetic as a mixed-type ufunc, in fewer steps).
+    """
+    if stored.dtype.kind in "iu" and stored.dtype.itemsize <= 2:
+        out[...] = stored
+        if slope != 1.0:
+            out *= np.float32(slope)
+        out += np.float32(intercept)
+        return
     if slope == 1.0:
         np.add(stored, np.float32(intercept), out=out, casting="unsafe")
     else:
@@ -521,40 +591,79 @@ def _rescale_into(stored: np.ndarray, slope: float, intercept: float, out: np.nd
 READ_THREADS = 2
 
 
+def _new_volume_array(shape: tuple[int, int, int]) -> np.ndarray:
+    """An uninitialised float32 array for the volume."""
+    return np.empty(shape, dtype=np.float32)
+
+
+def _chunks(items: list, n: int) -> list[list]:
+    """``items`` cut into at most ``n`` consecutive runs of near-equal length."""
+    n = max(1, min(n, len(items)))
+    bounds = [round(k * len(items) / n) for k in range(n + 1)]
+    return [items[bounds[k]:bounds[k + 1]] for k in range(n)]
+
+
+def _merged(trackers: list[_PaddingTracker]) -> _PaddingTracker:
+    """One tracker for consecutive runs of slices tracked separately (in slice order)."""
+    total = _PaddingTracker()
+    for t in trackers:
+        if t.count == 0:
+            continue
+        if total.count == 0:
+            total.mask, total.same, total._mask_bytes = t.mask, t.same, t._mask_bytes
+        else:
+            total.same = total.same and t.same and _same_mask(t.mask, total.mask)
+        total.count += t.count
+        total.hu_values |= t.hu_values
+    return total
+
+
 def _fill(datasets, frames, geometry, rows, cols):
+    """Read, rescale and check the padding of every slice, straight into the float32 volume.
+
+    The files are taken in slice order and cut into ``READ_THREADS`` consecutive runs,
+    one per thread; each thread reads a file's stored values (into one reused buffer for
+    quickly read files), rescales them into their place in the volume and compares them
+    with the padding value in the stored integer type. File reads and numpy release the
+    interpreter lock, so the threads overlap.
+    """
     out_index = np.empty(len(frames), dtype=int)
     out_index[geometry.order] = np.arange(len(frames))
     by_ds: dict[int, list[int]] = {}
     for j, f in enumerate(frames):
         by_ds.setdefault(f.ds_index, []).append(j)
-    hu = np.empty((len(frames), rows, cols), dtype=np.float32)
-    failed: dict[int, tuple[Path, ReconauditError]] = {}
-    pad = _PaddingTracker()
+    hu = _new_volume_array((len(frames), rows, cols))
 
-    def fill_one(ds_index: int):
-        path, ds = datasets[ds_index]
-        try:
-            stored = _stored_frames(ds, path)
-        except ReconauditError as err:
-            return ds_index, None, err
-        for j in by_ds[ds_index]:
-            f = frames[j]
-            _rescale_into(stored[f.frame], f.slope, f.intercept, hu[int(out_index[j])])
-        return ds_index, stored, None
-
-    order = sorted(by_ds, key=lambda i: min(out_index[j] for j in by_ds[i]))
-    with ThreadPoolExecutor(max_workers=READ_THREADS) as pool:
-        for ds_index, stored, err in pool.map(fill_one, order):
+    def fill_run(run: list[int]) -> tuple[_PaddingTracker, dict[int, tuple[Path, ReconauditError]]]:
+        pad, failed, scratch = _PaddingTracker(), {}, None
+        for ds_index in run:
             path, ds = datasets[ds_index]
-            if err is not None:
+            try:
+                stored = _stored_frames(ds, path, scratch)
+            except ReconauditError as err:
                 for j in by_ds[ds_index]:
                     failed[int(out_index[j])] = (path, err)
                 continue
+            if quick_pixels_of(ds) is not None:
+                scratch = stored
             pad_range = _padding_range(ds)
             for j in by_ds[ds_index]:
                 f = frames[j]
+                _rescale_into(stored[f.frame], f.slope, f.intercept, hu[int(out_index[j])])
                 pad.add(stored[f.frame], pad_range, f.slope, f.intercept)
-    return hu, failed, pad.result()
+        return pad, failed
+
+    order = sorted(by_ds, key=lambda i: min(out_index[j] for j in by_ds[i]))
+    runs = _chunks(order, READ_THREADS)
+    if len(runs) == 1:
+        results = [fill_run(runs[0])]
+    else:
+        with ThreadPoolExecutor(max_workers=len(runs)) as pool:
+            results = list(pool.map(fill_run, runs))
+    failed: dict[int, tuple[Path, ReconauditError]] = {}
+    for _, f in results:
+        failed.update(f)
+    return hu, failed, _merged([pad for pad, _ in results]).result()
 
 
 def _drop_failed(hu, frames, geometry, failed, label):
@@ -583,7 +692,7 @@ def _notes(frames, datasets, geometry, bad, padding) -> list[str]:
     if not all(f.rescale_found for f in frames):
         n = sum(not f.rescale_found for f in frames)
         notes.append(f"RescaleSlope/RescaleIntercept missing in {n} slice(s): slope 1, intercept 0 used (stored values taken as HU)")
-    tilt = as_float(datasets[0][1].get("GantryDetectorTilt"), 0.0)
+    tilt = as_float(_decimal_strings(datasets[0][1], "GantryDetectorTilt"), 0.0)
     if tilt and not any(n.startswith("gantry tilt") for n in notes):
         notes.append(f"GantryDetectorTilt is {tilt:g} deg in the header; the slice positions show no shear")
     if padding[1]:

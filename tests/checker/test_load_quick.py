@@ -13,10 +13,9 @@ import numpy as np
 import pydicom
 import pytest
 from pydicom.data import get_testdata_file
-
 from reconaudit.checker.dicom_write import write_ct_series
 from reconaudit.checker.errors import UnreadableFileError
-from reconaudit.checker.load import _dicom, _headers, discover, load_series
+from reconaudit.checker.load import _dicom, _headers, _quick, discover, load_series
 from reconaudit.checker.volume import Volume
 
 
@@ -147,3 +146,98 @@ def test_other_bit_depths_and_implicit_vr_are_left_to_pydicom(tmp_path):
     ds.save_as(other, implicit_vr=True, little_endian=True, enforce_file_format=True)
     assert pydicom.dcmread(other).file_meta.TransferSyntaxUID == pydicom.uid.ImplicitVRLittleEndian
     assert _headers.quick_dataset(other) is None
+
+
+# --------------------------------------------------------------------------- raw values, kept scans, threads
+LOADER_NAMES = ("Rows", "Columns", "BitsAllocated", "BitsStored", "PixelRepresentation", "SamplesPerPixel",
+                "PhotometricInterpretation", "Modality", "SOPClassUID", "SOPInstanceUID", "NumberOfFrames",
+                "PixelPaddingValue", "PixelPaddingRangeLimit", "RescaleSlope", "ImagePositionPatient", "PatientWeight")
+
+
+@pytest.mark.parametrize("which", ["written", "CT_small"])
+def test_values_from_the_raw_bytes_equal_pydicom(tmp_path, which):
+    """The values the loader takes from a quick header's raw bytes are pydicom's values
+    (pydicom's CT_small.dcm from pydicom.data, and a series written by the project)."""
+    path = Path(get_testdata_file("CT_small.dcm")) if which == "CT_small" else _series(tmp_path)[0]
+    quick = _headers.quick_dataset(path)
+    full = pydicom.dcmread(path)
+    assert isinstance(quick, _quick.QuickHeader)
+    for name in LOADER_NAMES:
+        assert (name in quick) == (name in full), name
+        assert _headers.quick_get(quick, name) == _headers.quick_get(full, name), name
+    assert _dicom._same_loader_values(quick, full, path)
+    assert quick.dataset() is quick.dataset()  # built once
+
+
+def test_cross_check_catches_a_wrong_raw_value(tmp_path, monkeypatch):
+    """A raw-value reading that disagrees with pydicom on the first file is caught by the
+    once-per-series cross-check, and the series is read by pydicom."""
+    paths = _series(tmp_path)
+    real = _headers._quick_header_get
+
+    def wrong(ds, name, default):
+        value = real(ds, name, default)
+        return value + 1 if name == "PixelPaddingValue" else value
+
+    monkeypatch.setattr(_headers, "_quick_header_get", wrong)
+    quick = _headers.quick_dataset(paths[0])
+    assert not _dicom._same_loader_values(quick, pydicom.dcmread(paths[0]), paths[0])
+    vol = _load(tmp_path)
+    monkeypatch.setattr(_dicom, "quick_dataset", lambda path: None)
+    _same_volume(vol, _load(tmp_path))
+
+
+def test_discovery_scan_is_kept_for_the_load_and_dropped_after_it(tmp_path):
+    paths = _series(tmp_path)
+    _quick.forget_scans()
+    found = discover([tmp_path])
+    assert all(str(p) in _quick._REMEMBERED for p in paths)
+    load_series(found.series[0])
+    assert not any(str(p) in _quick._REMEMBERED for p in paths)
+    assert _quick._REMEMBERED_BYTES[0] == 0
+
+
+def test_file_changed_between_discovery_and_load_is_scanned_again(tmp_path):
+    """The load never uses a kept scan of a file that changed since discovery."""
+    paths = _series(tmp_path)
+    found = discover([tmp_path])
+    ds = pydicom.dcmread(paths[1])
+    ds.RescaleIntercept = "-1000.5"  # other length, other values
+    ds.save_as(paths[1])
+    vol = load_series(found.series[0])
+    stored = pydicom.dcmread(paths[1]).pixel_array
+    assert np.array_equal(vol.hu[1], stored.astype(np.float32) - np.float32(1000.5))
+    _same_volume(vol, _load(tmp_path))
+
+
+def test_kept_scans_stay_under_their_byte_limit(tmp_path, monkeypatch):
+    _series(tmp_path)
+    _quick.forget_scans()
+    monkeypatch.setattr(_quick, "CACHE_LIMIT_BYTES", 4000)
+    discover([tmp_path])
+    kept = sum(len(r.buf) for r in _quick._REMEMBERED.values())
+    assert 0 < kept <= 4000 and kept == _quick._REMEMBERED_BYTES[0]
+    assert len(_quick._REMEMBERED) < 5
+    _quick.forget_scans()
+    vol = _load(tmp_path)  # files without a kept scan are scanned again
+    np.testing.assert_array_equal(vol.hu[:, ~vol.padding_mask], _volume().hu[:, ~vol.padding_mask])
+
+
+@pytest.mark.parametrize("threads", [1, 2, 3, 7])
+@pytest.mark.parametrize("odd_slice", [None, 0, 2, 4])
+def test_padding_found_the_same_with_any_number_of_threads(tmp_path, monkeypatch, threads, odd_slice):
+    """Slices are cut into one run per thread; the padding mask and note do not depend on
+    where the cuts fall (a slice with other padded pixels anywhere gives no common mask)."""
+    vol = _volume()
+    if odd_slice is not None:
+        vol.hu[odd_slice, 10, 10] = -2000.0 - 1024.0  # stored as the padding value
+    write_ct_series(vol, tmp_path, series_description="threads", padding_value=-2000)
+    monkeypatch.setattr(_dicom, "READ_THREADS", threads)
+    out = _load(tmp_path)
+    np.testing.assert_array_equal(out.hu[:, ~vol.padding_mask], vol.hu[:, ~vol.padding_mask])
+    assert np.all(out.hu[:, vol.padding_mask] == -2000.0 - 1024.0)
+    if odd_slice is None:
+        np.testing.assert_array_equal(out.padding_mask, vol.padding_mask)
+    else:
+        assert out.padding_mask is None
+        assert any("different pixels on different slices" in n for n in out.notes)
