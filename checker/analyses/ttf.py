@@ -596,7 +596,9 @@ def measure_circular_edge(
     half_mm = min(float(s["esf_half_range_mm"]), 0.9 * insert.radius_mm)
     y0, x0, crop = _crop_from(insert.pixels, volume.hu, insert.z0, insert.z1, insert.centre_yx_vox,
                               r_px + half_mm / px + 3)
-    crop = np.ascontiguousarray(crop)  # one read of the rod's pixels; every later pass runs on this copy
+    # one read of the rod's pixels, converted once to float64 (exactly): every later pass
+    # (run sums, pooling, centre refinement, side noise) runs on this copy without casting
+    crop = np.array(crop, dtype=np.float64, order="C")
     free = _free_mask(crop.shape[1:], (y0, x0), volume.hu.shape[1:], insert, others, allowed, px)
     c_local = (insert.centre_yx_vox[0] - y0, insert.centre_yx_vox[1] - x0)
     centres, inside_hu, outside_hu, total = _refine_centres(crop, c_local, r_px, px)
@@ -771,18 +773,20 @@ def _refine_centres(crop: np.ndarray, centre: tuple[float, float], r_px: float, 
     run_sums = _run_sums(crop, runs)
     total = run_sums.sum(axis=0)
     first = total / nz
-    d = np.hypot(*(np.indices(first.shape) - np.array(centre)[:, None, None]))
+    d = np.hypot((np.arange(first.shape[0]) - centre[0])[:, None], (np.arange(first.shape[1]) - centre[1])[None, :])
     core = d <= 0.6 * r_px
     inside_hu = _edges._median(first[core]) if core.any() else float(first.mean())
     ring = (d >= r_px + 2.0 / px) & (d <= r_px + 4.0 / px)
     outside_hu = _edges._median(first[ring]) if ring.any() else _edges._median(first.ravel())
     reach = min(3.0 / px, 0.5 * r_px + 1)
     c0 = _edges.refine_circle_centre(first, centre, r_px, inside_hu, outside_hu, reach_px=reach)
-    images = crop if len(runs) == nz else run_sums / np.array([r.size for r in runs], dtype=float)[:, None, None]
+    sizes = np.array([r.size for r in runs], dtype=float)
+    images = crop if len(runs) == nz else run_sums / sizes[:, None, None]
     per = _edges.refine_circle_centres(images, c0, r_px, inside_hu, outside_hu, reach_px=reach)
     z = np.arange(nz, dtype=float)
     if len(per) >= 3:
-        fit = _line_along_z(np.array([r.mean() for r in runs]), per, np.array([r.size for r in runs], dtype=float), z)
+        mid_z = np.array([float(r[0]) for r in runs]) + 0.5 * (sizes - 1.0)  # each run's mean slice, exactly
+        fit = _line_along_z(mid_z, per, sizes, z)
         return list(zip(fit[:, 0].tolist(), fit[:, 1].tolist())), inside_hu, outside_hu, total
     per_slice = np.concatenate([np.repeat(p[None], r.size, axis=0) for p, r in zip(per, runs)])
     return [tuple(p) for p in per_slice], inside_hu, outside_hu, total
@@ -827,13 +831,15 @@ def _contrast_and_noise(crop: np.ndarray, pool: PooledSlices, free: np.ndarray, 
         return float("nan"), float("nan")
     totals = np.zeros((2, 2))  # [side, (sum, count)]
     ss, n = 0.0, 0
+    flat = crop.reshape(crop.shape[0], -1)
     for g in range(pool.starts.size):
-        block = crop[pool.slices(g)]
-        for j, side in enumerate((inner[g], outer[g])):
-            m = int(side.sum())
+        sides = (np.flatnonzero(inner[g]), np.flatnonzero(outer[g]))
+        both = flat[pool.slices(g)].take(np.concatenate(sides), axis=1).astype(float, copy=False)  # one gather
+        for j, idx in enumerate(sides):
+            m = idx.size
             if m == 0:
                 continue
-            v = block[:, side].astype(float)  # (slices, pixels)
+            v = both[:, :m] if j == 0 else both[:, both.shape[1] - m :]
             row_sum = v.sum(axis=1)
             totals[j] += (row_sum.sum(), v.size)
             if m > 1:
