@@ -353,7 +353,7 @@ def _padding_mask(stored: np.ndarray, pad: tuple[float, float]) -> np.ndarray | 
     return (stored >= kind(first)) & (stored <= kind(last))
 
 
-@functools.lru_cache(maxsize=None)
+@functools.cache
 def _integer_range(dtype: np.dtype) -> tuple[int, int]:
     info = np.iinfo(dtype)
     return int(info.min), int(info.max)

@@ -1,7 +1,6 @@
 """Reading DICOM headers and checking what kind of object a file holds."""
 from __future__ import annotations
 
-import os
 from pathlib import Path
 from typing import Any
 
@@ -26,6 +25,7 @@ from ._quick import (
     element_scan,
     quick_dataset,
     quick_pixels_of,
+    read_and_scan,
     read_quick_pixels,
     remember_scan,
 )
@@ -94,6 +94,7 @@ __all__ = [
     "read_quick_pixels",
     "QuickHeader",
     "QuickPixels",
+    "SCAN_BYTES",
 ]
 
 
@@ -156,16 +157,11 @@ def scan_header(path: Path) -> dict[str, Any] | None:
     DICOM PS3.10, 7.1 (preamble, prefix, File Meta Information); PS3.5, 7.1.2 (data
     element structure with explicit VR).
     """
-    try:
-        with open(path, "rb") as fh:
-            buf = fh.read(SCAN_BYTES)
-            st = os.fstat(fh.fileno())
-    except OSError:
+    read = read_and_scan(path)
+    if read is None:
         return None
+    buf, st, meta, body = read
     whole = len(buf) >= st.st_size
-    if len(buf) < 132 or buf[128:132] != b"DICM":
-        return None
-    meta = element_scan(buf, 132, 0x0003)
     if meta is None or meta.undefined or (not meta.stopped and meta.pos != len(buf)):
         return None
     ts = None
@@ -174,8 +170,9 @@ def scan_header(path: Path) -> dict[str, Any] | None:
             ts = _text_value(buf[start:start + n])
     if ts != EXPLICIT_VR_LITTLE_ENDIAN:
         return None
-    body = element_scan(buf, meta.pos, 0xFFFF)
-    if body is not None and meta.stopped:
+    if body is None and not meta.stopped:
+        body = element_scan(buf, meta.pos, 0xFFFF)  # the file ended with the meta group
+    if body is not None:
         remember_scan(path, st, buf, meta, body)
     if body is None or body.undefined or (not body.stopped and body.pos != len(buf)):
         return None

@@ -43,11 +43,15 @@ EXPLICIT_VR_LITTLE_ENDIAN = "1.2.840.10008.1.2.1"
 CT_IMAGE = "1.2.840.10008.5.1.4.1.1.2"
 #: Bytes read from the start of a file for its header.
 SCAN_BYTES = 32768
+#: Bytes read first; the rest of ``SCAN_BYTES`` only when the header is longer.
+FIRST_READ = 4096
 PIXEL_DATA_TAG = 0x7FE00010
 ITEM, ITEM_END, SEQUENCE_END = (0xFFFE, 0xE000), (0xFFFE, 0xE00D), (0xFFFE, 0xE0DD)
 #: At most this many bytes of remembered discovery scans are kept at once.
 CACHE_LIMIT_BYTES = 32 * 2**20
 
+#: VR codes seen to be two upper-case letters (a set lookup instead of two checks).
+_VALID_VRS: set[bytes] = set()
 _HEAD = struct.Struct("<HH2sH").unpack_from
 _U32 = struct.Struct("<I").unpack_from
 _TAG_PAIR = struct.Struct("<HH").unpack_from
@@ -61,6 +65,7 @@ __all__ = [
     "quick_dataset",
     "quick_pixels_of",
     "read_quick_pixels",
+    "read_and_scan",
     "remember_scan",
     "SCAN_BYTES",
 ]
@@ -152,8 +157,10 @@ def element_scan(buf: bytes, pos: int, stop_group: int) -> ElementScan | None:
         group, elem, vr, length = _HEAD(buf, pos)
         if group >= stop_group or (group == 0x7FE0 and elem == 0x0010):
             return ElementScan(out, pos, True, undefined)
-        if not (vr.isalpha() and vr.isupper()):
-            return None  # not explicit VR after all
+        if vr not in _VALID_VRS:
+            if not (vr.isalpha() and vr.isupper()):
+                return None  # not explicit VR after all
+            _VALID_VRS.add(vr)
         start = pos + 8
         if vr in LONG_VRS:
             if pos + 12 > end:
@@ -399,14 +406,69 @@ def _plain_native_ct(ds: QuickHeader, length: int) -> np.dtype | None:
     return np.dtype("<i2" if signed else "<u2")
 
 
-def _read_head(path: Path) -> tuple[bytes, int] | None:
+class HeadScan(NamedTuple):
+    """The first bytes of a file and their element scan (see :func:`read_and_scan`)."""
+
+    buf: bytes
+    stat: os.stat_result
+    meta: ElementScan | None
+    body: ElementScan | None
+
+
+def _read_prefix(fd: int, n: int) -> bytes:
+    parts, got = [], 0
+    while got < n:
+        part = os.read(fd, n - got)
+        if not part:
+            break
+        parts.append(part)
+        got += len(part)
+    return b"".join(parts)
+
+
+def _scan_prefix(buf: bytes) -> tuple[ElementScan | None, ElementScan | None]:
+    if len(buf) < 132 or buf[128:132] != b"DICM":
+        return None, None
+    meta = element_scan(buf, 132, 0x0003)
+    if meta is None or not meta.stopped:
+        return meta, None
+    return meta, element_scan(buf, meta.pos, 0xFFFF)
+
+
+def _conclusive(buf: bytes, st: os.stat_result, meta: ElementScan | None, body: ElementScan | None) -> bool:
+    """Whether a scan of a prefix of the file is the scan of its first ``SCAN_BYTES``:
+    the whole file was read, or the scan reached the pixel data inside the prefix."""
+    if len(buf) >= st.st_size:
+        return True
+    return meta is not None and body is not None and body.stopped and body.pos + 12 <= len(buf)
+
+
+def read_and_scan(path: Path) -> HeadScan | None:
+    """The first ``SCAN_BYTES`` of a file (or fewer, when the header and the start of the
+    pixel data lie in the first ``FIRST_READ`` bytes), with their element scan.
+
+    The scan of the short read is used only when it reached the pixel data inside it (or
+    the file ended); otherwise the full ``SCAN_BYTES`` are read and scanned, so the
+    result is always that of the first ``SCAN_BYTES``. None when the file cannot be read.
+    ``meta`` is None when there is no "DICM" prefix or the meta group cannot be scanned;
+    ``body`` is None when the meta group did not end or the data set cannot be scanned.
+    """
     try:
-        with open(path, "rb") as fh:
-            buf = fh.read(SCAN_BYTES)
-            size = os.fstat(fh.fileno()).st_size
+        fd = os.open(path, os.O_RDONLY)
     except OSError:
         return None
-    return buf, size
+    try:
+        st = os.fstat(fd)
+        buf = _read_prefix(fd, FIRST_READ)
+        meta, body = _scan_prefix(buf)
+        if not _conclusive(buf, st, meta, body):
+            buf += _read_prefix(fd, SCAN_BYTES - len(buf))
+            meta, body = _scan_prefix(buf)
+    except OSError:
+        return None
+    finally:
+        os.close(fd)
+    return HeadScan(buf, st, meta, body)
 
 
 def quick_dataset(path: Path) -> QuickHeader | None:
@@ -430,16 +492,10 @@ def quick_dataset(path: Path) -> QuickHeader | None:
     if kept is not None:
         (_, buf, meta, body), size = kept
     else:
-        read = _read_head(path)
+        read = read_and_scan(path)
         if read is None:
             return None
-        buf, size = read
-        if len(buf) < 132 or buf[128:132] != b"DICM":
-            return None
-        meta = element_scan(buf, 132, 0x0003)
-        if meta is None or not meta.stopped:
-            return None
-        body = element_scan(buf, meta.pos, 0xFFFF)
+        buf, size, meta, body = read.buf, read.stat.st_size, read.meta, read.body
     return _quick_from_scan(path, buf, size, meta, body)
 
 
@@ -450,7 +506,7 @@ def _transfer_syntax_of(buf: bytes, meta: ElementScan) -> str | None:
     return None
 
 
-def _quick_from_scan(path: Path, buf: bytes, size: int, meta: ElementScan, body: ElementScan | None) -> QuickHeader | None:
+def _quick_from_scan(path: Path, buf: bytes, size: int, meta: ElementScan | None, body: ElementScan | None) -> QuickHeader | None:
     if meta is None or not meta.stopped or body is None or not body.stopped or body.pos + 12 > len(buf):
         return None
     if any(t < 0x00080000 for t, *_ in body.elements):

@@ -59,3 +59,24 @@ def test_quick_get_equals_pydicom_get(one_file):
     for name in ("Rows", "Columns", "BitsAllocated", "PixelRepresentation", "Modality", "SOPInstanceUID",
                  "SeriesInstanceUID", "PhotometricInterpretation", "PatientWeight"):
         assert quick_get(raw, name, None) == ref.get(name, None), name
+
+
+def _pixel_data_offset(path: Path) -> int:
+    data = path.read_bytes()
+    return data.index(b"\xe0\x7f\x10\x00OW")
+
+
+def test_headers_around_the_first_read_scan_as_with_the_whole_window(one_file, tmp_path):
+    """Headers that end just before, across and just after the short first read
+    (``FIRST_READ`` bytes) scan exactly as pydicom reads them, and are read quickly."""
+    from reconaudit.checker.load._quick import FIRST_READ, quick_dataset
+
+    base = _pixel_data_offset(one_file)
+    for target in range(FIRST_READ - 16, FIRST_READ + 6, 2):
+        ds = pydicom.dcmread(one_file)
+        ds.ImageComments = "c" * (target - base - 8)  # LT: 8-byte element header
+        out = tmp_path / f"h{target}.dcm"
+        ds.save_as(out, enforce_file_format=True)
+        assert _pixel_data_offset(out) == target
+        assert scan_header(out) == header_facts(read_header(out)), target
+        assert quick_dataset(out) is not None, target
