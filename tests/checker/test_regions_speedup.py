@@ -427,3 +427,25 @@ def test_pattern_tables_equal_labelling_each_pattern_alone() -> None:
         assert np.array_equal(t.sub[code], lab)
         expected = [int(sum(1 << i for i in range(16) if lab[i] == k + 1)) for k in range(8)]
         assert t.submask[code].tolist() == expected
+
+
+@pytest.mark.parametrize("table_lookup", [False, True])
+def test_count_and_centroid_of_patterns_equal_the_unpacked_mask(table_lookup: bool, monkeypatch) -> None:
+    """Voxel count and centre of mass from the block patterns (population counts of block
+    rows and columns) equal ``centroid_of`` of the unpacked mask placed in the volume,
+    with numpy's population count and with the look-up table used without it."""
+    from reconaudit.checker import regions
+
+    if table_lookup:
+        monkeypatch.delattr(np, "bitwise_count", raising=False)
+    rng = np.random.default_rng(11)
+    pat = rng.integers(0, 65536, size=(5, 6, 7), dtype=np.uint16)
+    pat[rng.random(pat.shape) < 0.3] = regions.FULL
+    pat[rng.random(pat.shape) < 0.2] = 0
+    cbox = (slice(3, 8), slice(2, 8), slice(1, 8))
+    volume = np.zeros((10, 40, 40), dtype=bool)
+    volume[3:8, 8:32, 4:32] = _unpack(pat)
+    count, centre = regions._count_and_centroid(pat, cbox)
+    assert count == int(np.count_nonzero(volume))
+    assert np.allclose(centre, centroid_of(volume), rtol=0, atol=1e-12)
+    assert regions._count_and_centroid(np.zeros_like(pat), cbox) == (0, None)
