@@ -341,21 +341,46 @@ class Workspace:
 
     def __init__(self) -> None:
         self._buffers: dict[str, np.ndarray] = {}
+        self._views: dict[tuple[str, tuple[int, ...], Any], np.ndarray] = {}
 
     def get(self, name: str, shape: tuple[int, ...], dtype: Any = np.float32) -> np.ndarray:
         """A C-contiguous view of buffer ``name`` in this shape and dtype (contents undefined)."""
+        key = (name, shape, dtype)
+        view = self._views.get(key)
+        if view is not None:
+            return view
         shape = tuple(int(s) for s in shape)
-        dtype = np.dtype(dtype)
-        nbytes = math.prod(shape) * dtype.itemsize
+        dt = np.dtype(dtype)
+        nbytes = math.prod(shape) * dt.itemsize
         buf = self._buffers.get(name)
         if buf is None or buf.size < nbytes:
             buf = self._buffers[name] = np.empty(max(nbytes, 64), dtype=np.uint8)
-        return buf[:nbytes].view(dtype).reshape(shape)
+            self._views = {k: v for k, v in self._views.items() if k[0] != name}  # views of the old buffer
+        if len(self._views) > 512:  # many shapes seen: keep the lookup small
+            self._views.clear()
+        view = self._views[key] = buf[:nbytes].view(dt).reshape(shape)
+        return view
 
     @property
     def nbytes(self) -> int:
         """Bytes held by the workspace's buffers."""
         return sum(b.nbytes for b in self._buffers.values())
+
+
+_THREAD_WORKSPACES = threading.local()
+
+
+def thread_workspace() -> Workspace:
+    """The calling thread's :class:`Workspace` (made on first use).
+
+    The screen's worker threads end with their volume, and their workspaces with them;
+    a thread that screens again (the viewer's one-slice screens) keeps its few MB of
+    buffers from one screen to the next instead of faulting them in again.
+    """
+    ws = getattr(_THREAD_WORKSPACES, "ws", None)
+    if ws is None:
+        ws = _THREAD_WORKSPACES.ws = Workspace()
+    return ws
 
 
 def scratch(ws: Workspace | None, name: str, shape: tuple[int, ...], dtype: Any = np.float32) -> np.ndarray:
@@ -808,7 +833,10 @@ def _upsample_axis(coarse: np.ndarray, factor: int, axis: int, ws: "Workspace | 
     """Linear interpolation along ``axis`` from block centres to the ``factor`` pixels of each block.
 
     Pixel ``k`` of block ``j`` is ``c[j] + w (c[j -/+ 1] - c[j])`` (``c[j]`` itself past
-    the first and last centres), formed in the output's own memory.
+    the first and last centres). The differences of neighbouring centres are formed
+    once; toward the previous centre ``c[j] - w (c[j] - c[j-1])`` is the same number
+    (negation and the product's rounding are symmetric), so each offset costs one
+    product and one strided write.
     """
     c = np.asarray(coarse, dtype=np.float32)
     nd = c.ndim
@@ -818,14 +846,22 @@ def _upsample_axis(coarse: np.ndarray, factor: int, axis: int, ws: "Workspace | 
         out = scratch(ws, tag + "out", tuple(shape))
     head, tail = _along(axis, slice(None, -1), nd), _along(axis, slice(1, None), nd)
     first, last = _along(axis, slice(0, 1), nd), _along(axis, slice(-1, None), nd)
+    step_shape = list(c.shape)
+    step_shape[axis] -= 1
+    diff = np.subtract(c[tail], c[head], out=scratch(ws, tag + "diff", tuple(step_shape)))  # c[j+1] - c[j]
+    scaled = scratch(ws, tag + "scaled", tuple(step_shape))
+    done = None
     for k, (side, w) in enumerate(_upsample_weights(factor)):
         view = out[_along(axis, slice(k, None, factor), nd)]
-        inner, edge = (view[tail], first) if side < 0 else (view[head], last)
-        centre = c[tail] if side < 0 else c[head]
-        np.subtract(c[head] if side < 0 else c[tail], centre, out=inner)
-        inner *= np.float32(w)
-        inner += centre
-        view[edge] = c[edge]
+        if done != w:
+            np.multiply(diff, np.float32(w), out=scaled)
+            done = w
+        if side < 0:
+            np.subtract(c[tail], scaled, out=view[tail])
+            view[first] = c[first]
+        else:
+            np.add(c[head], scaled, out=view[head])
+            view[last] = c[last]
     return out
 
 
@@ -904,6 +940,19 @@ def coarse_noise_gain(square_mean: np.ndarray, weight: np.ndarray, scale_hu: np.
     return upsample_linear(gain, k, weight.shape[-2:], ws, "gain_up")
 
 
+def sample_median(values: np.ndarray) -> float:
+    """The median of a 1-D sample (which is reordered in place), as ``np.median`` gives it.
+
+    The two middle order statistics from one partition; their mean for an even count.
+    """
+    n = values.size
+    lo, hi = (n - 1) // 2, n // 2
+    values.partition([lo, hi] if hi != lo else hi)
+    if hi == lo:
+        return float(values[hi])
+    return float((values[lo] + values[hi]) / 2)
+
+
 def grid_subsample(values: np.ndarray, mask: np.ndarray, max_samples: int, count: int | None = None) -> np.ndarray:
     """Values under ``mask`` on a regular sub-grid of at most about ``max_samples`` points.
 
@@ -961,7 +1010,7 @@ def screen_textures(images: np.ndarray, allowed: np.ndarray, cfg: dict[str, Any]
         for i in range(k):
             if usable[i] and n_valid[i] < valid[i].size:
                 sample = grid_subsample(images[i], valid[i], FILL_SAMPLES)
-                fill[i] = np.median(sample) if sample.size else np.median(images[i][valid[i]])
+                fill[i] = sample_median(sample) if sample.size else np.median(images[i][valid[i]])
         if all(all_finite):  # image - (image - fill) * ~valid, three cheap passes
             img = np.subtract(images, fill, dtype=np.float32, out=residual)  # the residual replaces it below
             img *= valid
@@ -985,7 +1034,7 @@ def screen_textures(images: np.ndarray, allowed: np.ndarray, cfg: dict[str, Any]
         usable[i] &= n_inside[i] * f * f >= min_count
         if usable[i]:
             sample = np.abs(grid_subsample(residual[i, ::f, ::f], inside[i], ROBUST_SAMPLES, int(n_inside[i])))
-            value = 1.4826 * float(np.median(sample)) if sample.size else 0.0
+            value = 1.4826 * sample_median(sample) if sample.size else 0.0
             usable[i] &= value > 0 and math.isfinite(value)
             scale[i] = value if usable[i] else 1.0
     limit = (float(cfg["clip_sigma"]) * scale).astype(np.float32).reshape(k, 1, 1)
@@ -1012,16 +1061,19 @@ def screen_texture(image: np.ndarray, allowed: np.ndarray, cfg: dict[str, Any]) 
 def cell_powers(spectra: np.ndarray, bins: SpectralBins, ws: Workspace | None = None) -> np.ndarray:
     """Summed |F|^2 of the in-band samples per (ring, orientation) cell: ``(k, n_rings, n_bins)``.
 
-    ``spectra`` are rfft2 spectra ``(k, ny, nx // 2 + 1)``; one sparse product with the
-    cell-membership matrix of ``bins`` per spectrum (float64 sums). ``ws`` lends the
-    squares.
+    ``spectra`` are rfft2 spectra ``(k, ny, nx // 2 + 1)`` (or a sequence of ``k`` such
+    2-D spectra); one sparse product per spectrum with the
+    cell-membership matrix of ``bins`` (float64 sums of the float32 powers, which are
+    written as float64 so that the product needs no converted copy). ``ws`` lends the
+    squares and the powers.
     """
-    out = np.empty((spectra.shape[0], bins.n_rings, bins.n_bins), dtype=np.float64)
+    out = np.empty((len(spectra), bins.n_rings, bins.n_bins), dtype=np.float64)
     for i, spectrum in enumerate(spectra):
         v = spectrum.view(np.float32)
         sq = np.multiply(v, v, out=scratch(ws, "cell_sq", v.shape))
-        power = np.add(sq[:, 0::2], sq[:, 1::2], out=scratch(ws, "cell_power", spectrum.shape)).ravel()
-        out[i] = (bins.cell_matrix @ power).reshape(bins.n_rings, bins.n_bins)
+        power = scratch(ws, "cell_power", spectrum.shape, np.float64)
+        np.add(sq[:, 0::2], sq[:, 1::2], out=power, dtype=np.float32)
+        out[i] = (bins.cell_matrix @ power.ravel()).reshape(bins.n_rings, bins.n_bins)
     return out
 
 
@@ -1646,12 +1698,8 @@ def screen_volume(volume: Volume, regions: Regions | None, cfg: dict[str, Any]) 
     slab = min(slab_size(volume.spacing_mm[0], cfg), nz)
     per_task = SCREEN_STACK * slab
     starts = list(range(0, nz, per_task))
-    workspaces = threading.local()  # one Workspace per screening thread, for this volume
-
     def one(i: int) -> list[np.ndarray | str]:
-        ws = getattr(workspaces, "ws", None)
-        if ws is None:
-            ws = workspaces.ws = Workspace()
+        ws = thread_workspace()
         z0, z1 = starts[i], min(starts[i] + per_task, nz)
         allowed = masks.stack(z0, z1, ws)
         if slab == 1:
@@ -1707,7 +1755,7 @@ def refine_flagged_slabs(volume: Volume, masks: "AllowedMasks", factor: int, bin
     def one(i: int) -> list[np.ndarray | str]:
         zs = runs[i]
         allowed = np.stack([masks(z) for z in zs])
-        return screen_stack(volume.hu[zs], allowed, factor, bins, cfg)
+        return screen_stack(volume.hu[zs], allowed, factor, bins, cfg, thread_workspace())
 
     own: dict[int, np.ndarray] = dict(profiles)
     for zs, outcomes in zip(runs, map_slices(one, len(runs), SCREEN_THREADS)):
@@ -1721,9 +1769,13 @@ def refine_flagged_slabs(volume: Volume, masks: "AllowedMasks", factor: int, bin
         profiles[z] = own[z]
 
 
-def screen_slice(image: np.ndarray, allowed: np.ndarray, factor: int, bins: SpectralBins, cfg: dict[str, Any]) -> np.ndarray | str:
-    """Angular profile of one full-resolution slice, or why it was skipped (a ``Screen.skipped`` key)."""
-    return screen_stack(image[None], allowed[None], factor, bins, cfg)[0]
+def screen_slice(image: np.ndarray, allowed: np.ndarray, factor: int, bins: SpectralBins, cfg: dict[str, Any],
+                 ws: Workspace | None = None) -> np.ndarray | str:
+    """Angular profile of one full-resolution slice, or why it was skipped (a ``Screen.skipped`` key).
+
+    ``ws`` lends the temporaries (the calling thread's :func:`thread_workspace` if None).
+    """
+    return screen_stack(image[None], allowed[None], factor, bins, cfg, ws or thread_workspace())[0]
 
 
 def screen_stack(images: np.ndarray, allowed: np.ndarray, factor: int, bins: SpectralBins, cfg: dict[str, Any],
@@ -1735,7 +1787,12 @@ def screen_stack(images: np.ndarray, allowed: np.ndarray, factor: int, bins: Spe
     own slice only.
     """
     k = images.shape[0]
-    binned = bin_slice(images, factor) if factor == 1 else np.stack([bin_slice(images[i], factor) for i in range(k)])
+    if factor == 1:
+        binned = images
+    else:
+        binned = scratch(ws, "slab_means", (k,) + tuple(n // factor for n in images.shape[-2:]))
+        for i in range(k):
+            bin_slice(images[i], factor, binned[i], ws)
     high, low = binned.reshape(k, -1).max(axis=1), binned.reshape(k, -1).min(axis=1)
     finite = np.isfinite(high) & np.isfinite(low)
     outcomes: list[np.ndarray | str] = ["without usable pixels"] * k
@@ -1764,7 +1821,7 @@ def profiles_of_textures(textures: np.ndarray, usable: Any, bins: SpectralBins,
     good = [j for j in range(len(textures)) if usable[j]]
     if not good:
         return []
-    cells = [cell_powers(sfft.rfft2(textures[j:j + 1], axes=(-2, -1), overwrite_x=True), bins, ws)[0] for j in good]
+    cells = cell_powers([sfft.rfft2(textures[j], overwrite_x=True) for j in good], bins, ws)
     found = [(j, profile_of_cells(c, bins)) for j, c in zip(good, cells)]
     return [(j, profile) for j, profile in found if profile is not None]
 
@@ -1864,7 +1921,7 @@ def bin_slab(images: np.ndarray, members: list[int], factor: int, out: np.ndarra
 
 
 #: full-resolution rows of a slab summed at a time by :func:`bin_slab`
-SLAB_SUM_ROWS = 64
+SLAB_SUM_ROWS = 256
 
 
 def slab_mean(binned: np.ndarray, members: list[int]) -> np.ndarray:
