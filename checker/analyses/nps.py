@@ -25,13 +25,17 @@ of the detrended ROI pixels, reported beside it as ``roi_sd_hu``).
 
 Speed (method choices, not approximations of the formulas above): the ROIs are detrended
 once for the 2-D NPS, their SD and the 3-D NPS; DFTs are real-input DFTs completed by
-Hermitian symmetry, and the 3-D DFT of a block is the DFT along z of its slices' 2-D
-DFTs. The ROIs are gathered once into one single-precision array (one block copy per
-ROI), their means taken out in double precision and the polynomial fit removed in place
-on the mean-free pixels; squared spectra are summed in single precision over chunks of
-16 ROIs and in double precision across chunks. The phantom search reads a strided working grid (:mod:`._phantom`) and the
-patient search a few slices, so the records are estimates that may differ slightly
-from a search over every pixel; record keys, types and meaning are unchanged.
+Hermitian symmetry, taken 16 ROIs at a time. The ROIs are gathered once into one
+single-precision array (one block copy per ROI), their means taken out in double
+precision and the polynomial fit removed in place on the mean-free pixels by two small
+matrix products with the orthonormal basis images; the SD before detrending is the
+residual's plus the fit's energy (Pythagoras). Squared spectra are summed in single
+precision over chunks of 16 ROIs and in double precision across chunks. The 3-D record
+needs the 3-D NPS only integrated over fy and fx, which by Parseval in-plane is the
+energy of the blocks' DFT along z, computed from the Gram matrices of each block's
+slices (no 3-D spectra; the same numbers, tested against :func:`nps_3d`). The phantom search reads a strided working
+grid (:mod:`._phantom`) and the patient search a few slices, so the records are
+estimates that may differ slightly from a search over every pixel; record keys, types and meaning are unchanged.
 Non-finite voxels: phantom, user and pair ROIs are measured only when every pixel of
 the slices they lie on is finite (:func:`._phantom.nonfinite_reason`; a NaN on a slice
 the NPS does not read no longer stops it, a method choice for speed made by the lead's
@@ -110,7 +114,7 @@ SOURCES: dict[str, str] = {
 }
 
 _DETRENDS = ("mean", "poly1", "poly2")
-_CHUNK = 128  # ROIs detrended or transformed at a time (bounds memory)
+_CHUNK = 16  # ROIs transformed at a time (their spectra stay in the processor cache)
 _POWER_CHUNK = 16  # spectra whose squares are summed in single precision before adding in double
 
 
@@ -860,8 +864,10 @@ def measure_nps(
     The ROIs are gathered once (one block copy per ROI, single precision), each ROI's
     mean is taken out in double precision, and the polynomial fit is removed by the
     projections of :func:`detrend_rois` (the same least-squares fit, single precision on
-    the mean-free pixels); the 2-D NPS, the detrended SD and the 3-D NPS all use those
-    residuals and their real DFT.
+    the mean-free pixels); the 2-D NPS (real DFTs of 16 ROIs at a time), the detrended
+    SD and the 3-D NPS (from the Gram matrices of each block's slices,
+    :func:`_measure_3d`) all use those residuals; the SD before detrending follows from
+    the residuals and the fit coefficients (Pythagoras).
 
     References
     ----------
@@ -890,9 +896,8 @@ def measure_roi_images(
     res_var = _mean_square(res)
     raw_var = res_var + fit_energy / (stack.shape[1] * stack.shape[2])  # |raw|^2 = |res|^2 + |fit|^2
     # single precision DFT (power summed in double): the integral stays within 1e-7 of
-    # the pixel variance, far below any tolerance; the spectra are kept for the 3-D NPS
-    spec = scipy.fft.rfft2(res)
-    nps, fy, fx = _nps_2d_of_residuals(res, spacing_zyx_mm[1:], spec)
+    # the pixel variance, far below any tolerance; transformed 16 ROIs at a time
+    nps, fy, fx = _nps_2d_of_residuals(res, spacing_zyx_mm[1:])
     variance = float(nps.sum() * abs(fy[1] - fy[0]) * abs(fx[1] - fx[0]))
     if not variance > 1e-12:
         return "no noise: the detrended ROI pixels are constant"
