@@ -402,7 +402,7 @@ def _read_all(src: SeriesSource) -> tuple[list[tuple[Path, Dataset]], list[tuple
     """Every file's dataset: plain native CT files from the quick header parse (pixels
     left on disk), everything else read whole by pydicom; see :func:`_checked_quick`."""
     good, bad = [], []
-    for path in map(Path, src.files):
+    for path in (p if isinstance(p, Path) else Path(p) for p in src.files):
         try:
             ds = quick_dataset(path)
             good.append((path, ds if ds is not None else read_dataset(path)))

@@ -509,8 +509,6 @@ def _transfer_syntax_of(buf: bytes, meta: ElementScan) -> str | None:
 def _quick_from_scan(path: Path, buf: bytes, size: int, meta: ElementScan | None, body: ElementScan | None) -> QuickHeader | None:
     if meta is None or not meta.stopped or body is None or not body.stopped or body.pos + 12 > len(buf):
         return None
-    if any(t < 0x00080000 for t, *_ in body.elements):
-        return None
     pos = body.pos
     vr = buf[pos + 4:pos + 6]
     if vr not in (b"OW", b"OB"):
@@ -523,6 +521,8 @@ def _quick_from_scan(path: Path, buf: bytes, size: int, meta: ElementScan | None
     if trailing is None or _transfer_syntax_of(buf, meta) != EXPLICIT_VR_LITTLE_ENDIAN:
         return None
     header = QuickHeader(buf, meta.elements, body.elements, trailing[0], trailing[1], vr, QuickPixels((start, length, None)))
+    if min(header._elements) < 0x00080000:
+        return None  # meta or command elements inside the data set: left to pydicom
     dtype = _plain_native_ct(header, length)
     if dtype is None:
         return None
