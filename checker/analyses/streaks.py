@@ -1011,10 +1011,10 @@ def screen_textures(images: np.ndarray, allowed: np.ndarray, cfg: dict[str, Any]
             if usable[i] and n_valid[i] < valid[i].size:
                 sample = grid_subsample(images[i], valid[i], FILL_SAMPLES)
                 fill[i] = sample_median(sample) if sample.size else np.median(images[i][valid[i]])
-        if all(all_finite):  # image - (image - fill) * ~valid, three cheap passes
-            img = np.subtract(images, fill, dtype=np.float32, out=residual)  # the residual replaces it below
-            img *= valid
-            img += fill
+        if all(all_finite):  # the fill everywhere, then the valid pixels (the residual replaces it below)
+            img = residual
+            img[...] = fill
+            np.copyto(img, images, where=valid)
         else:
             img = np.where(valid, images, fill)
     sigma = float(cfg["highpass_sigma_px"])
@@ -1038,8 +1038,7 @@ def screen_textures(images: np.ndarray, allowed: np.ndarray, cfg: dict[str, Any]
             usable[i] &= value > 0 and math.isfinite(value)
             scale[i] = value if usable[i] else 1.0
     limit = (float(cfg["clip_sigma"]) * scale).astype(np.float32).reshape(k, 1, 1)
-    np.minimum(residual, limit, out=residual)
-    np.maximum(residual, -limit, out=residual)
+    np.clip(residual, -limit, limit, out=residual)
     reach_eq = float(cfg["noise_equalise_sigma_px"])
     if reach_eq > 0:
         squares = scratch(ws, "tex_squares", weight.shape)
@@ -1518,6 +1517,7 @@ class AllowedMasks:
         self.regions, self.factor, self.cfg = regions, factor, cfg
         self.base = base_allowed_mask(regions, factor, shape_b, cfg)
         self._tables: dict[bytes, np.ndarray] = {}
+        self._kept: dict[bytes, np.ndarray] = {}  # base mask minus the table's exclusion, per table
 
     def __call__(self, z: int) -> np.ndarray:
         regions = self.regions
@@ -1544,23 +1544,31 @@ class AllowedMasks:
         """
         k = z1 - z0
         allowed = scratch(ws, "masks_allowed", (k,) + self.base.shape, bool)
-        allowed[...] = self.base
         regions = self.regions
         if regions is None:
+            allowed[...] = self.base
             return allowed
         # the binned masks and the eroded body lend the buffers of the slab means and the
         # residual: those are not in use while a stack's masks are formed
         binned = bin_mask(regions.table[z0:z1], self.factor, ws, "tex_residual")  # one pass for the stack
-        for i in np.flatnonzero(binned.reshape(k, -1).any(axis=1)):
-            table = binned[i]
-            key = np.packbits(table).tobytes()
-            excluded = self._tables.get(key)
-            if excluded is None:
-                excluded = self._tables.setdefault(key, table_exclusion(table, int(self.cfg["table_band_px"])))
-            allowed[i] &= ~excluded
+        kept = [self._kept_beside_table(binned[i]) for i in range(k)]
         outline = inner_boundary(bin_mask(regions.body[z0:z1], self.factor, ws, "tex_residual"), ws, "slab_means")
-        allowed &= np.logical_not(outline, out=outline)
+        for i in range(k):
+            np.greater(kept[i], outline[i], out=allowed[i])  # kept and not on the outline
         return allowed
+
+    def _kept_beside_table(self, table: np.ndarray) -> np.ndarray:
+        """The base mask without the exclusion of the binned ``table`` (kept per distinct table;
+        an empty table excludes nothing)."""
+        key = np.packbits(table).tobytes()
+        kept = self._kept.get(key)
+        if kept is None:
+            if table.any():
+                kept = self.base & ~table_exclusion(table, int(self.cfg["table_band_px"]))
+            else:
+                kept = self.base
+            kept = self._kept.setdefault(key, kept)
+        return kept
 
 
 def table_band(table: np.ndarray, margin_px: int) -> np.ndarray:
@@ -1861,8 +1869,10 @@ def screen_slab_stack(images: np.ndarray, allowed: np.ndarray, factor: int, bins
         np.copyto(masks[j], allowed[m[0]])
         for i in m[1:]:
             masks[j] &= allowed[i]
-    high, low = means.reshape(n, -1).max(axis=1), means.reshape(n, -1).min(axis=1)
-    textures, usable = screen_textures(means, masks, cfg, np.isfinite(high) & np.isfinite(low), ws)
+    # a sum of finite float32 HU is finite: one pass proves each slab mean free of NaN and
+    # infinity (a non-finite sum only sends the slab down the careful path)
+    all_finite = np.isfinite(means.reshape(n, -1).sum(axis=1))
+    textures, usable = screen_textures(means, masks, cfg, all_finite, ws)
     for j, profile in profiles_of_textures(textures, usable, bins, ws):
         for i in members[j]:
             outcomes[i] = profile
