@@ -560,7 +560,8 @@ def refine_circle_centres(
         total = w.sum(axis=1)
         stop = total <= 0
         active[rows[stop]] = False
-        rows, w, total = rows[~stop], w[~stop], total[~stop]
+        if stop.any():
+            rows, w, total = rows[~stop], w[~stop], total[~stop]
         ny, nx = (w * yy[None]).sum(axis=1) / total, (w * xx[None]).sum(axis=1) / total
         moved = np.hypot(ny - cy[rows], nx - cx[rows])
         cy[rows], cx[rows] = ny, nx
