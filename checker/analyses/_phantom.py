@@ -571,7 +571,8 @@ def _find_phantom(volume: Volume, regions: Regions, s: dict[str, float]) -> Phan
         finite = _finite_inside(img, inner)
         med = _medians_of(img, inner)
         keep = finite & (np.abs(med) <= s["water_window_hu"])  # NaN (no inner pixel) fails
-        zs, inner, img, med = zs[keep], inner[keep], img[keep], med[keep]
+        if not keep.all():  # (no copies when every slice passes)
+            zs, inner, img, med = zs[keep], inner[keep], img[keep], med[keep]
         centre[zs] = np.stack([cy[zs] * f, cx[zs] * f], axis=1)
         radius[zs], median[zs], on[zs] = r[zs] * f, med, True
         if zs.size:
