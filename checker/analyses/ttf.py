@@ -22,7 +22,13 @@ Speed (method choices, documented so that a reader knows the records are estimat
 the skin edge is measured on a fixed budget of outline normals (``skin_normals_per_slice``
 on at most ``skin_max_slices`` slices) found on a decimated screen of the body outline,
 from the pixels of a thin strip along each normal; the insert search and the rod
-measurements work on crops about each rod. A rod's consecutive slices whose fitted
+measurements work on crops about each rod. The phantom search that tells where rods
+may be runs on a decimated copy: at most 256 pixels a side and about 16 slices, at most
+10 mm apart unless that takes more than 32 slices (a rod module shorter than the step
+may fall between two of them).
+Each rod's pixels are copied once, as one contiguous block over the slices the search
+saw it on, when its slices are found; its slice extent and its measurement read that
+copy (the same pixel values). A rod's consecutive slices whose fitted
 centres agree within a fifth of an ESF bin are summed before the radial binning (one
 binning of one summed image per group instead of one per slice; each pixel's distance
 is then taken to its group's centre, at most 0.02 px from its own slice's). Values in
