@@ -387,7 +387,8 @@ def _insert_slices(
     dev = padded[:, r : r + hu.shape[1], r : r + hu.shape[2]]
     mad = _medians_of(dev, inner) * 1.4826
     threshold = np.maximum(s["insert_contrast_hu"], 5.0 * mad).astype(np.float32)
-    out = (dev > threshold[:, None, None]) & inner
+    out = np.greater(dev, threshold[:, None, None])
+    out &= inner
     has = np.zeros(hu.shape[0], dtype=bool)
     candidates = np.flatnonzero(out.any(axis=(1, 2)))
     if candidates.size:
@@ -565,7 +566,8 @@ def _find_phantom(volume: Volume, regions: Regions, s: dict[str, float]) -> Phan
     body, cy, cx, r, fill = _screened_disc_stats(regions.body, f, _slice_step(volume, s), pixel_mm, s)
     zs = np.flatnonzero((r * f * pixel_mm >= s["min_radius_mm"]) & (fill >= s["min_fill"]))
     if zs.size:
-        inner, box = _inner_discs(body[zs], cy[zs], cx[zs], s["inner_fraction"] * r[zs])
+        run = _as_slice(zs)  # evenly spaced slices (a phantom series: all of them) as a view
+        inner, box = _inner_discs(body[zs if run is None else run], cy[zs], cx[zs], s["inner_fraction"] * r[zs])
         rows = slice(box[0].start * f, box[0].stop * f)
         img = _strided(volume.hu, f, rows, slice(box[1].start * f, box[1].stop * f), zs)
         finite = _finite_inside(img, inner)
