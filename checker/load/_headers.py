@@ -1,6 +1,7 @@
 """Reading DICOM headers and checking what kind of object a file holds."""
 from __future__ import annotations
 
+import math
 from pathlib import Path
 from typing import Any
 
@@ -354,7 +355,9 @@ def as_floats(value: Any, n: int) -> np.ndarray | None:
     if value is None:
         return None
     try:
-        arr = np.asarray([float(v) for v in value], dtype=float)
+        values = [float(v) for v in value]
     except (TypeError, ValueError):
         return None
-    return arr if arr.shape == (n,) and np.all(np.isfinite(arr)) else None
+    if len(values) != n or not all(map(math.isfinite, values)):
+        return None
+    return np.array(values, dtype=float)
