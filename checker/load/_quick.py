@@ -315,18 +315,19 @@ def _file_key(st: os.stat_result) -> tuple:
 def remember_scan(path: Path, st: os.stat_result, buf: bytes, meta: ElementScan, body: ElementScan) -> None:
     """Keep discovery's scan of ``path`` (header bytes up to the pixel data) for its load.
 
-    Only scans that stopped at the pixel data are kept, and only while the kept bytes
-    stay under ``CACHE_LIMIT_BYTES``.
+    Only scans that stopped at the pixel data are kept; when the kept bytes would exceed
+    ``CACHE_LIMIT_BYTES``, the oldest scans are dropped first (a series discovered but
+    never loaded does not keep later ones out).
     """
-    if not body.stopped or body.pos + 12 > len(buf):
+    if not body.stopped or body.pos + 12 > len(buf) or body.pos + 12 > CACHE_LIMIT_BYTES:
         return
     head = buf[:body.pos + 12]
     with _LOCK:
-        if _REMEMBERED_BYTES[0] + len(head) > CACHE_LIMIT_BYTES:
-            return
         old = _REMEMBERED.pop(str(path), None)
         if old is not None:
             _REMEMBERED_BYTES[0] -= len(old.buf)
+        while _REMEMBERED and _REMEMBERED_BYTES[0] + len(head) > CACHE_LIMIT_BYTES:
+            _REMEMBERED_BYTES[0] -= len(_REMEMBERED.pop(next(iter(_REMEMBERED))).buf)
         _REMEMBERED[str(path)] = _Remembered(_file_key(st), head, meta, body)
         _REMEMBERED_BYTES[0] += len(head)
 

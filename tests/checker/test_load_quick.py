@@ -241,3 +241,18 @@ def test_padding_found_the_same_with_any_number_of_threads(tmp_path, monkeypatch
     else:
         assert out.padding_mask is None
         assert any("different pixels on different slices" in n for n in out.notes)
+
+
+def test_scans_never_loaded_make_room_for_newer_ones(tmp_path, monkeypatch):
+    """Kept scans of a series that is never loaded are dropped, oldest first, so the
+    scans of a later discovery are still kept for its load."""
+    _series(tmp_path / "a")
+    newer = _series(tmp_path / "b")
+    _quick.forget_scans()
+    monkeypatch.setattr(_quick, "CACHE_LIMIT_BYTES", 8000)
+    discover([tmp_path / "a"])
+    discover([tmp_path / "b"])
+    assert all(str(p) in _quick._REMEMBERED for p in newer)
+    assert len(_quick._REMEMBERED) < 10  # some of the older series' scans were dropped
+    assert _quick._REMEMBERED_BYTES[0] == sum(len(r.buf) for r in _quick._REMEMBERED.values()) <= 8000
+    _quick.forget_scans()
