@@ -339,6 +339,18 @@ class Workspace:
     lent buffer (only values computed from it).
     """
 
+    #: buffers of the screen's steps that are never alive at the same time, one name each:
+    #: binning, the high-pass blur and edge test of a slab, the soft weight, the squares,
+    #: the noise gain, the weight's upsampling, the cell sums (see :func:`screen_textures`;
+    #: a test checks lent results against fresh arrays)
+    SHARED = {
+        **dict.fromkeys(("slab_total", "blur-2ext", "edge_gy", "tex_slice", "cell_sq", "gain_weighted"), "A"),
+        **dict.fromkeys(("bin_rows", "blur-2out", "wtyout", "cell_power", "gain_upyout"), "B"),
+        **dict.fromkeys(("blur-2pair", "edge_gx", "sqr1", "wtxout"), "C"),
+        **dict.fromkeys(("blur-1ext", "fracr1", "wtydiff"), "D"),
+        **dict.fromkeys(("blur-1pair", "wtyscaled"), "E"),
+    }
+
     def __init__(self) -> None:
         self._buffers: dict[str, np.ndarray] = {}
         self._views: dict[tuple[str, tuple[int, ...], Any], np.ndarray] = {}
@@ -349,13 +361,14 @@ class Workspace:
         view = self._views.get(key)
         if view is not None:
             return view
+        name = self.SHARED.get(name, name)
         shape = tuple(int(s) for s in shape)
         dt = np.dtype(dtype)
         nbytes = math.prod(shape) * dt.itemsize
         buf = self._buffers.get(name)
         if buf is None or buf.size < nbytes:
             buf = self._buffers[name] = np.empty(max(nbytes, 64), dtype=np.uint8)
-            self._views = {k: v for k, v in self._views.items() if k[0] != name}  # views of the old buffer
+            self._views = {k: v for k, v in self._views.items() if self.SHARED.get(k[0], k[0]) != name}  # old buffer
         if len(self._views) > 512:  # many shapes seen: keep the lookup small
             self._views.clear()
         view = self._views[key] = buf[:nbytes].view(dt).reshape(shape)
