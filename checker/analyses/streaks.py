@@ -344,7 +344,7 @@ class Workspace:
     #: the noise gain, the weight's upsampling, the cell sums (see :func:`screen_textures`;
     #: a test checks lent results against fresh arrays)
     SHARED = {
-        **dict.fromkeys(("slab_total", "blur-2ext", "edge_gy", "tex_slice", "cell_sq", "gain_weighted"), "A"),
+        **dict.fromkeys(("slab_total", "blur-2ext", "edge_gy", "tex_slice", "cell_sq", "gain_weighted", "inner_shift"), "A"),
         **dict.fromkeys(("bin_rows", "blur-2out", "wtyout", "cell_power", "gain_upyout"), "B"),
         **dict.fromkeys(("blur-2pair", "edge_gx", "sqr1", "wtxout"), "C"),
         **dict.fromkeys(("blur-1ext", "fracr1", "wtydiff"), "D"),
@@ -462,12 +462,16 @@ def inner_boundary(mask: np.ndarray, ws: "Workspace | None" = None, tag: str = "
 
     Equal to ``mask ^ binary_erosion(mask)`` with the cross-shaped structuring element
     and a False border, computed with shifted views instead of a filter (``ws`` lends
-    the eroded mask and the result, buffer ``tag``).
+    the eroded mask and the result, buffer ``tag``). A C-contiguous mask whose rows are
+    whole 64-bit words is eroded eight pixels per operation (:func:`_erode_words`).
     """
     kept = scratch(ws, tag, mask.shape, bool)
     np.copyto(kept, mask)
     kept[..., 0, :] = kept[..., -1, :] = False
     kept[..., 0] = kept[..., -1] = False
+    if mask.ndim >= 2 and mask.shape[-1] % 8 == 0 and mask.flags.c_contiguous and np.little_endian and mask.size:
+        _erode_words(kept.view(np.uint64), mask.view(np.uint64), ws)
+        return kept
     kept[..., 1:, :] &= mask[..., :-1, :]
     kept[..., :-1, :] &= mask[..., 1:, :]
     kept[..., 1:] &= mask[..., :-1]
@@ -475,6 +479,29 @@ def inner_boundary(mask: np.ndarray, ws: "Workspace | None" = None, tag: str = "
     np.logical_not(kept, out=kept)
     kept &= mask
     return kept
+
+
+def _erode_words(kept: np.ndarray, mask: np.ndarray, ws: "Workspace | None") -> None:
+    """:func:`inner_boundary`'s erosion and difference on 64-bit words of boolean bytes (in place).
+
+    ``kept`` (the mask with its border cleared) and ``mask`` are the word views of
+    C-contiguous boolean arrays. Neighbours along y are whole rows of words; along x
+    a neighbour is the next byte, i.e. the flat words shifted by 8 bits with the carry
+    from the adjacent word (little-endian byte order). A carry across a row's end lands
+    on a border pixel, which is False already. Finally ``mask & ~kept`` bytewise.
+    """
+    kept[..., 1:, :] &= mask[..., :-1, :]
+    kept[..., :-1, :] &= mask[..., 1:, :]
+    k, m = kept.reshape(-1), mask.reshape(-1)
+    shifted = scratch(ws, "inner_shift", m.shape, np.uint64)
+    np.left_shift(m, np.uint64(8), out=shifted)  # byte b takes byte b - 1
+    shifted[1:] |= m[:-1] >> np.uint64(56)
+    k &= shifted
+    np.right_shift(m, np.uint64(8), out=shifted)  # byte b takes byte b + 1
+    shifted[:-1] |= m[1:] << np.uint64(56)
+    k &= shifted
+    np.invert(k, out=k)
+    k &= m
 
 
 def strong_edges(smoothed: np.ndarray, step_hu: float, sigma_px: float) -> np.ndarray:

@@ -553,3 +553,20 @@ def test_workspace_screen_equals_the_screen_with_fresh_arrays():
         alone = [streaks.screen_slice(vol.hu[z], masks(z), 2, bins, cfg) for z in range(z0, z0 + 4)]
         for a, b in zip(one, alone):
             assert np.allclose(a, b, rtol=1e-6, atol=1e-9)
+
+
+def test_inner_boundary_word_path_equals_the_erosion():
+    """Masks whose rows are whole 64-bit words are eroded by word shifts; the outline equals
+    ``mask ^ binary_erosion(mask)`` (scipy.ndimage, cross-shaped element, False border)."""
+    from scipy import ndimage
+
+    rng = np.random.default_rng(14)
+    for shape in [(3, 12, 64), (9, 16), (2, 5, 8)]:
+        m = ndimage.gaussian_filter(rng.normal(size=shape), (0, 1.0, 1.0)[-len(shape):]) > 0.0
+        m[..., :, 7] = True  # a column across word boundaries
+        got = streaks.inner_boundary(m)
+        lent = streaks.inner_boundary(m, streaks.Workspace())
+        for z in np.ndindex(shape[:-2]):
+            expected = m[z] ^ ndimage.binary_erosion(m[z])
+            assert np.array_equal(got[z], expected)
+            assert np.array_equal(lent[z], expected)
