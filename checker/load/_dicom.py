@@ -2,12 +2,19 @@
 
 Plain files (single-frame CT Image, Explicit VR Little Endian, 16 bits allocated and
 stored, every element of defined length or a followable sequence) are parsed by the
-project's own element scan (:func:`~._headers.quick_dataset`) and their pixels read
-straight from disk into the array; everything else is read by pydicom. The first quickly
-read file of each series is read again by pydicom and must agree in every element and
-every stored value, else the whole series is read by pydicom. Files are read and rescaled
-on ``READ_THREADS`` threads. The Volume is the same either way (same HU, geometry, notes
-and errors); only the time differs.
+project's own element scan (:func:`~._quick.quick_dataset`, which reuses discovery's scan
+of an unchanged file) into a :class:`~._quick.QuickHeader`: the values the loader needs
+come straight from the raw bytes, no pydicom Dataset is built per file, and the pixels
+are read straight from disk. Everything else is read by pydicom. The first quickly read
+file of each series is read again by pydicom and must agree in every element, every
+value the loader takes from the raw bytes and every stored value, else the whole series
+is read by pydicom. The slices are cut into ``READ_THREADS`` consecutive runs, one per
+thread, each read, rescaled into the float32 volume and checked for padding in one pass
+per slice. The Volume is the same either way (same HU, geometry, notes and errors); only
+the time differs.
+
+Record values: none of this changes a value (the lead's rule for this round allows
+documented method choices to change values; the loader makes none).
 """
 from __future__ import annotations
 
@@ -440,7 +447,15 @@ def _same_frame(a: _Frame, b: _Frame) -> bool:
 
 def _same_loader_values(quick: QuickHeader, full: Dataset, path: Path) -> bool:
     """Whether the values the loader reads from the raw bytes of ``quick`` (codes, sizes,
-    padding, geometry, rescale) equal pydicom's values of the same file."""
+    padding, geometry, rescale) equal pydicom's values of the same file (False when
+    either reading cannot be converted)."""
+    try:
+        return _loader_values_agree(quick, full, path)
+    except (TypeError, ValueError, KeyError, AttributeError, IndexError):
+        return False
+
+
+def _loader_values_agree(quick: QuickHeader, full: Dataset, path: Path) -> bool:
     if any(quick_get(quick, n) != quick_get(full, n) or (n in quick) != (n in full) for n in QUICK_VALUES):
         return False
     if _padding_range(quick) != _padding_range(full) or (("PixelData" in quick) != ("PixelData" in full)):
