@@ -89,6 +89,7 @@ References
 """
 from __future__ import annotations
 
+import functools
 import math
 import mmap
 from dataclasses import dataclass
@@ -666,10 +667,22 @@ def _box_scale(sums: np.ndarray, counts: np.ndarray, cell: float) -> tuple[np.nd
     (at least half the block is air). The contrast itself (``sums / count``) is worked
     out only where it is needed (:meth:`ScaleMap.contrast_in`)."""
     valid = counts >= 0.5 * cell
-    m = np.maximum(counts, np.float32(1.0))
-    np.multiply(m, np.float32(cell), out=m)
-    np.sqrt(m, out=m)
-    return np.divide(sums, m, out=m), valid
+    m = np.empty(counts.shape, dtype=np.float32)
+    step = _cache_planes(counts)
+    for z0 in range(0, counts.shape[0], step):  # a few planes at a time: the four steps stay in the cache
+        sl = slice(z0, z0 + step)
+        mz = m[sl]
+        np.maximum(counts[sl], np.float32(1.0), out=mz)
+        np.multiply(mz, np.float32(cell), out=mz)
+        np.sqrt(mz, out=mz)
+        np.divide(sums[sl], mz, out=mz)
+    return m, valid
+
+
+def _cache_planes(a: np.ndarray, chunk_bytes: int = 1 << 18) -> int:
+    """How many planes (axis 0) of ``a`` make about ``chunk_bytes`` (at least one)."""
+    plane = max(1, a[0].nbytes) if a.shape[0] else 1
+    return max(1, chunk_bytes // plane)
 
 
 @dataclass
@@ -720,8 +733,27 @@ def gaussian_matrix(n: int, sigma: float, truncate: float = 3.0) -> np.ndarray:
 
     Row i holds the taps of output i, folded back at the ends as scipy.ndimage's "reflect"
     mode does (d c b a | a b c d), so ``M @ line`` equals ``gaussian_filter1d(line, sigma,
-    mode="reflect", truncate=truncate)`` up to float rounding.
+    mode="reflect", truncate=truncate)`` up to float rounding. A new array each call (see
+    :func:`_banded_gaussian` for the shared, read-only one).
     """
+    return _gaussian_matrix(int(n), float(sigma), float(truncate))
+
+
+@functools.lru_cache(maxsize=32)
+def _banded_gaussian(n: int, sigma: float, block: int) -> tuple[np.ndarray, tuple[tuple[int, int, int, int], ...]]:
+    """:func:`gaussian_matrix` (read-only, made once per size and SD) with, for each run of
+    ``block`` output rows, the columns its taps reach: (i0, i1, c0, c1)."""
+    m = _gaussian_matrix(n, sigma, 3.0)
+    m.setflags(write=False)
+    bands = []
+    for i0 in range(0, n, block):
+        i1 = min(n, i0 + block)
+        cols = np.flatnonzero(m[i0:i1].any(axis=0))
+        bands.append((i0, i1, int(cols[0]), int(cols[-1]) + 1))
+    return m, tuple(bands)
+
+
+def _gaussian_matrix(n: int, sigma: float, truncate: float) -> np.ndarray:
     w = _gaussian_weights(sigma, truncate)
     r = w.size // 2
     j = np.mod(np.arange(n)[:, None] + np.arange(-r, r + 1)[None], 2 * n)
@@ -737,14 +769,10 @@ def _gaussian_along(a: np.ndarray, sigma: float, axis: int, out: np.ndarray, blo
     A banded matrix product, ``block`` outputs at a time: for the slow, strided axes this
     is several times faster than a line-by-line convolution.
     """
-    n = a.shape[axis]
-    m = gaussian_matrix(n, sigma)
+    m, bands = _banded_gaussian(int(a.shape[axis]), float(sigma), int(block))
     src = np.moveaxis(a, axis, -2)
     dst = np.moveaxis(out, axis, -2)
-    for i0 in range(0, n, block):
-        i1 = min(n, i0 + block)
-        cols = np.flatnonzero(m[i0:i1].any(axis=0))
-        c0, c1 = int(cols[0]), int(cols[-1]) + 1
+    for i0, i1, c0, c1 in bands:
         np.matmul(m[i0:i1, c0:c1], src[..., c0:c1, :], out=dst[..., i0:i1, :])
     return out
 
@@ -977,17 +1005,18 @@ def present_labels(values: np.ndarray) -> np.ndarray:
 
 
 def cores_by_component(
-    lab: np.ndarray, objects: list[tuple[slice, ...] | None], high: np.ndarray
+    lab: np.ndarray, objects: list[tuple[slice, ...] | None], high: np.ndarray, holders: np.ndarray | None = None
 ) -> list[tuple[int, np.ndarray]]:
     """Connected components of ``high`` (the cores), when ``high`` lies inside ``lab > 0``.
 
     Each core is returned as (the label of ``lab`` holding it, its mask in that label's
     box ``objects[label - 1]``), in the order ``ndimage.label(high)`` would number them
     (by the first voxel in scan order). Only the boxes of labels holding a core are
-    searched, never the whole grid.
+    searched, never the whole grid. ``holders``: ``present_labels(lab[high])`` when
+    already known.
     """
     found = []
-    for i in present_labels(lab[high]):
+    for i in present_labels(lab[high]) if holders is None else holders:
         if i == 0:
             continue
         sl = objects[int(i) - 1]
@@ -1058,7 +1087,7 @@ def hysteresis_structures_boxes(
         if hold.size == 0 or hold[-1] == 0:
             return out, snr, []
         objects = ndimage.find_objects(lab, max_label=int(hold[-1]))  # boxes up to the last label holding a core
-        cores = cores_by_component(lab, objects, high)
+        cores = cores_by_component(lab, objects, high, hold)
     else:
         objects = ndimage.find_objects(lab)
         cores = _cores_by_labelling(lab, objects, high)
@@ -1084,7 +1113,8 @@ def hysteresis_structures_boxes(
         region = keep[pieces]
         if not region.any():
             continue
-        existing = present_labels(out[sl][region])
+        # labels written so far lie in their outer boxes: none can meet a region outside them all
+        existing = present_labels(out[sl][region]) if _overlaps_any(sl, list(outer.values())) else np.zeros(0, np.int64)
         existing = existing[existing > 0]
         target = int(existing[0]) if existing.size else len(snr) + 1
         view = out[sl]
@@ -1104,13 +1134,27 @@ def _shifted_box(sl: tuple[slice, ...], box: tuple[slice, ...]) -> tuple[slice, 
 
 def _padded_box_3d(mask: np.ndarray, pad: int) -> tuple[slice, ...] | None:
     """Bounding box of a 3-D mask grown by ``pad`` cells (clipped); None when empty."""
+    if mask.ndim != 3:
+        profiles = [mask.any(axis=tuple(a for a in range(mask.ndim) if a != axis)) for axis in range(mask.ndim)]
+    else:  # two passes over the mask: its plane projection and its slices
+        plane = mask.any(axis=0)
+        profiles = [mask.reshape(mask.shape[0], -1).any(axis=1), plane.any(axis=1), plane.any(axis=0)]
     out = []
-    for axis in range(mask.ndim):
-        hit = np.flatnonzero(mask.any(axis=tuple(a for a in range(mask.ndim) if a != axis)))
+    for axis, profile in enumerate(profiles):
+        hit = np.flatnonzero(profile)
         if hit.size == 0:
             return None
         out.append(slice(max(0, int(hit[0]) - pad), min(mask.shape[axis], int(hit[-1]) + 1 + pad)))
     return tuple(out)
+
+
+def boxes_overlap(a: tuple[slice, ...], b: tuple[slice, ...]) -> bool:
+    """Whether two boxes share a cell (masks inside boxes that do not overlap never meet)."""
+    return all(x.start < y.stop and y.start < x.stop for x, y in zip(a, b))
+
+
+def _overlaps_any(sl: tuple[slice, ...], boxes: list[tuple[slice, ...] | None]) -> bool:
+    return any(b is not None and boxes_overlap(sl, b) for b in boxes)
 
 
 def components_box(
@@ -1207,7 +1251,8 @@ def combine_scales_boxes(
             region = level[csl] == lbl
             if rel != (1, 1, 1):
                 region = _upsample(region, rel, tuple(x.stop - x.start for x in sl))
-            existing = present_labels(combined[sl][region])
+            # structures placed so far lie in their boxes: none can meet one outside them all
+            existing = present_labels(combined[sl][region]) if _overlaps_any(sl, boxes) else np.zeros(0, np.int64)
             existing = existing[existing > 0]
             if existing.size and any(quality[int(e)] >= well_measured_snr for e in existing):
                 continue
