@@ -14,6 +14,7 @@ Run: python benchmarks/bench_streaks.py [--slices 400] [--repeats 3] [--threads 
 from __future__ import annotations
 
 import argparse
+import resource
 import statistics
 import sys
 import time
@@ -83,13 +84,17 @@ def read_limit_s(nz: int) -> float | None:
 
 
 def timed_runs(fn, repeats: int) -> tuple[float, float, object]:
-    """Median wall and CPU seconds of ``repeats`` calls of ``fn`` and the last result."""
-    walls, cpus, result = [], [], None
+    """Median wall and CPU seconds of ``repeats`` calls of ``fn`` and the last result
+    (also prints the minima and the minor page faults of the last call)."""
+    walls, cpus, result, faults = [], [], None, 0
     for _ in range(max(1, repeats)):
+        f0 = resource.getrusage(resource.RUSAGE_SELF).ru_minflt
         t0, c0 = time.perf_counter(), time.process_time()
         result = fn()
         walls.append(time.perf_counter() - t0)
         cpus.append(time.process_time() - c0)
+        faults = resource.getrusage(resource.RUSAGE_SELF).ru_minflt - f0
+    print(f"  runs: wall min {min(walls):.3f} s, CPU min {min(cpus):.3f} s, minor page faults of the last run {faults}")
     return statistics.median(walls), statistics.median(cpus), result
 
 

@@ -94,15 +94,19 @@ and the fill value and the robust noise scale from regular sub-grids of about
 edges and the spectrum stay on the screen grid (the band is in cycles per pixel of
 that grid). Slabs go through in stacks of ``SCREEN_STACK`` (``SCREEN_STACK`` times the
 slab size slices per task, so thin slices give each thread larger tasks): each slice is
-binned once (the one full-resolution pass over the volume), the coarse-grid work, the
-FFT and the cell sums are done for the stack at once, the full-grid filters slab by
-slab; each slab's outcome depends on that slab only. Slabs of two slices (1.25 mm)
-halve the screen's work after the binning. Each screening thread keeps its large
-temporaries in a :class:`Workspace` and reuses them from stack to stack (fresh arrays
-cost a page fault per 4 kB on first touch: about a quarter of the screen's CPU time
-before); a slab's full-resolution sum is formed first and binned once. These are estimates of the
-same quantities, so the indices differ slightly from a full-grid computation (a
-documented method choice); the record's keys, types and meaning are unchanged.
+binned once (the one full-resolution pass over the volume), the coarse-grid work is
+done for the stack at once, the full-grid filters, the FFT and the cell sums slab by
+slab (their temporaries stay small); each slab's outcome depends on that slab only.
+Slabs of two slices (1.25 mm) halve the screen's work after the binning. The coarse
+grids and sub-grids give estimates of the same quantities, so the indices differ
+slightly from a full-grid computation (a documented method choice); the record's keys,
+types and meaning are unchanged. Each screening thread keeps its large temporaries in a
+:class:`Workspace` and reuses them from stack to stack (fresh arrays cost a page fault
+per 4 kB on first touch: about a quarter of the screen's CPU time before); a slab's
+full-resolution sum is formed in row blocks and binned once, and the masks are binned
+and their outlines eroded on 64-bit words (eight mask bytes per operation). These
+implementation steps compute the same numbers (tested against fresh arrays and scipy's
+filters); they are not method changes.
 Dense-pair lines and the localisation of flagged slices use the full-grid texture
 (:func:`slice_texture`).
 
