@@ -104,7 +104,7 @@ types and meaning are unchanged. Each screening thread keeps its large temporari
 :class:`Workspace` and reuses them from stack to stack (fresh arrays cost a page fault
 per 4 kB on first touch: about a quarter of the screen's CPU time before); a slab's
 full-resolution sum is formed in row blocks and binned once, and the masks are binned
-and their outlines eroded on 64-bit words (eight mask bytes per operation). These
+from contiguous 16-bit column pairs and their outlines eroded on 64-bit words. These
 implementation steps compute the same numbers (tested against fresh arrays and scipy's
 filters); they are not method changes.
 Dense-pair lines and the localisation of flagged slices use the full-grid texture
@@ -429,29 +429,25 @@ def bin_slice(image: np.ndarray, factor: int, out: np.ndarray | None = None, ws:
 def bin_mask(mask: np.ndarray, factor: int, ws: "Workspace | None" = None, tag: str = "bin_mask") -> np.ndarray:
     """Any-of over ``factor`` x ``factor`` blocks of the last two axes (cropping the remainder).
 
-    For ``factor`` 2 the row pairs are OR-ed (as 64-bit words when the rows allow it,
-    eight mask bytes per operation) and each pair of columns read as one 16-bit word
-    (non-zero if either byte is): two passes over contiguous memory. With a
-    :class:`Workspace` ``ws`` the result is its buffer ``tag`` (the word path then goes
-    slice by slice through a small buffer).
+    For ``factor`` 2 each pair of columns is read as one 16-bit word (non-zero if either
+    byte is), slice by slice as one contiguous stream, and the row pairs of that half
+    as wide result are OR-ed. With a :class:`Workspace` ``ws`` the result is its buffer
+    ``tag``.
     """
     if factor == 1:
         return mask
     ny, nx = (n // factor * factor for n in mask.shape[-2:])
     if factor == 2 and ny and nx:
-        if nx == mask.shape[-1] and nx % 8 == 0 and mask.strides[-1] == 1:
-            # row pairs OR-ed eight bytes at a time (the same bytes as the bool OR)
-            words = mask[..., :ny, :].view(np.uint64)
-            if ws is None or words.ndim == 2:
-                pairs = np.bitwise_or(words[..., 0::2, :], words[..., 1::2, :])
-                return np.not_equal(pairs.view(np.uint16), 0, out=scratch(ws, tag, pairs.shape[:-1] + (nx // 2,), bool))
-            flat = words.reshape((-1,) + words.shape[-2:])
-            out = ws.get(tag, (flat.shape[0], ny // 2, nx // 2), bool)
-            pairs = ws.get(tag + "_words", (ny // 2, words.shape[-1]), np.uint64)
-            for i in range(flat.shape[0]):
-                np.bitwise_or(flat[i, 0::2], flat[i, 1::2], out=pairs)
-                np.not_equal(pairs.view(np.uint16), 0, out=out[i])
-            return out.reshape(words.shape[:-2] + (ny // 2, nx // 2))
+        if nx == mask.shape[-1] and mask.strides[-1] == 1:
+            # each slice read once as a contiguous stream of 16-bit column pairs, then the
+            # much smaller column-pair any-of OR-ed by row pairs (the same any-of)
+            lead = mask.shape[:-2]
+            out = scratch(ws, tag, lead + (ny // 2, nx // 2), bool)
+            cols = scratch(ws, tag + "_cols", (ny, nx // 2), bool)
+            for idx in np.ndindex(*lead):
+                np.not_equal(mask[idx + (slice(0, ny),)].view(np.uint16), 0, out=cols)
+                np.logical_or(cols[0::2], cols[1::2], out=out[idx])
+            return out
         rows = np.logical_or(mask[..., 0:ny:2, :nx], mask[..., 1:ny:2, :nx])
         return rows.view(np.uint16) != 0
     out = np.zeros(mask.shape[:-2] + (ny // factor, nx // factor), dtype=bool)

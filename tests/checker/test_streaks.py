@@ -519,10 +519,10 @@ def test_slab_setting_validated():
 
 
 # ------------------------------------------------------------------------- reused buffers
-def test_bin_mask_word_path_equals_the_block_or():
-    """Masks whose rows are whole 64-bit words take the word path; it equals the 2 x 2 any-of."""
+def test_bin_mask_column_pair_path_equals_the_block_or():
+    """Masks of even width are binned from 16-bit column pairs; that equals the 2 x 2 any-of."""
     rng = np.random.default_rng(12)
-    for shape in [(3, 10, 64), (2, 7, 16), (40, 8)]:
+    for shape in [(3, 10, 64), (2, 7, 16), (40, 8), (4, 9, 6)]:
         m = rng.random(shape) > 0.7
         ny = shape[-2] // 2 * 2
         expected = m[..., 0:ny:2, 0::2] | m[..., 1:ny:2, 0::2] | m[..., 0:ny:2, 1::2] | m[..., 1:ny:2, 1::2]
