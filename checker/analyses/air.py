@@ -595,12 +595,23 @@ def coarse_air_grid(hu: np.ndarray, air: np.ndarray, factors: tuple[int, int, in
             packed_mask_block_count(a, ky, kx, words, wrows, counts[b])
         else:
             _plane_block_sum(_mask_plane_count(a, cplane), ky, kx, crows, counts[b])
-        if not np.isfinite(sums[b]).all():
-            part = _exact_masked_sum(h, a, (1, ky, kx), factors)
-            bad = ~np.isfinite(part)
-            counts[b][bad] = 0.0
-            sums[b] = np.where(bad, np.float32(0), part)
+    for b in _non_finite_layers(sums):  # put right once, after the pass (the same values)
+        z0 = b * kz
+        h, a = hu[z0 : z0 + kz], air[z0 : z0 + kz]
+        part = _exact_masked_sum(h, a, (1, ky, kx), factors)
+        bad = ~np.isfinite(part)
+        counts[b][bad] = 0.0
+        sums[b] = np.where(bad, np.float32(0), part)
     return sums, counts
+
+
+def _non_finite_layers(grid: np.ndarray) -> np.ndarray:
+    """Indices of the layers (axis 0) of ``grid`` holding a non-finite value: one check of
+    the whole grid (a finite sum of the whole grid means every cell is finite)."""
+    with np.errstate(over="ignore", invalid="ignore"):
+        if math.isfinite(float(grid.sum(dtype=np.float64))):
+            return np.zeros(0, dtype=np.int64)
+    return np.flatnonzero(~np.isfinite(grid).reshape(grid.shape[0], -1).all(axis=1))
 
 
 def _coarse_air_grid_ragged(hu: np.ndarray, air: np.ndarray, factors: tuple[int, int, int]) -> tuple[np.ndarray, np.ndarray]:
