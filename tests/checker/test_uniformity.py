@@ -239,3 +239,18 @@ def test_finite_inside_looks_only_at_masked_values():
     values[2, 3, 3] = np.inf  # inside
     values[3, 2, 2] = np.nan  # inside
     assert list(_phantom._finite_inside(values, masks)) == [True, True, False, False]
+
+
+def test_block_means_2x2_and_blocks_within_against_direct_sums():
+    """Block means of the insert test equal the reshaped means (numpy, exact up to float32
+    rounding); a block lies within a mask only when all four pixels do. Odd edges are
+    left out."""
+    rng = np.random.default_rng(11)
+    stack = rng.normal(0.0, 20.0, (3, 9, 7)).astype(np.float32)
+    mask = rng.random((3, 9, 7)) > 0.3
+    means = _phantom.block_means_2x2(stack)
+    expected = stack[:, :8, :6].reshape(3, 4, 2, 3, 2).astype(np.float64).mean(axis=(2, 4))
+    assert means.shape == (3, 4, 3) and means.dtype == np.float32
+    assert np.allclose(means, expected, atol=1e-4)
+    within = _phantom.blocks_within(mask)
+    assert np.array_equal(within, mask[:, :8, :6].reshape(3, 4, 2, 3, 2).all(axis=(2, 4)))
