@@ -1080,7 +1080,8 @@ def hysteresis_structures_boxes(
     """
     out = np.zeros(m.z.shape, dtype=np.int32)
     snr: dict[int, float] = {}
-    outer: dict[int, tuple[slice, ...]] = {}
+    outer: dict[int, tuple[slice, ...]] = {}  # the component boxes a label was written in
+    tight: dict[int, tuple[slice, ...]] = {}  # the box of what was written
     high = m.above(m.threshold)
     box = _padded_box_3d(high, 2)
     if box is None:
@@ -1134,7 +1135,10 @@ def hysteresis_structures_boxes(
         np.copyto(view, np.int32(target), where=region)
         snr[target] = max(snr.get(target, 0.0), contrast / max(m.noise_hu, 1e-6))
         outer[target] = _union_box(outer.get(target), sl)
-    boxes = tight_boxes(out, len(snr), [outer[k] for k in range(1, len(snr) + 1)])
+        written = _padded_box_3d(region, 0)  # cells are never overwritten: a label's box is the union of its writes
+        if written is not None:
+            tight[target] = _union_box(tight.get(target), _shifted_box(written, sl))
+    boxes = [tight.get(k) for k in range(1, len(snr) + 1)]
     return out_full, snr, [None if b is None else _shifted_box(b, box) for b in boxes]
 
 
