@@ -852,42 +852,62 @@ def _line_along_z(zc: np.ndarray, yx: np.ndarray, weights: np.ndarray, z: np.nda
     return mean[None, :] + (z - zm)[:, None] * slope[None, :]
 
 
+#: Most slices of each pooled group whose side pixels enter the noise estimate of
+#: :func:`_contrast_and_noise` (evenly spread over the group).
+NOISE_SLICES_PER_GROUP = 8
+
+
 def _contrast_and_noise(crop: np.ndarray, pool: PooledSlices, free: np.ndarray, radius_mm: float, half_mm: float,
                         px: float) -> tuple[float, float]:
     """Insert minus background mean, and the pooled per-slice pixel noise of both sides
     (each slice's side about its own mean).
 
     Both sides are taken at least two pixels and a third of the range away from the edge
-    (distances to the centre of each slice's group, :func:`_pool_slices`). The side
-    pixels of a group's slices are taken out once, as one (slices, pixels) array; the
-    sums run in float64.
+    (distances to the centre of each slice's group, :func:`_pool_slices`). The contrast
+    is the mean of every slice's side pixels, read from the groups' slice sums
+    (``pool.sums``). The noise is a subsampled statistic (a method choice for speed):
+    the side pixels of at most ``NOISE_SLICES_PER_GROUP`` slices of each group, evenly
+    spread, each slice about its own mean (about 1e4 pixels for a 12 mm rod, a relative
+    standard error of the noise below 1 %); the sums run in float64.
+
+    References
+    ----------
+    AAPM TG-233 (2019) (contrast and noise of the insert and its background);
+    common practice, no source (subsampled pixel standard deviation).
     """
     gap = max(2 * px, half_mm / 3)
     inner = free[None] & (pool.dist <= radius_mm - gap)
     outer = free[None] & (pool.dist >= radius_mm + gap) & (pool.dist <= radius_mm + half_mm)
     if not inner.any() or not outer.any():
         return float("nan"), float("nan")
-    totals = np.zeros((2, 2))  # [side, (sum, count)]
+    n_per = pool.n_slices.astype(float)[:, None, None]
+    means = []
+    for side in (inner, outer):
+        count = float((side * n_per).sum())
+        means.append(float(pool.sums[side].sum()) / count if count else float("nan"))
+    contrast = means[0] - means[1]
     ss, n = 0.0, 0
     flat = crop.reshape(crop.shape[0], -1)
     for g in range(pool.starts.size):
         sides = (np.flatnonzero(inner[g]), np.flatnonzero(outer[g]))
-        both = flat[pool.slices(g)].take(np.concatenate(sides), axis=1).astype(float, copy=False)  # one gather
+        rows = _spread_slices(pool.slices(g), NOISE_SLICES_PER_GROUP)
+        both = flat[rows].take(np.concatenate(sides), axis=1).astype(float, copy=False)  # one gather
         for j, idx in enumerate(sides):
             m = idx.size
-            if m == 0:
+            if m < 2:
                 continue
             v = both[:, :m] if j == 0 else both[:, both.shape[1] - m :]
-            row_sum = v.sum(axis=1)
-            totals[j] += (row_sum.sum(), v.size)
-            if m > 1:
-                dev = v - (row_sum / m)[:, None]
-                ss += float(np.einsum("ij,ij->", dev, dev))
-                n += v.size
-    if totals[0, 1] == 0 or totals[1, 1] == 0:
-        return float("nan"), float("nan")
-    contrast = float(totals[0, 0] / totals[0, 1] - totals[1, 0] / totals[1, 1])
+            dev = v - (v.sum(axis=1) / m)[:, None]
+            ss += float(np.einsum("ij,ij->", dev, dev))
+            n += v.size
     return contrast, float(np.sqrt(ss / n)) if n > 1 else float("nan")
+
+
+def _spread_slices(group: slice, most: int) -> slice:
+    """At most ``most`` slices of the run ``group``, evenly spread (every k-th)."""
+    count = group.stop - group.start
+    step = max(1, -(-count // most))
+    return slice(group.start, group.stop, step)
 
 
 # =========================================================================== common record
