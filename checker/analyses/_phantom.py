@@ -270,10 +270,18 @@ def _strided(a: np.ndarray, f: int, rows: slice = slice(None), cols: slice = sli
             return np.concatenate([_strided(a, f, rows, cols, run) for run in np.split(zs, cuts)])
         zsel = zs
     if a.dtype.itemsize == 1:
-        part = np.ascontiguousarray(a[zsel, rows.start : rows.stop : f, cols])
+        part = a[zsel, rows.start : rows.stop : f, cols]
+        if f in _WORDS and part.shape[2] % f == 0 and part.strides[2] == 1:
+            # each f-byte word of a row holds one kept pixel in its first byte: the
+            # word's value modulo 256 (little-endian) is that pixel, in one pass
+            return part.view(_WORDS[f]).astype(np.uint8).view(a.dtype)
+        part = np.ascontiguousarray(part)
         return np.ascontiguousarray(part[:, :, ::f])
     return np.ascontiguousarray(a[zsel, rows.start : rows.stop : f, cols.start : cols.stop : f])
 
+
+#: Little-endian words of f bytes, by grid step f, for :func:`_strided`'s masks.
+_WORDS = {2: np.dtype("<u2"), 4: np.dtype("<u4"), 8: np.dtype("<u8")}
 
 #: Most runs of slices :func:`_strided` copies one by one (more: one fancy index).
 _MAX_RUNS = 8

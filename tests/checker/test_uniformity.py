@@ -254,3 +254,19 @@ def test_block_means_2x2_and_blocks_within_against_direct_sums():
     assert np.allclose(means, expected, atol=1e-4)
     within = _phantom.blocks_within(mask)
     assert np.array_equal(within, mask[:, :8, :6].reshape(3, 4, 2, 3, 2).all(axis=(2, 4)))
+
+
+@pytest.mark.parametrize("f", [1, 2, 3, 4, 8])
+def test_strided_masks_equal_numpy_slicing(f):
+    """The strided copies of masks (one word per kept pixel when the step is 2, 4 or 8)
+    equal numpy's own slicing, for runs, evenly spaced and scattered slices and boxes
+    (numpy as the reference)."""
+    rng = np.random.default_rng(f)
+    mask = rng.random((12, 40, 48)) > 0.5
+    rows, cols = slice(3, 37), slice(8, 40)
+    for zs in (None, np.arange(2, 9), np.arange(0, 12, 3), np.array([0, 1, 5, 7, 8, 11])):
+        z = slice(None) if zs is None else zs
+        got = _phantom._strided(mask, f, rows, cols, zs)
+        assert got.dtype == bool and got.flags.c_contiguous
+        assert np.array_equal(got, mask[z][:, rows.start : rows.stop : f, cols.start : cols.stop : f])
+        assert np.array_equal(_phantom._strided(mask, f, zs=zs), mask[z][:, ::f, ::f])
