@@ -39,6 +39,7 @@ from ..errors import (
     TooLargeError,
     UnreadableFileError,
 )
+from ..identifiers import identifier_words, withhold_words
 from ..volume import Volume
 from ._geometry import (
     StackGeometry,
@@ -578,7 +579,8 @@ def load_dicom_series(src: SeriesSource, *, include_identifiers: bool = False, m
     first = datasets[frames[geometry.order[0]].ds_index][1]
     return Volume(
         hu=hu, spacing_mm=geometry.spacing_mm, affine=geometry.affine, series_uid=src.series_uid,
-        metadata=_metadata(first, frames[geometry.order[0]]), identifiers=_identifiers(first) if include_identifiers else {},
+        metadata=_metadata(first, frames[geometry.order[0]], withhold=not include_identifiers),
+        identifiers=_identifiers(first) if include_identifiers else {},
         padding_mask=padding[0], notes=notes, source=src.source,
     )
 
@@ -724,7 +726,10 @@ def _text(ds: Dataset, name: str) -> str | None:
     return str(value)
 
 
-def _metadata(ds: Dataset, frame: _Frame) -> dict[str, Any]:
+def _metadata(ds: Dataset, frame: _Frame, *, withhold: bool = True) -> dict[str, Any]:
+    """Series facts for records and reports; free text cleared of the patient's name and ID
+    unless identifiers were asked for (see :mod:`reconaudit.checker.identifiers`)."""
+    words = identifier_words(_text(ds, "PatientName"), _text(ds, "PatientID")) if withhold else []
     thickness = as_float(ds.get("SliceThickness"))
     if thickness is None and frame.thickness is not None:
         thickness = frame.thickness
@@ -734,7 +739,7 @@ def _metadata(ds: Dataset, frame: _Frame) -> dict[str, Any]:
         "convolution_kernel": _text(ds, "ConvolutionKernel"),
         "kvp": as_float(ds.get("KVP")),
         "slice_thickness_mm": thickness,
-        "series_description": _text(ds, "SeriesDescription"),
+        "series_description": withhold_words(_text(ds, "SeriesDescription"), words),
         "manufacturer_model_name": _text(ds, "ManufacturerModelName"),
         "study_date": _text(ds, "StudyDate"),
         "series_number": int(number) if number is not None else None,

@@ -10,6 +10,7 @@ from typing import Any, Sequence
 import numpy as np
 
 from ..errors import ReconauditError, UnreadableFileError
+from ..identifiers import identifier_words, withhold_words
 from ._geometry import DUPLICATE_TOL_MM, LINE_TOL_MM, orientation_groups
 from ._headers import as_floats, header_facts, read_header, scan_header
 from ._images import image_series_uid
@@ -175,7 +176,8 @@ def _common_source(paths: list[Path]) -> str:
 def _dicom_series(uid: str, headers: list[_Header]) -> list[SeriesSource]:
     stacks, reason = _split_stacks(sorted(headers, key=lambda h: str(h.path)))
     first = headers[0].ds
-    description = str(first.get("SeriesDescription", "") or "")
+    words = identifier_words(first.get("PatientName"), first.get("PatientID"))
+    description = withhold_words(str(first.get("SeriesDescription", "") or ""), words)
     modality = str(first.get("Modality", "") or "")
     if len(stacks) == 1:
         files = sorted(h.path for h in stacks[0])

@@ -44,6 +44,8 @@ DISCOVERY_TAGS = [
     "StudyInstanceUID",
     "Modality",
     "SeriesDescription",
+    "PatientName",
+    "PatientID",
     "SeriesNumber",
     "ImageOrientationPatient",
     "ImagePositionPatient",
@@ -69,6 +71,8 @@ SCAN_TAGS = {
     (0x0008, 0x0032): "AcquisitionTime",
     (0x0008, 0x0060): "Modality",
     (0x0008, 0x103E): "SeriesDescription",
+    (0x0010, 0x0010): "PatientName",
+    (0x0010, 0x0020): "PatientID",
     (0x0018, 0x1210): "ConvolutionKernel",
     (0x0020, 0x000E): "SeriesInstanceUID",
     (0x0020, 0x0012): "AcquisitionNumber",
@@ -76,6 +80,8 @@ SCAN_TAGS = {
     (0x0020, 0x0037): "ImageOrientationPatient",
     (0x0020, 0x0100): "TemporalPositionIdentifier",
 }
+#: Read only so that free text can be cleared of them (see checker/identifiers.py).
+IDENTIFIER_TAGS = frozenset({"PatientName", "PatientID"})
 _SCAN_TAG_INTS = {(g << 16) | e: name for (g, e), name in SCAN_TAGS.items()}
 
 __all__ = [
@@ -189,6 +195,8 @@ def scan_header(path: Path) -> dict[str, Any] | None:
             return None  # meta elements again inside the data set: unusual, let pydicom read it
         name = _SCAN_TAG_INTS[tag]
         value = True if name == "DirectoryRecordSequence" else _text_value(raw)
+        if value is None and name in IDENTIFIER_TAGS:
+            value = raw.decode("latin-1").strip(" \x00")  # only used to withhold it
         if value is None:
             return None
         if value != "":
