@@ -363,7 +363,10 @@ def _edge_label(edge: Mapping[str, Any]) -> str:
     c = finite_number(edge.get("contrast_hu"))
     text = f"{c:+.0f} HU" if c is not None else "edge"
     f50 = finite_number(edge.get("f50_per_mm"))
-    if f50 is not None:
+    freqs = _floats(edge.get("frequency_per_mm"))
+    if f50 is not None and freqs is not None and f50 > float(np.nanmax(freqs)):
+        text += ", TTF above 0.5 up to the plotted limit"
+    elif f50 is not None:
         text += f", f50 {f50:.3f}"
     if edge.get("reliable") is False:
         text += " (unreliable)"
@@ -390,7 +393,7 @@ def draw_ttf_curves(ttf: Mapping[str, Any], baseline: Mapping[str, Any] | None, 
         f, t = _curve(edge, "frequency_per_mm", "ttf")
         ax.plot(f, t, color=colour, lw=1.7, ls=":" if edge.get("reliable") is False else "-", label=_edge_label(edge))
         f50 = finite_number(edge.get("f50_per_mm"))
-        if f50 is not None:
+        if f50 is not None and f.size and f50 <= float(np.nanmax(f)):  # beyond the curve: not a measurement
             ax.plot([f50], [0.5], marker="o", color=colour, ms=5)
         match = _matching_edge(edge, base_edges)
         if match is not None:
