@@ -57,11 +57,12 @@ class SeriesTask:
 def _limit_threads(n: int) -> None:
     """Keep the analyses that use threads to ``n`` in this process."""
     if n > 0:
-        from . import pipeline
+        from . import pipeline, regions
         from .analyses import streaks
 
         streaks.SCREEN_THREADS = n
         pipeline.ANALYSIS_THREADS = n
+        regions.REGIONS_THREADS = n
 
 
 def series_id_for(description: str, key: str) -> str:
