@@ -47,8 +47,9 @@ air below are exact):
   dilation, see :func:`air_outside`); the mask is written once, slab by slab, with no
   full-size intermediate.
 
-- Threads: the slice-local passes (the threshold into block patterns, painting body and
-  table from their patterns, the air written a slab at a time) run over disjoint slabs of
+- Threads: the slice-local passes (the threshold into block patterns, the in-plane hole
+  filling, painting body and table from their patterns, the body's per-slice profiles for
+  count and centroid, the air written a slab at a time) run over disjoint slabs of
   slices on ``REGIONS_THREADS`` threads (:func:`over_z`; 1 runs everything in the calling
   thread). Each slab writes only its own slices, so the masks do not depend on the number
   of threads; the components stay one labelling of the whole block grid. Block rows are
@@ -1000,13 +1001,22 @@ def fill_holes_in_patterns(cp: np.ndarray) -> np.ndarray:
     as ``ndimage.binary_fill_holes`` of each unpacked slice.
 
     The unset pixels are labelled in-plane by :func:`pattern_components` on a grid widened
-    by one unset block on each side; the components holding that ring are outside.
+    by one unset block on each side; the components holding that ring are outside. Each
+    slice is filled alone, so slabs of slices run on ``REGIONS_THREADS`` threads.
 
     References
     ----------
     .. [1] Common practice, no source (hole filling as the complement of the background
        component touching the border).
     """
+    out = np.empty_like(cp)
+    over_z(lambda a, b: _fill_holes_slab(cp[a:b], out[a:b]), cp.shape[0])
+    return out
+
+
+def _fill_holes_slab(cp: np.ndarray, out: np.ndarray) -> None:
+    """:func:`fill_holes_in_patterns` of the slices ``cp`` into ``out`` (each slice
+    alone: the filling is in-plane)."""
     nz = cp.shape[0]
     bg = np.pad(~cp, ((0, 0), (1, 1), (1, 1)), constant_values=FULL)
     comps = pattern_components(bg, in_plane=True)
@@ -1023,7 +1033,7 @@ def fill_holes_in_patterns(cp: np.ndarray) -> np.ndarray:
     ff[blocks] = FULL
     sub = pattern_tables().submask[flat[blocks[out_piece]], k[out_piece] - 1]
     np.bitwise_and.at(ff, blocks[out_piece], ~sub)
-    return filled[:, 1:-1, 1:-1]
+    out[...] = filled[:, 1:-1, 1:-1]
 
 
 def _coarse_body_and_table(hu: np.ndarray, fov2d: np.ndarray, body_threshold_hu: float) -> _BodyTable:
@@ -1082,28 +1092,40 @@ def _count_and_centroid(pat: np.ndarray, cbox: tuple[slice, ...]) -> tuple[int, 
     """Voxel count and centre of mass (z, y, x) of the set pixels of the block patterns
     ``pat`` (coarse box ``cbox``), from exact integer axis profiles as :func:`centroid_of`
     takes them: the pixels of each block row (bits 4 r .. 4 r + 3) and of each block
-    column (bits c, c + 4, c + 8, c + 12) counted by population count, summed over the
-    slices first."""
+    column (bits c, c + 4, c + 8, c + 12) counted by population count, per slice
+    (slabs of slices on ``REGIONS_THREADS`` threads) and then over the slices (integer
+    sums: the same profiles)."""
     b = BLOCK
     z0, y0, x0 = cbox[0].start, cbox[1].start * b, cbox[2].start * b
-    cnt = np.empty(pat.shape, dtype=np.uint8)
-    part = np.empty(pat.shape, dtype=np.uint16)
-    _popcount16(pat, cnt)
-    pz = cnt.reshape(cnt.shape[0], -1).sum(axis=1, dtype=np.int64)
-    py = np.empty(pat.shape[1] * b, dtype=np.int64)
-    px = np.empty(pat.shape[2] * b, dtype=np.int64)
-    row_bits = (1 << b) - 1
-    col_bits = sum(1 << (b * r) for r in range(b))
-    for r in range(b):
-        np.bitwise_and(pat, np.uint16(row_bits << (b * r)), out=part)
-        py[r::b] = _popcount16(part, cnt).sum(axis=0, dtype=np.int32).sum(axis=1, dtype=np.int64)  # at most 4 per slice
-        np.bitwise_and(pat, np.uint16(col_bits << r), out=part)
-        px[r::b] = _popcount16(part, cnt).sum(axis=0, dtype=np.int32).sum(axis=0, dtype=np.int64)
+    nz = pat.shape[0]
+    pz = np.empty(nz, dtype=np.int64)
+    py = np.empty((nz, pat.shape[1] * b), dtype=np.int32)  # per slice (at most 4 b per pixel row), summed below
+    px = np.empty((nz, pat.shape[2] * b), dtype=np.int32)
+    over_z(lambda a, e: _slice_profiles(pat[a:e], pz[a:e], py[a:e], px[a:e]), nz)
+    py, px = py.sum(axis=0, dtype=np.int64), px.sum(axis=0, dtype=np.int64)
     total = int(pz.sum())
     if total == 0:
         return 0, None  # type: ignore[return-value]
     centre = tuple(float((p * (np.arange(p.size) + o)).sum() / total) for p, o in ((pz, z0), (py, y0), (px, x0)))
     return total, centre  # type: ignore[return-value]
+
+
+def _slice_profiles(pat: np.ndarray, pz: np.ndarray, py: np.ndarray, px: np.ndarray) -> None:
+    """Pixel counts of the block patterns ``pat`` of each slice into ``pz``, per pixel row
+    into ``py`` and per pixel column into ``px`` ((z, pixels) each; population counts of
+    block rows and columns)."""
+    b = BLOCK
+    cnt = np.empty(pat.shape, dtype=np.uint8)
+    part = np.empty(pat.shape, dtype=np.uint16)
+    _popcount16(pat, cnt)
+    pz[:] = cnt.reshape(cnt.shape[0], -1).sum(axis=1, dtype=np.int64)
+    row_bits = (1 << b) - 1
+    col_bits = sum(1 << (b * r) for r in range(b))
+    for r in range(b):
+        np.bitwise_and(pat, np.uint16(row_bits << (b * r)), out=part)
+        np.sum(_popcount16(part, cnt), axis=2, dtype=np.int32, out=py[:, r::b])
+        np.bitwise_and(pat, np.uint16(col_bits << r), out=part)
+        np.sum(_popcount16(part, cnt), axis=1, dtype=np.int32, out=px[:, r::b])
 
 
 def _popcount16(a: np.ndarray, out: np.ndarray) -> np.ndarray:
@@ -1234,9 +1256,10 @@ def air_outside(found: _BodyTable, open_2d: np.ndarray, margin_px: int, shape: t
             air[hi:z1] = open_2d
             air[lo:hi, : ys.start] = open_2d[: ys.start]
             air[lo:hi, ys.stop :] = open_2d[ys.stop :]
-            occupied = _packed(found.body[lo:hi, ys])
+            occupied = found.body[lo:hi, ys]
             if found.table_found:
-                occupied |= _packed(found.table[lo:hi, ys])
+                occupied = occupied | found.table[lo:hi, ys]  # one packing of body OR table
+            occupied = _packed(occupied)
             grown = _or_window(_or_bits(occupied, margin_px), margin_px, axis=1)
             np.greater(inside, _unpacked(grown, nx), out=air[lo:hi, ys])  # open AND NOT grown
 
