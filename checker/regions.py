@@ -47,9 +47,11 @@ air below are exact):
   dilation, see :func:`air_outside`); the mask is written once, slab by slab, with no
   full-size intermediate.
 
-- Threads: the slice-local passes (the threshold into block patterns, the in-plane hole
-  filling, painting body and table from their patterns, the body's per-slice profiles for
-  count and centroid, the air written a slab at a time) run over disjoint slabs of
+- Threads: the slice-local passes (the padding screen of the field of view, the
+  threshold into block patterns, the per-label pixel counts and the component boxes on
+  the labelled grid, the in-plane hole filling, painting body and table from their
+  patterns, the body's per-slice profiles for count and centroid, the air written a slab
+  at a time) run over disjoint slabs of
   slices on ``REGIONS_THREADS`` threads (:func:`over_z`; 1 runs everything in the calling
   thread). Each slab writes only its own slices, so the masks do not depend on the number
   of threads; the components stay one labelling of the whole block grid. Block rows are
@@ -167,11 +169,20 @@ def _padding_code(hu: np.ndarray, padding_below_hu: float, mode: float | None) -
     the volume's memory).
     """
     r, c = FOV_SCREEN_ROWS, FOV_SCREEN_COLS
-    nz = hu.shape[0]
-    samples = np.concatenate([hu[:, ::r, ::c].reshape(nz, -1), hu[:, -1, ::c], hu[:, ::c, 0], hu[:, ::c, -1]], axis=1)
-    code = (samples < padding_below_hu).view(np.uint8)
-    if mode is not None:
-        code = code + 2 * (samples == hu.dtype.type(mode)).view(np.uint8)
+    nz, ny, nx = hu.shape
+    width = -(-ny // r) * -(-nx // c) + -(-nx // c) + 2 * -(-ny // c)  # the four sample sets below
+    code = np.empty((nz, width), dtype=np.uint8)
+
+    def slab(a: int, b: int) -> None:
+        part = hu[a:b]
+        samples = np.concatenate([part[:, ::r, ::c].reshape(b - a, -1), part[:, -1, ::c], part[:, ::c, 0],
+                                  part[:, ::c, -1]], axis=1)
+        found = (samples < padding_below_hu).view(np.uint8)
+        if mode is not None:
+            found = found + 2 * (samples == hu.dtype.type(mode)).view(np.uint8)
+        code[a:b] = found
+
+    over_z(slab, nz)  # slabs of slices on REGIONS_THREADS threads
     return code
 
 
@@ -937,18 +948,34 @@ def _component_sizes(comps: _PatternComponents, pat: np.ndarray) -> np.ndarray:
     """Pixel count of every final component of ``comps`` (index = final id)."""
     t = pattern_tables()
     flat = pat.reshape(-1)
-    lab = comps.lab.reshape(-1)
-    per_label = np.bincount(lab, minlength=comps.n_lab + 1).astype(np.int64) * 16
-    partial = np.flatnonzero((flat != FULL) & (lab != 0))
-    per_label -= np.bincount(lab[partial], weights=16 - t.pop[flat[partial]].astype(np.int64),
-                             minlength=comps.n_lab + 1).astype(np.int64)
-    per_label[0] = 0
+    per_label = _label_pixel_counts(comps.lab, pat, comps.n_lab)
     sizes = np.bincount(comps.final[: comps.n_lab + 1], weights=per_label, minlength=comps.n_final)
     nodes, blocks, k = comps.piece_nodes()
     if nodes.size:
         pops = t.pop[t.submask[flat[blocks], k - 1]].astype(np.int64)
         sizes += np.bincount(comps.final[nodes], weights=pops, minlength=comps.n_final)
     return np.rint(sizes).astype(np.int64)
+
+
+def _label_pixel_counts(lab: np.ndarray, pat: np.ndarray, n_lab: int) -> np.ndarray:
+    """Set pixels of the block patterns ``pat`` under each block label ``lab`` 1..``n_lab``
+    (index 0 holds 0): 16 per block less the unset pixels of partial blocks, counted on
+    slabs of slices on ``REGIONS_THREADS`` threads and summed (exact integers)."""
+    pop = pattern_tables().pop
+    parts: dict[int, np.ndarray] = {}
+
+    def slab(a: int, b: int) -> None:
+        la, fa = lab[a:b].reshape(-1), pat[a:b].reshape(-1)
+        counts = np.bincount(la, minlength=n_lab + 1).astype(np.int64) * 16
+        partial = np.flatnonzero((fa != FULL) & (la != 0))
+        counts -= np.bincount(la[partial], weights=16 - pop[fa[partial]].astype(np.int64),
+                              minlength=n_lab + 1).astype(np.int64)
+        parts[a] = counts
+
+    over_z(slab, lab.shape[0])
+    per_label = np.sum([parts[a] for a in sorted(parts)], axis=0, dtype=np.int64)
+    per_label[0] = 0
+    return per_label
 
 
 def _patterns_of(comps: _PatternComponents, pat: np.ndarray, finals: np.ndarray) -> list[tuple[np.ndarray, tuple[slice, ...]]]:
@@ -959,13 +986,14 @@ def _patterns_of(comps: _PatternComponents, pat: np.ndarray, finals: np.ndarray)
     code[finals] = np.arange(1, finals.size + 1)
     label_code = code[comps.final[: comps.n_lab + 1]]
     label_code[0] = 0
-    g = label_code[comps.lab]
+    g = np.empty(comps.lab.shape, dtype=small)
+    over_z(lambda a, b: np.take(label_code, comps.lab[a:b], out=g[a:b]), g.shape[0])
     nodes, blocks, k = comps.piece_nodes()
     piece_code = code[comps.final[nodes]] if nodes.size else np.zeros(0, dtype=small)
     keep = piece_code > 0
     blocks, k, piece_code = blocks[keep], k[keep], piece_code[keep]
     g.reshape(-1)[blocks] = piece_code  # marks the pieces' blocks for the boxes; their bits come below
-    objects = ndimage.find_objects(g, max_label=finals.size)
+    objects = find_objects_over_z(g, finals.size)
     flat = pat.reshape(-1)
     sub = pattern_tables().submask
     out = []
@@ -978,6 +1006,26 @@ def _patterns_of(comps: _PatternComponents, pat: np.ndarray, finals: np.ndarray)
             cp[local] = 0
             np.bitwise_or.at(cp, local, sub[flat[blocks[mine]], k[mine] - 1])
         out.append((cp, box))
+    return out
+
+
+def find_objects_over_z(lab: np.ndarray, max_label: int) -> list[tuple[slice, ...] | None]:
+    """``ndimage.find_objects(lab, max_label)`` of the (z, y, x) labels ``lab``, found on
+    slabs of slices on ``REGIONS_THREADS`` threads and joined: the box of a label is the
+    union of its boxes in the slabs (the same boxes)."""
+    parts: dict[int, list] = {}
+
+    def slab(a: int, b: int) -> None:
+        parts[a] = ndimage.find_objects(lab[a:b], max_label=max_label)
+
+    over_z(slab, lab.shape[0])
+    out: list[tuple[slice, ...] | None] = [None] * max_label
+    for a in sorted(parts):
+        for i, box in enumerate(parts[a]):
+            if box is None:
+                continue
+            box = (slice(box[0].start + a, box[0].stop + a),) + tuple(box[1:])
+            out[i] = box if out[i] is None else _union_box(out[i], box)
     return out
 
 

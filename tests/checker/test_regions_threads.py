@@ -81,3 +81,41 @@ def test_two_threads_give_the_single_thread_and_full_resolution_masks(monkeypatc
     body, table, air, centroid = reference_regions(volume)
     assert np.array_equal(two.body, body) and np.array_equal(two.table, table) and np.array_equal(two.air, air)
     assert np.allclose(two.body_centroid_zyx_vox, centroid, atol=1e-9)
+
+
+def test_padding_screen_on_slabs_equals_the_plain_screen_on_a_non_square_volume(monkeypatch) -> None:
+    rng = np.random.default_rng(3)
+    hu = rng.normal(-1000.0, 50.0, (40, 52, 70)).astype(np.float32)
+    hu[:, :5, :] = -3024.0
+    hu[17, :, 60:] = -3024.0
+    monkeypatch.setattr(R, "REGIONS_THREADS", 2)
+    code = R._padding_code(hu, -1500.0, -3024.0)
+    r, c = R.FOV_SCREEN_ROWS, R.FOV_SCREEN_COLS
+    samples = np.concatenate([hu[:, ::r, ::c].reshape(40, -1), hu[:, -1, ::c], hu[:, ::c, 0], hu[:, ::c, -1]], axis=1)
+    expected = (samples < -1500.0).astype(np.uint8) + 2 * (samples == np.float32(-3024.0)).astype(np.uint8)
+    assert np.array_equal(code, expected)
+    assert 17 in R.fov_slices(hu, -1500.0, -3024.0)
+
+
+@pytest.mark.parametrize("threads", [1, 2])
+def test_find_objects_on_slabs_equal_ndimage(threads: int, monkeypatch) -> None:
+    from scipy import ndimage
+
+    rng = np.random.default_rng(threads)
+    lab = rng.integers(0, 9, (48, 20, 30)).astype(np.uint8)
+    lab[lab > 5] = 0
+    lab[:, :, 29] = 0
+    monkeypatch.setattr(R, "REGIONS_THREADS", threads)
+    assert R.find_objects_over_z(lab, 8) == ndimage.find_objects(lab, max_label=8)
+
+
+def test_label_pixel_counts_on_slabs_equal_unpacked_counts(monkeypatch) -> None:
+    rng = np.random.default_rng(4)
+    pat = rng.integers(0, 1 << 16, (40, 6, 7)).astype(np.uint16)
+    pat[rng.random(pat.shape) < 0.4] = R.FULL
+    lab = rng.integers(0, 5, pat.shape).astype(np.int32)
+    monkeypatch.setattr(R, "REGIONS_THREADS", 2)
+    got = R._label_pixel_counts(lab, pat, 4)
+    pixels = R.pattern_tables().pop[pat].astype(np.int64)
+    expected = np.array([0] + [int(pixels[lab == i].sum()) for i in range(1, 5)])
+    assert np.array_equal(got, expected)
