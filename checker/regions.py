@@ -64,6 +64,7 @@ not): here no value changes, the masks equal the previous version's voxel for vo
 from __future__ import annotations
 
 import os
+import threading
 from collections.abc import Callable
 from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass, field
@@ -93,7 +94,8 @@ def over_z(work: Callable[[int, int], None], nz: int, multiple: int = 1, min_sli
     ``work`` must write only its own slices: the ranges are disjoint, so the result is
     the single-thread one whatever the order. numpy releases the GIL in the large array
     operations these passes are made of, so the threads run on separate cores. Fewer
-    than ``min_slices`` slices per range run in one call.
+    than ``min_slices`` slices per range run in one call, and so does a call made from
+    inside a slab (no nested threads).
 
     References
     ----------
@@ -102,15 +104,27 @@ def over_z(work: Callable[[int, int], None], nz: int, multiple: int = 1, min_sli
     n = REGIONS_THREADS if threads is None else threads
     n = max(1, min(n, nz // max(1, min_slices)))
     ranges = z_ranges(nz, n, multiple)
-    if len(ranges) <= 1:
+    if len(ranges) <= 1 or getattr(_IN_SLAB, "active", False):  # a slab's own passes stay on its thread
         if nz:
             work(0, nz)
         return
     with ThreadPoolExecutor(max_workers=len(ranges) - 1) as pool:
-        futures = [pool.submit(work, a, b) for a, b in ranges[1:]]
-        work(*ranges[0])
+        futures = [pool.submit(_as_slab, work, a, b) for a, b in ranges[1:]]
+        _as_slab(work, *ranges[0])
         for f in futures:
             f.result()
+
+
+_IN_SLAB = threading.local()
+
+
+def _as_slab(work: Callable[[int, int], None], a: int, b: int) -> None:
+    """``work(a, b)``, marking the thread as inside a slab while it runs."""
+    _IN_SLAB.active = True
+    try:
+        work(a, b)
+    finally:
+        _IN_SLAB.active = False
 
 _INPLANE = np.zeros((3, 3, 3), dtype=bool)
 _INPLANE[1] = ndimage.generate_binary_structure(2, 1)
@@ -852,7 +866,9 @@ def pattern_components(pat: np.ndarray, in_plane: bool = False) -> _PatternCompo
     means touching pixels. The other ("suspect") blocks, partly set and rare (at outlines
     where structures nearly meet, noise specks), are split into their pieces by a look-up
     table, and every facing pixel pair of a suspect block and a neighbour joins the two
-    nodes in a small graph whose connected components merge the labels.
+    nodes in a small graph whose connected components merge the labels. The suspects are
+    found on slabs of slices on ``REGIONS_THREADS`` threads (reading across the slab's
+    faces); the labelling is one, of the whole grid.
 
     References
     ----------
@@ -863,17 +879,14 @@ def pattern_components(pat: np.ndarray, in_plane: bool = False) -> _PatternCompo
     shape = pat.shape
     flat = pat.reshape(-1)
     nonempty = flat != 0
-    partial = np.flatnonzero(nonempty & (flat != FULL))
     axes = [(2, 1), (2, -1), (1, 1), (1, -1)] + ([] if in_plane else [(0, 1), (0, -1)])
-    pp = flat[partial]
-    marked = [partial[t.nsub[pp] > 1]]
-    coords = np.unravel_index(partial, shape)
-    for axis, step in axes:
-        j, ok = _neighbours(partial, coords, shape, axis, step)
-        pj = flat[j]
-        apart = (pj != 0) & ~_touch(pp[ok], pj, _FACE_SHIFT[(axis, step)])
-        marked += [partial[ok][apart], j[apart]]
-    suspects = np.unique(np.concatenate(marked))
+    marked: dict[int, list[np.ndarray]] = {}
+
+    def slab(a: int, b: int) -> None:
+        marked[a] = _suspects_of_slab(pat, a, b, axes)
+
+    over_z(slab, shape[0])
+    suspects = np.unique(np.concatenate([m for a in sorted(marked) for m in marked[a]]))
     plain = nonempty.reshape(shape).copy()
     plain.reshape(-1)[suspects] = False
     lab, n_lab = _label_in_box(plain, _INPLANE if in_plane else None)
@@ -893,6 +906,28 @@ def pattern_components(pat: np.ndarray, in_plane: bool = False) -> _PatternCompo
     v = np.concatenate(vs) if vs else np.zeros(0, dtype=np.int64)
     comps.n_final, comps.final = graph_components(n_nodes, u, v)
     return comps
+
+
+def _suspects_of_slab(pat: np.ndarray, a: int, b: int, axes: list[tuple[int, int]]) -> list[np.ndarray]:
+    """Flat indices of the suspect blocks (see :func:`pattern_components`) found from the
+    partial blocks of slices ``a .. b`` of ``pat``: those of more than one piece, and
+    each partial block and face neighbour (in any slice) with no facing pixel pair set
+    in both though the neighbour is non-empty. Repeats are possible."""
+    t = pattern_tables()
+    shape = pat.shape
+    flat = pat.reshape(-1)
+    plane = shape[1] * shape[2]
+    part = flat[a * plane : b * plane]
+    partial = np.flatnonzero((part != 0) & (part != FULL)) + a * plane
+    pp = flat[partial]
+    marked = [partial[t.nsub[pp] > 1]]
+    coords = np.unravel_index(partial, shape)
+    for axis, step in axes:
+        j, ok = _neighbours(partial, coords, shape, axis, step)
+        pj = flat[j]
+        apart = (pj != 0) & ~_touch(pp[ok], pj, _FACE_SHIFT[(axis, step)])
+        marked += [partial[ok][apart], j[apart]]
+    return marked
 
 
 def graph_components(n_nodes: int, u: np.ndarray, v: np.ndarray) -> tuple[int, np.ndarray]:

@@ -119,3 +119,19 @@ def test_label_pixel_counts_on_slabs_equal_unpacked_counts(monkeypatch) -> None:
     pixels = R.pattern_tables().pop[pat].astype(np.int64)
     expected = np.array([0] + [int(pixels[lab == i].sum()) for i in range(1, 5)])
     assert np.array_equal(got, expected)
+
+
+def test_over_z_inside_a_slab_stays_on_the_slab_thread() -> None:
+    inner_threads: dict[int, set] = {}
+    lock = threading.Lock()
+
+    def inner(a: int, b: int) -> None:
+        with lock:
+            inner_threads.setdefault(threading.get_ident(), set()).add((a, b))
+
+    def outer(a: int, b: int) -> None:
+        R.over_z(inner, 64, min_slices=8, threads=2)
+
+    R.over_z(outer, 64, min_slices=8, threads=2)
+    assert len(inner_threads) == 2  # one per outer slab, none spawned inside
+    assert all(ranges == {(0, 64)} for ranges in inner_threads.values())
