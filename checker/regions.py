@@ -48,8 +48,8 @@ air below are exact):
   full-size intermediate.
 
 - Threads: the slice-local passes (the padding screen of the field of view, the
-  threshold into block patterns, the per-label pixel counts and the component boxes on
-  the labelled grid, the in-plane hole filling, painting body and table from their
+  threshold into block patterns, the search for suspect blocks, the per-label pixel
+  counts and the component boxes on the labelled grid, the in-plane hole filling, painting body and table from their
   patterns, the body's per-slice profiles for count and centroid, the air written a slab
   at a time) run over disjoint slabs of
   slices on ``REGIONS_THREADS`` threads (:func:`over_z`; 1 runs everything in the calling
