@@ -13,6 +13,7 @@ from reconaudit.checker.volume import Volume
 
 def test_words_of_a_person_name_and_id():
     assert identifier_words("QUILLON^MARETTA^B", "FH-220931") == ["FH-220931", "MARETTA", "QUILLON"]
+    assert identifier_words("QA^WATER PHANTOM", None) == ["WATER PHANTOM"]
     assert identifier_words(None, "") == []
 
 
@@ -20,6 +21,8 @@ def test_whole_words_only_and_any_case():
     words = identifier_words("ANDO^REL", "4471")
     assert withhold_words("chest ando 4471 andover 44712", words) == f"chest {WITHHELD} {WITHHELD} andover 44712"
     assert withhold_words("ABDOMEN 1.25 STD", words) == "ABDOMEN 1.25 STD"
+    phrase = identifier_words("QA^WATER PHANTOM", None)
+    assert withhold_words("water phantom 5 mm; water 0 HU", phrase) == f"{WITHHELD} 5 mm; water 0 HU"
 
 
 def _series(tmp_path, description: str, **kw):
