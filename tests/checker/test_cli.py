@@ -143,3 +143,27 @@ def test_compare_command_on_the_demo_pair(tmp_path, capsys):
 def test_console_script_runs():
     out = subprocess.run([sys.executable, "-m", "reconaudit.checker.cli", "--version"], capture_output=True, text=True)
     assert out.returncode == 0 and out.stdout.startswith("reconaudit ")
+
+
+def test_the_command_prefers_small_pages_unless_the_site_chose():
+    from reconaudit.checker.cli import prefer_small_pages
+
+    env: dict[str, str] = {}
+    prefer_small_pages(env)
+    assert env["NUMPY_MADVISE_HUGEPAGE"] == "0"
+    site = {"NUMPY_MADVISE_HUGEPAGE": "1"}
+    prefer_small_pages(site)
+    assert site["NUMPY_MADVISE_HUGEPAGE"] == "1"
+
+
+def test_the_command_module_sets_it_before_numpy_is_imported():
+    import subprocess
+    import sys as _sys
+
+    code = ("import os; os.environ.pop('NUMPY_MADVISE_HUGEPAGE', None)\n"
+            "import sys\n"
+            "from reconaudit.checker import cli\n"
+            "early = 'numpy' in sys.modules  # too late for the setting if numpy is already in\n"
+            "cli.prefer_small_pages()\n"
+            "sys.exit(0 if not early and os.environ['NUMPY_MADVISE_HUGEPAGE'] == '0' else 1)\n")
+    assert subprocess.run([_sys.executable, "-c", code], timeout=120).returncode == 0
