@@ -8,9 +8,8 @@ the PatientName (family name, given names, ... as the DICOM person name separate
 with "^", PS3.5 6.2; each taken whole, at least 3 characters), compared without regard
 to case, is replaced by :data:`WITHHELD`. Components are not split at spaces, so a
 phantom registered as "QA^WATER PHANTOM" withholds the phrase "WATER PHANTOM", not
-every use of "water". This catches a name or
-ID copied into the text; it cannot catch one spelled differently, so the README tells
-sites not to rely on it alone.
+every use of "water". This catches a name or ID copied into the text; it cannot catch
+one spelled differently, so the README tells sites not to rely on it alone.
 """
 from __future__ import annotations
 

@@ -21,11 +21,11 @@ import jinja2
 
 from .. import SAFETY_NOTICE
 from ..history import flatten_metrics
+from ..identifiers import WITHHELD
 from ..volume import IDENTIFIER_KEYS, SAFE_METADATA_KEYS
 from ..results import finite_number
 
 _TEMPLATES = Path(__file__).with_name("templates")
-WITHHELD = "[withheld]"
 
 VERDICTS: dict[str, dict[str, Any]] = {
     "pass": {"word": "pass", "icon": "✓", "rank": 0},
