@@ -359,15 +359,23 @@ def _matching_edge(edge: Mapping[str, Any], candidates: list[Mapping[str, Any]])
     return candidates[i] if diff <= max(20.0, 0.2 * abs(c)) else None
 
 
+def _f50_on_curve(edge: Mapping[str, Any]) -> float | None:
+    """The edge's f50 when it lies on its recorded curve; None beyond it (not a measurement)."""
+    f50 = finite_number(edge.get("f50_per_mm"))
+    freqs = _floats(edge.get("frequency_per_mm"))
+    if f50 is None or freqs is None or f50 > float(np.nanmax(freqs)):
+        return None
+    return f50
+
+
 def _edge_label(edge: Mapping[str, Any]) -> str:
     c = finite_number(edge.get("contrast_hu"))
     text = f"{c:+.0f} HU" if c is not None else "edge"
-    f50 = finite_number(edge.get("f50_per_mm"))
-    freqs = _floats(edge.get("frequency_per_mm"))
-    if f50 is not None and freqs is not None and f50 > float(np.nanmax(freqs)):
-        text += ", TTF above 0.5 up to the plotted limit"
-    elif f50 is not None:
+    f50 = _f50_on_curve(edge)
+    if f50 is not None:
         text += f", f50 {f50:.3f}"
+    elif finite_number(edge.get("f50_per_mm")) is not None:
+        text += ", TTF above 0.5 up to the plotted limit"
     if edge.get("reliable") is False:
         text += " (unreliable)"
     return text
@@ -392,8 +400,8 @@ def draw_ttf_curves(ttf: Mapping[str, Any], baseline: Mapping[str, Any] | None, 
         colour = palette[i % len(palette)]
         f, t = _curve(edge, "frequency_per_mm", "ttf")
         ax.plot(f, t, color=colour, lw=1.7, ls=":" if edge.get("reliable") is False else "-", label=_edge_label(edge))
-        f50 = finite_number(edge.get("f50_per_mm"))
-        if f50 is not None and f.size and f50 <= float(np.nanmax(f)):  # beyond the curve: not a measurement
+        f50 = _f50_on_curve(edge)
+        if f50 is not None:
             ax.plot([f50], [0.5], marker="o", color=colour, ms=5)
         match = _matching_edge(edge, base_edges)
         if match is not None:

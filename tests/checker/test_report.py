@@ -385,3 +385,14 @@ def test_report_says_how_many_series_were_skipped(tmp_path):
     assert "2 more series had been checked before" in html
     doc["skipped"] = []
     assert "checked before" not in render_report(doc, figures={})
+
+
+def test_an_f50_beyond_the_recorded_curve_is_not_shown_as_a_value():
+    from reconaudit.checker.report import figures
+
+    edge = {"contrast_hu": 900.0, "f50_per_mm": 3.05, "frequency_per_mm": [0.0, 0.35, 0.7], "ttf": [1.0, 0.99, 0.97]}
+    assert figures._f50_on_curve(edge) is None
+    assert "f50" not in figures._edge_label(edge) and "above 0.5" in figures._edge_label(edge)
+    edge["f50_per_mm"] = 0.31
+    assert figures._f50_on_curve(edge) == 0.31
+    assert "f50 0.310" in figures._edge_label(edge)
