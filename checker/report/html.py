@@ -12,6 +12,7 @@ named after a patient, for instance).
 from __future__ import annotations
 
 import datetime as _dt
+import functools
 import os
 import tempfile
 from pathlib import Path
@@ -441,7 +442,11 @@ def report_context(
     }
 
 
+@functools.lru_cache(maxsize=1)
 def _environment() -> jinja2.Environment:
+    """The report templates' environment, made once per process: compiling the templates
+    costs about 0.2 s, rendering them milliseconds. The loader still reloads a template
+    whose file changed; each render gets its own context, so threads may share it."""
     return jinja2.Environment(
         loader=jinja2.FileSystemLoader(str(_TEMPLATES)),
         autoescape=True,
