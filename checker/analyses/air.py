@@ -59,6 +59,11 @@ Method
    when their contrast-to-noise (mean above the air over the air's pixel noise) is at
    least ``min_flag_contrast_to_noise``.
 
+Threads: the coarse grid (step 0) is made over slabs of slices (cut on whole layers of
+blocks) on ``AIR_THREADS`` threads (default: two, or one on a single core; the batch sets
+it to a worker's thread budget). Each slab writes only its own layers, so the grid, and
+everything after it, is the single-thread one value for value.
+
 What may change with the data path: the values in the record are estimates, and the
 coarse grid and the subsampled robust statistics are documented method choices; the
 record keys, types and meaning stay as documented, and the reference checks
@@ -92,6 +97,7 @@ from __future__ import annotations
 import functools
 import math
 import mmap
+import os
 from dataclasses import dataclass
 from typing import Any, Callable
 
@@ -99,7 +105,7 @@ import numpy as np
 from scipy import ndimage, optimize, special
 
 from ..errors import ProfileError
-from ..regions import Regions
+from ..regions import Regions, over_z
 from ..results import AnalysisResult, Finding, Overlays, Point, Severity
 from ..volume import Volume
 
@@ -148,6 +154,12 @@ SOURCES: dict[str, str] = {
 }
 
 _FWHM_FACTOR = 4.0 * math.log(2.0)
+
+#: Threads of the analysis (1: everything in the calling thread; the batch sets it to a
+#: worker's thread budget). The work splits into parts whose results do not depend on
+#: the number of threads: slabs of slices of the coarse grid.
+AIR_THREADS: int = max(1, min(2, len(os.sched_getaffinity(0)) if hasattr(os, "sched_getaffinity")
+                              else (os.cpu_count() or 1)))
 
 #: Target edge of a coarse-grid block (mm) and its largest allowed edge.
 BLOCK_MM = 3.0
@@ -577,24 +589,11 @@ def coarse_air_grid(hu: np.ndarray, air: np.ndarray, factors: tuple[int, int, in
     nz, ny, nx = hu.shape
     if ny % ky or nx % kx:  # edges that are not whole blocks: the general block sums
         return _coarse_air_grid_ragged(hu, air, factors)
-    cdt = _count_dtype(int(np.prod(factors)))
     out_shape = (-(-nz // kz), ny // ky, nx // kx)
     sums = np.empty(out_shape, dtype=np.float32)
     counts = np.empty(out_shape, dtype=np.float32)
-    plane = np.empty((ny, nx), dtype=np.float32)
-    rows = np.empty((ny // ky, nx), dtype=np.float32)
-    cplane = np.empty((ny, nx), dtype=cdt)
-    crows = np.empty((ny // ky, nx), dtype=cdt)
-    word = _PACKED_WORDS.get(kx, np.dtype(np.uint8))
-    words = np.empty((ny, nx // kx), dtype=word)
-    wrows = np.empty((ny // ky, nx // kx), dtype=word)
-    for b, z0 in enumerate(range(0, nz, kz)):
-        h, a = hu[z0 : z0 + kz], air[z0 : z0 + kz]
-        _plane_block_sum(_masked_plane_sum(h, a, plane), ky, kx, rows, sums[b])
-        if packed_mask_count_fits(a, ky, kx):  # the layer's mask is in the cache
-            packed_mask_block_count(a, ky, kx, words, wrows, counts[b])
-        else:
-            _plane_block_sum(_mask_plane_count(a, cplane), ky, kx, crows, counts[b])
+    over_z(lambda z0, z1: _coarse_layers(hu, air, factors, sums, counts, z0, z1), nz, multiple=kz,
+           threads=AIR_THREADS)
     for b in _non_finite_layers(sums):  # put right once, after the pass (the same values)
         z0 = b * kz
         h, a = hu[z0 : z0 + kz], air[z0 : z0 + kz]
@@ -603,6 +602,32 @@ def coarse_air_grid(hu: np.ndarray, air: np.ndarray, factors: tuple[int, int, in
         counts[b][bad] = 0.0
         sums[b] = np.where(bad, np.float32(0), part)
     return sums, counts
+
+
+def _coarse_layers(
+    hu: np.ndarray, air: np.ndarray, factors: tuple[int, int, int], sums: np.ndarray, counts: np.ndarray, z0: int, z1: int
+) -> None:
+    """The layers of blocks of slices ``z0 .. z1`` (``z0`` a multiple of ``factors[0]``)
+    of :func:`coarse_air_grid`, into ``sums`` and ``counts``, with buffers of its own (so
+    disjoint slabs run on separate threads)."""
+    kz, ky, kx = factors
+    _, ny, nx = hu.shape
+    cdt = _count_dtype(int(np.prod(factors)))
+    plane = np.empty((ny, nx), dtype=np.float32)
+    rows = np.empty((ny // ky, nx), dtype=np.float32)
+    cplane = np.empty((ny, nx), dtype=cdt)
+    crows = np.empty((ny // ky, nx), dtype=cdt)
+    word = _PACKED_WORDS.get(kx, np.dtype(np.uint8))
+    words = np.empty((ny, nx // kx), dtype=word)
+    wrows = np.empty((ny // ky, nx // kx), dtype=word)
+    for z in range(z0, z1, kz):
+        b = z // kz
+        h, a = hu[z : min(z + kz, z1)], air[z : min(z + kz, z1)]
+        _plane_block_sum(_masked_plane_sum(h, a, plane), ky, kx, rows, sums[b])
+        if packed_mask_count_fits(a, ky, kx):  # the layer's mask is in the cache
+            packed_mask_block_count(a, ky, kx, words, wrows, counts[b])
+        else:
+            _plane_block_sum(_mask_plane_count(a, cplane), ky, kx, crows, counts[b])
 
 
 def _non_finite_layers(grid: np.ndarray) -> np.ndarray:

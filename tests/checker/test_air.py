@@ -317,3 +317,32 @@ def test_order_statistics_equal_numpy_median_and_percentile():
             for q in (10.0, 50.0, 90.0, 99.0):
                 assert air.order_percentile(v, q) == float(np.percentile(v, q)), (n, dtype, q)
     assert np.isnan(air.order_median(np.zeros(0))) and np.isnan(air.order_percentile(np.zeros(0), 90.0))
+
+
+@pytest.mark.parametrize("factors", [(2, 4, 4), (3, 2, 2), (1, 4, 8)])
+def test_coarse_air_grid_on_two_threads_equals_one_thread_and_plain_sums(monkeypatch, factors):
+    """The coarse grid made over slabs of slices on two threads (cut on whole layers of
+    blocks, a short last layer included) is the single-thread grid value for value and
+    the plain masked reshape-sum; a non-finite air value in the second slab still leaves
+    only its own block out."""
+    rng = np.random.default_rng(31)
+    hu = rng.normal(-1000, 12, (41, 24, 32)).astype(np.float32)
+    mask = rng.random(hu.shape) > 0.3
+    mask[:, :4] = True
+    mask[20:30, 8:16, 8:24] = False
+    hu[35, 0, 0] = np.nan  # an air pixel in the second slab
+    grids = {}
+    for threads in (1, 2):
+        monkeypatch.setattr(air, "AIR_THREADS", threads)
+        grids[threads] = air.coarse_air_grid(hu, mask, factors)
+    assert np.array_equal(grids[1][0], grids[2][0]) and np.array_equal(grids[1][1], grids[2][1])
+    clean = hu.copy()
+    clean[35, 0, 0] = -1000.0
+    want_s, want_c = _plain_masked_block_sums(clean, mask, factors)
+    b = 35 // factors[0]
+    sums, counts = grids[2]
+    assert counts[b, 0, 0] == 0 and sums[b, 0, 0] == 0
+    keep = np.ones(counts.shape, dtype=bool)
+    keep[b, 0, 0] = False
+    assert np.array_equal(counts[keep], want_c.astype(np.float32)[keep])
+    assert np.max(np.abs(sums[keep] - want_s[keep])) < 1e-2
