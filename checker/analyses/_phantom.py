@@ -20,7 +20,15 @@ The disc test runs first on slices about ``screen_step_mm`` (5 mm) apart, then o
 slices between two of them when either comes near passing (radius at least 0.8 of the
 minimum, fill within 0.05 of it): a phantom section shorter than that step inside a
 series whose other slices are far from a disc can be missed (phantom modules are
-centimetres long). The insert test runs on every phantom slice, on the 2 x 2 block
+centimetres long). When both pass and show the same disc (centres and radii within half
+a working pixel), the slices between are not measured but filled in: centre and radius
+interpolated, the inner disc taken as the disc itself (the body mask is hole-filled,
+so inside a passing disc the two agree). A method choice for speed under the lead's
+rule that records may change: the disc test of a phantom series costs a quarter; the
+water test and the insert test below still look at every one of those slices, so a
+slice between that holds no water or an insert is still found (tested), and slices
+whose disc changes between two screened slices are measured one by one. The insert
+test runs on every phantom slice, on the 2 x 2 block
 means of the working grid (pixels of twice its size; a method choice for speed under
 the lead's rule that records may change: a quarter of the pixels to smooth, the noise
 of the block means after the Gaussian about that of the smoothed grid, and a group of
@@ -569,9 +577,17 @@ def _screened_disc_stats(
 ) -> tuple[np.ndarray, ...]:
     """Disc test numbers of every slice that may show the phantom, on the working grid.
 
-    Every ``k``-th slice (and the last) is measured first; a slice between two of them is
-    measured too when either passes a relaxed test (radius at least 0.8 of the minimum,
-    fill at most 0.05 short of it). Slices left out get radius and fill 0.
+    Every ``k``-th slice (and the last) is measured first. The slices between two of them
+    are then
+
+    - filled in, not measured, when both pass the disc test and agree (centres and
+      radii within :data:`_AGREE_GRID_PX` working pixels): centre and radius linearly
+      interpolated, fill the lower of the two, and the slice's mask taken as the whole
+      grid (its inner disc is then the disc itself; the body is hole-filled, so within
+      a passing disc the two are the same);
+    - measured, when either passes a relaxed test (radius at least 0.8 of the minimum,
+      fill at most 0.05 short of it) and they do not both pass and agree;
+    - left out otherwise (radius and fill 0).
 
     Returns the strided body masks (z, y', x') and centre_y, centre_x, radius, fill
     (z,) on the working grid.
@@ -588,12 +604,39 @@ def _screened_disc_stats(
         cy[zs], cx[zs], r[zs], fill[zs] = disc_stats(part)
 
     measure(first)
-    near = (r[first] * f * pixel_mm >= 0.8 * s["min_radius_mm"]) & (fill[first] >= s["min_fill"] - 0.05)
-    between = [np.arange(a + 1, b) for a, b, na, nb in zip(first[:-1], first[1:], near[:-1], near[1:])
-               if (na or nb) and b > a + 1]
+    radius_mm = r[first] * f * pixel_mm
+    near = (radius_mm >= 0.8 * s["min_radius_mm"]) & (fill[first] >= s["min_fill"] - 0.05)
+    passes = (radius_mm >= s["min_radius_mm"]) & (fill[first] >= s["min_fill"])
+    between, filled = [], []
+    for i, (a, b) in enumerate(zip(first[:-1], first[1:])):
+        if b == a + 1 or not (near[i] or near[i + 1]):
+            continue
+        gap = np.arange(a + 1, b)
+        if passes[i] and passes[i + 1] and _discs_agree(cy, cx, r, a, b):
+            filled.append(gap)
+        else:
+            between.append(gap)
     if between:
         measure(np.concatenate(between))
+    for gap in filled:
+        a, b = gap[0] - 1, gap[-1] + 1
+        t = (gap - a) / float(b - a)
+        for v in (cy, cx, r):
+            v[gap] = (1.0 - t) * v[a] + t * v[b]
+        fill[gap] = min(fill[a], fill[b])
+        masks[gap] = True
     return masks, cy, cx, r, fill
+
+
+#: Largest difference (working-grid pixels) of the centres and radii of two screened
+#: slices for the slices between them to be filled in instead of measured.
+_AGREE_GRID_PX = 0.5
+
+
+def _discs_agree(cy: np.ndarray, cx: np.ndarray, r: np.ndarray, a: int, b: int) -> bool:
+    """Slices ``a`` and ``b`` show the same disc: centres and radii within
+    :data:`_AGREE_GRID_PX` working pixels."""
+    return bool(max(abs(cy[a] - cy[b]), abs(cx[a] - cx[b]), abs(r[a] - r[b])) <= _AGREE_GRID_PX)
 
 
 def _find_phantom(volume: Volume, regions: Regions, s: dict[str, float]) -> Phantom:

@@ -270,3 +270,43 @@ def test_strided_masks_equal_numpy_slicing(f):
         assert got.dtype == bool and got.flags.c_contiguous
         assert np.array_equal(got, mask[z][:, rows.start : rows.stop : f, cols.start : cols.stop : f])
         assert np.array_equal(_phantom._strided(mask, f, zs=zs), mask[z][:, ::f, ::f])
+
+
+def _discs(radii: list[float], n: int = 160, centre: float = 80.0, sd: float = 5.0, seed: int = 9) -> np.ndarray:
+    """Slices of water discs of the given radii (0: air only) in air, with noise."""
+    yy, xx = np.mgrid[:n, :n]
+    r2 = (yy - centre) ** 2 + (xx - centre) ** 2
+    hu = np.stack([np.where(r2 <= r * r, 0.0, -1000.0) if r > 0 else np.full((n, n), -1000.0) for r in radii])
+    return hu + np.random.default_rng(seed).normal(0.0, sd, hu.shape)
+
+
+def test_slices_between_agreeing_screened_slices_are_not_taken_on_trust():
+    """Sensitivity of the filled-in slices (between two screened slices showing the same
+    disc, 5 slices apart at 1 mm): two slices of the same outline filled with a plastic of
+    300 HU there are not water phantom slices, and a rod on one slice there marks that
+    slice as having an insert (the water and insert tests still look at every slice)."""
+    hu = _discs([60.0] * 11)
+    hu[2:4][hu[2:4] > -500.0] += 300.0  # a solid plastic module on two slices
+    yy, xx = np.mgrid[:160, :160]
+    hu[7][(yy - 80) ** 2 + (xx - 110) ** 2 <= 8**2] = 800.0  # a rod on one slice
+    vol = Volume.from_array(hu, (1.0, 0.8, 0.8))
+    ph = _phantom.find_phantom(vol, find_regions(vol))
+    assert list(np.flatnonzero(ph.on_slice)) == [0, 1, 4, 5, 6, 7, 8, 9, 10]
+    assert list(np.flatnonzero(ph.inserts)) == [7]
+
+
+def test_a_change_of_disc_between_screened_slices_is_measured_slice_by_slice():
+    """Two phantom modules of different radius (60 and 45 px) meeting between two
+    screened slices: the slices between are measured, each slice gets its own radius
+    (within a working pixel of 2.4 mm here), and a 3 px centre shift between modules is
+    followed."""
+    hu = _discs([60.0] * 7 + [45.0] * 6)
+    vol = Volume.from_array(hu, (1.0, 0.8, 0.8))
+    ph = _phantom.find_phantom(vol, find_regions(vol))
+    assert ph.on_slice.all()
+    assert np.all(np.abs(ph.radius_vox[:7] - 60.0) < 3.0) and np.all(np.abs(ph.radius_vox[7:] - 45.0) < 3.0)
+    shifted = np.concatenate([_discs([60.0] * 7, centre=80.0), _discs([60.0] * 6, centre=86.0, seed=4)])
+    vol = Volume.from_array(shifted, (1.0, 0.8, 0.8))
+    ph = _phantom.find_phantom(vol, find_regions(vol))
+    assert ph.on_slice.all()
+    assert np.all(np.abs(ph.centre_yx_vox[:7] - 80.0) < 1.5) and np.all(np.abs(ph.centre_yx_vox[7:] - 86.0) < 1.5)
