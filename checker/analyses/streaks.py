@@ -53,6 +53,27 @@ found): the indices of thin-slice series are estimates from slabs; record keys, 
 and meaning are unchanged. Localisation of flagged slices stays per slice at full
 resolution.
 
+First screen of thin slices (coarse then refine in z). Where slices are screened in
+slabs (two or more slices), a first screen runs on slabs of a whole number of screen
+slabs, about ``first_screen_slab_mm`` thick (5 mm: four 1.25 mm slices). A streak carried
+by the slices of one screen slab keeps ``slab / first`` of its whitened excess in the
+first-screen slab (its power falls as the square of the share of slices carrying it,
+the independent noise's power only in proportion), so the first screen refines at the
+lowered threshold ``1 + (tolerance_index - 1) * slab / first`` (1.5 by default): its
+slabs above it (and those not complete: the volume's end, a slice without usable
+pixels) are screened in screen slabs, together with the screen slab on either side so
+that the neighbour mixing sees the same neighbours as a screen of every slab; their
+indices, flags and the per-slice refinement are then exactly those of that screen.
+The other slices keep the first screen's index (below the threshold, hence below the
+tolerance). Streaks that persist over the first-screen slab gain from it. A method
+choice of the speed rule: the indices of unrefined thin-slice slabs are first-screen
+estimates; keys, types and meaning unchanged; flags checked against the screen of
+every slab in tests/reference/test_streaks_first_screen.py (streaks on one or two
+slices of simulated series). Full-coverage data stay well below the threshold (the
+512 x 512 x 400 benchmark of 1.25 mm slices: first-screen indices at most 1.26), so
+the first screen halves the screen's work there. Slices of 2.5 mm and more have no
+first screen.
+
 Missing wedge: a contiguous run of at least ``wedge_min_deg`` of orientation bins of the
 mean profile below ``wedge_level``; each end is the boundary streak peak just outside
 the half-level crossing (or that crossing when there is no such peak).
@@ -144,6 +165,7 @@ DEFAULTS: dict[str, Any] = {
     "severity": "review",
     "screen_max_px": 256,
     "screen_slab_mm": 2.5,
+    "first_screen_slab_mm": 5.0,
     "min_slice_px": 32,
     "band_cycles_per_px": [0.1, 0.45],
     "angle_bin_deg": 2.0,
@@ -187,6 +209,11 @@ SOURCES: dict[str, str] = {
         "site choice (acquisition streaks persist over a few mm along z; 2.5 mm and thicker "
         "slices are screened one by one)"
     ),
+    "first_screen_slab_mm": (
+        "site choice (a gate only: slabs of about this thickness are screened first with the refine "
+        "threshold lowered in proportion, 1 + (tolerance_index - 1) x slab / first-screen slab; "
+        "0 screens every slab; used only where slices are screened in slabs already)"
+    ),
     "dense_hu": "site choice, above cortical bone (about 2000 HU or less, from memory); metal reads far higher",
     "dense_band_hu": "site choice (several times the noise SD of a routine body series)",
 }
@@ -210,6 +237,10 @@ def resolve_settings(settings: dict[str, Any] | None) -> dict[str, Any]:
     slab_mm = float(merged["screen_slab_mm"])
     if not (math.isfinite(slab_mm) and slab_mm >= 0.0):
         raise ProfileError(f"screen_slab_mm {merged['screen_slab_mm']!r}; expected a finite value >= 0", source=NAME)
+    first_mm = float(merged["first_screen_slab_mm"])
+    if not (math.isfinite(first_mm) and first_mm >= 0.0):
+        raise ProfileError(f"first_screen_slab_mm {merged['first_screen_slab_mm']!r}; expected a finite value >= 0",
+                           source=NAME)
     if not 180.0 / float(merged["angle_bin_deg"]) >= 12:
         raise ProfileError(f"angle_bin_deg {merged['angle_bin_deg']}; expected at most 15", source=NAME)
     return merged
@@ -1729,14 +1760,70 @@ def slab_size(slice_mm: float, cfg: dict[str, Any]) -> int:
     return max(1, int(round(float(cfg["screen_slab_mm"]) / spacing)))
 
 
+def first_screen_size(slice_mm: float, slab: int, cfg: dict[str, Any]) -> int:
+    """Slices per slab of the first screen: a whole number of screen slabs of ``slab`` slices.
+
+    ``slab * max(1, round(first_screen_slab_mm / (slab * spacing)))`` when the slices are
+    screened in slabs already (``slab`` 2 or more); otherwise ``slab`` (no first screen:
+    thick slices keep their one-by-one screen). A spacing that is not a positive finite
+    number gives ``slab``.
+    """
+    spacing = float(slice_mm)
+    first_mm = float(cfg["first_screen_slab_mm"])
+    if slab < 2 or first_mm <= 0.0 or not (math.isfinite(spacing) and spacing > 0.0):
+        return slab
+    return slab * max(1, int(round(first_mm / (slab * spacing))))
+
+
+def first_screen_gate(tolerance: float, slab: int, first: int) -> float:
+    """Refine threshold of the first screen: ``1 + (tolerance - 1) * slab / first``.
+
+    A streak on the slices of one screen slab keeps ``slab / first`` of its whitened
+    excess in a first-screen slab of ``first`` slices (its power falls as the square of
+    the share of slices that carry it, the independent noise's power only in
+    proportion), so a first-screen slab below this gate holds no screen slab above the
+    tolerance that owes its excess to its own slices (see the module docstring).
+    """
+    return 1.0 + (float(tolerance) - 1.0) * slab / float(first)
+
+
+def screen_slabs(volume: Volume, masks: "AllowedMasks", factor: int, bins: SpectralBins, cfg: dict[str, Any],
+                 slab: int, ranges: list[tuple[int, int]]) -> dict[int, np.ndarray | str]:
+    """Outcome (profile or skip reason) of every slice of ``ranges`` screened in slabs of ``slab``.
+
+    Each range ``(z0, z1)`` starts at a multiple of ``slab``, so its slabs are those of
+    the whole volume (slab ``j`` holds slices ``j * slab`` to ``(j + 1) * slab - 1``).
+    Tasks of :data:`SCREEN_STACK` slabs go to :data:`SCREEN_THREADS` threads; each
+    slab's outcome depends on that slab only.
+    """
+    per_task = SCREEN_STACK * slab
+    tasks = [(a, min(a + per_task, z1)) for z0, z1 in ranges for a in range(z0, z1, per_task)]
+
+    def one(i: int) -> list[np.ndarray | str]:
+        ws = thread_workspace()
+        z0, z1 = tasks[i]
+        allowed = masks.stack(z0, z1, ws)
+        if slab == 1:
+            return screen_stack(volume.hu[z0:z1], allowed, factor, bins, cfg, ws)
+        return screen_slab_stack(volume.hu[z0:z1], allowed, factor, bins, cfg, slab, ws)
+
+    out: dict[int, np.ndarray | str] = {}
+    for (z0, z1), found in zip(tasks, map_slices(one, len(tasks), SCREEN_THREADS)):
+        out.update(zip(range(z0, z1), found))
+    return out
+
+
 def screen_volume(volume: Volume, regions: Regions | None, cfg: dict[str, Any]) -> Screen:
     """Angular profile and streak index of every axial slice (binned screen, slabs of thin slices).
 
     Slices are screened in slabs of :func:`slab_size` adjacent slices (the mean of the
     slab's usable slices, see the module docstring); a slab's profile and index are
-    those of each of its slices. Slabs are independent; they are screened by
-    :data:`SCREEN_THREADS` threads, :data:`SCREEN_STACK` slabs per task, and the
-    outcomes gathered in slice order, so the result does not depend on the thread count.
+    those of each of its slices. Where slabs hold two or more slices, a first screen on
+    slabs of :func:`first_screen_size` slices comes before: only its slabs above
+    :func:`first_screen_gate` (and those not complete) are screened in slabs
+    (:func:`refine_first_screen`). Slabs are independent; they are screened by
+    :data:`SCREEN_THREADS` threads and the outcomes gathered in slice order, so the
+    result does not depend on the thread count.
     """
     nz, ny, nx = volume.shape
     factor = screen_factor((ny, nx), int(cfg["screen_max_px"]))
@@ -1744,46 +1831,106 @@ def screen_volume(volume: Volume, regions: Regions | None, cfg: dict[str, Any]) 
     bins = spectral_bins(shape_b, tuple(float(v) for v in cfg["band_cycles_per_px"]), float(cfg["angle_bin_deg"]))
     masks = AllowedMasks(regions, factor, shape_b, cfg)
     slab = min(slab_size(volume.spacing_mm[0], cfg), nz)
-    per_task = SCREEN_STACK * slab
-    starts = list(range(0, nz, per_task))
-    def one(i: int) -> list[np.ndarray | str]:
-        ws = thread_workspace()
-        z0, z1 = starts[i], min(starts[i] + per_task, nz)
-        allowed = masks.stack(z0, z1, ws)
-        if slab == 1:
-            return screen_stack(volume.hu[z0:z1], allowed, factor, bins, cfg, ws)
-        return screen_slab_stack(volume.hu[z0:z1], allowed, factor, bins, cfg, slab, ws)
-
-    outcomes = [o for stack in map_slices(one, len(starts), SCREEN_THREADS) for o in stack]
+    first = first_screen_size(volume.spacing_mm[0], slab, cfg)
+    weight = float(cfg["neighbour_weight"])
+    if first > slab and nz > first:
+        outcomes, indices, neighbours = refine_first_screen(volume, masks, factor, bins, cfg, slab, first)
+    else:
+        outcomes = screen_slabs(volume, masks, factor, bins, cfg, slab, [(0, nz)])
+        neighbours = {z: o for z, o in outcomes.items() if not isinstance(o, str)}
+        indices = slab_indices(neighbours, nz, slab, weight)
     profiles: dict[int, np.ndarray] = {}
     skipped = {"constant": 0, "non-finite": 0, "without usable pixels": 0}
-    for z, outcome in enumerate(outcomes):
+    for z in range(nz):
+        outcome = outcomes[z]
         if isinstance(outcome, str):
             skipped[outcome] += 1
         else:
             profiles[z] = outcome
-    indices = slab_indices(profiles, nz, slab, float(cfg["neighbour_weight"]))
     if slab > 1:
-        refine_flagged_slabs(volume, masks, factor, bins, cfg, profiles, indices)
+        refine_flagged_slabs(volume, masks, factor, bins, cfg, profiles, indices, neighbours)
     return Screen(factor=factor, shape_b=shape_b, profiles=profiles, indices=indices, skipped=skipped)
 
 
-def slab_indices(profiles: dict[int, np.ndarray], nz: int, slab: int, neighbour_weight: float) -> list[float | None]:
+def refine_first_screen(volume: Volume, masks: "AllowedMasks", factor: int, bins: SpectralBins, cfg: dict[str, Any],
+                        slab: int, first: int) -> tuple[dict[int, np.ndarray | str], list[float | None],
+                                                        dict[int, np.ndarray]]:
+    """The first screen on slabs of ``first`` slices, refined to slabs of ``slab`` where needed.
+
+    A first-screen slab is refined when its index exceeds :func:`first_screen_gate`, when
+    it has fewer than ``first`` screened slices (the volume's end, a slice without
+    usable pixels) or when it is not complete. Its slices are screened in slabs of
+    ``slab``, together with the one screen slab on either side of it, so that their
+    neighbour-mixed indices (:func:`slab_indices`) are those of screening every slab;
+    the other slices keep the first screen's outcome and index (below the gate, hence
+    below ``tolerance_index``). Returns the outcome and index of every slice, and the
+    profiles the per-slice refinement takes as neighbours (the screen slabs' where
+    they were screened).
+    """
+    nz = volume.shape[0]
+    weight = float(cfg["neighbour_weight"])
+    coarse = screen_slabs(volume, masks, factor, bins, cfg, first, [(0, nz)])
+    coarse_profiles = {z: o for z, o in coarse.items() if not isinstance(o, str)}
+    coarse_indices = slab_indices(coarse_profiles, nz, first, weight)
+    gate = first_screen_gate(float(cfg["tolerance_index"]), slab, first)
+    chosen = []
+    for z0 in range(0, nz, first):
+        zs = range(z0, min(z0 + first, nz))
+        if len(zs) < first or any(z not in coarse_profiles for z in zs) or coarse_indices[z0] > gate:
+            chosen.append((z0, zs[-1] + 1))
+    outcomes: dict[int, np.ndarray | str] = dict(coarse)
+    indices = list(coarse_indices)
+    neighbours = dict(coarse_profiles)
+    if not chosen:
+        return outcomes, indices, neighbours
+    ranges = merge_ranges([(max(0, z0 - slab), min(nz, z1 + slab)) for z0, z1 in chosen])
+    fine = screen_slabs(volume, masks, factor, bins, cfg, slab, ranges)
+    for z, outcome in fine.items():
+        if isinstance(outcome, str):
+            neighbours.pop(z, None)
+        else:
+            neighbours[z] = outcome
+    refined = [z for z0, z1 in chosen for z in range(z0, z1)]
+    for z in refined:
+        outcomes[z] = fine[z]
+    fine_indices = slab_indices(neighbours, nz, slab, weight, only=refined)
+    for z in refined:
+        indices[z] = fine_indices[z]
+    return outcomes, indices, neighbours
+
+
+def merge_ranges(ranges: list[tuple[int, int]]) -> list[tuple[int, int]]:
+    """Sorted half-open ranges with overlapping or touching ones joined."""
+    out: list[tuple[int, int]] = []
+    for z0, z1 in sorted(ranges):
+        if out and z0 <= out[-1][1]:
+            out[-1] = (out[-1][0], max(out[-1][1], z1))
+        else:
+            out.append((z0, z1))
+    return out
+
+
+def slab_indices(profiles: dict[int, np.ndarray], nz: int, slab: int, neighbour_weight: float,
+                 only: list[int] | None = None) -> list[float | None]:
     """Streak index of every slice: its slab's index mixed with the neighbouring slabs.
 
     Slab ``j`` holds slices ``j * slab`` to ``(j + 1) * slab - 1``; its profile is the
     one shared by its screened slices (:func:`slice_index_with_neighbours` works between
-    slabs). With ``slab`` 1 this is the per-slice rule. Unscreened slices get None.
+    slabs). With ``slab`` 1 this is the per-slice rule. Unscreened slices get None, and
+    so do slices outside ``only`` when it is given.
     """
     by_slab: dict[int, np.ndarray] = {}
     for z in sorted(profiles):
         by_slab.setdefault(z // slab, profiles[z])
-    index = {j: round(slice_index_with_neighbours(by_slab, j, neighbour_weight), 3) for j in by_slab}
-    return [index[z // slab] if z in profiles else None for z in range(nz)]
+    wanted = by_slab if only is None else {z // slab for z in only if z // slab in by_slab}
+    index = {j: round(slice_index_with_neighbours(by_slab, j, neighbour_weight), 3) for j in wanted}
+    keep = set(range(nz)) if only is None else set(only)
+    return [index[z // slab] if z in profiles and z in keep else None for z in range(nz)]
 
 
 def refine_flagged_slabs(volume: Volume, masks: "AllowedMasks", factor: int, bins: SpectralBins,
-                         cfg: dict[str, Any], profiles: dict[int, np.ndarray], indices: list[float | None]) -> None:
+                         cfg: dict[str, Any], profiles: dict[int, np.ndarray], indices: list[float | None],
+                         neighbours: dict[int, np.ndarray] | None = None) -> None:
     """Screen the slices of flagged slabs one by one; each keeps the smaller index (in place).
 
     A slab above ``tolerance_index`` may owe its excess to some of its slices only, so
@@ -1792,7 +1939,8 @@ def refine_flagged_slabs(volume: Volume, masks: "AllowedMasks", factor: int, bin
     :func:`slice_index_with_neighbours`, neighbours taken from the refined slices or,
     outside them, from their slabs' profiles); its own profile replaces the slab's. A
     slice is therefore flagged only when its slab and the slice itself exceed the
-    tolerance. Slabs below the tolerance are left as they are.
+    tolerance. Slabs below the tolerance are left as they are. ``neighbours`` (default
+    ``profiles``) holds the slab profiles taken for unrefined neighbouring slices.
     """
     tol = float(cfg["tolerance_index"])
     chosen = [z for z in sorted(profiles) if indices[z] is not None and indices[z] > tol]
@@ -1805,7 +1953,7 @@ def refine_flagged_slabs(volume: Volume, masks: "AllowedMasks", factor: int, bin
         allowed = np.stack([masks(z) for z in zs])
         return screen_stack(volume.hu[zs], allowed, factor, bins, cfg, thread_workspace())
 
-    own: dict[int, np.ndarray] = dict(profiles)
+    own: dict[int, np.ndarray] = dict(profiles if neighbours is None else neighbours)
     for zs, outcomes in zip(runs, map_slices(one, len(runs), SCREEN_THREADS)):
         for z, outcome in zip(zs, outcomes):
             if not isinstance(outcome, str):
