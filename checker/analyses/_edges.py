@@ -45,10 +45,21 @@ class BinnedEsf:
     esf_hu: np.ndarray
     counts: np.ndarray
     bin_mm: float
+    #: Running means of ``esf_hu`` already computed (smoothing bins -> values), so that
+    #: :func:`esf_shape` and :func:`esf_overshoot` of one ESF smooth it once; an ESF's
+    #: arrays are not changed after it is made.
+    _smoothed: dict = field(default_factory=dict, init=False, repr=False, compare=False)
 
     @property
     def empty_fraction(self) -> float:
         return float(np.mean(self.counts == 0)) if self.counts.size else 1.0
+
+    def smoothed(self, size: int) -> np.ndarray:
+        """Running mean of ``size`` bins of ``esf_hu`` (``mode="nearest"``), computed once."""
+        y = self._smoothed.get(size)
+        if y is None:
+            y = self._smoothed[size] = ndimage.uniform_filter1d(self.esf_hu, size=size, mode="nearest")
+        return y
 
 
 @dataclass
@@ -89,7 +100,7 @@ class EsfAccumulator:
         """Bin one batch: ``distance_mm`` and ``values`` of the same shape; ``mask``
         (same shape, optional) selects the pixels that count.
 
-        With ``multiplicity`` (same shape, positive integers), each entry of ``values``
+        With ``multiplicity`` (same shape, or one integer for all, positive), each entry of ``values``
         is the sum of that many pixel values at the same distance (pixels pooled over
         slices before binning): it adds its value to the bin sum and its multiplicity
         to the bin count, which is what binning the pooled pixels one by one gives.
@@ -105,6 +116,8 @@ class EsfAccumulator:
         idx = np.where(keep, idx, n)
         if multiplicity is None:
             self.counts += np.bincount(idx, minlength=n + 1)[:n]
+        elif np.ndim(multiplicity) == 0:  # one multiplicity for all: the counts times it
+            self.counts += int(multiplicity) * np.bincount(idx, minlength=n + 1)[:n]
         else:
             m = np.asarray(multiplicity, dtype=float).ravel()
             self.counts += np.rint(np.bincount(idx, weights=m, minlength=n + 1)[:n]).astype(np.int64)
@@ -113,13 +126,23 @@ class EsfAccumulator:
     def binned(self) -> BinnedEsf:
         """The ESF so far; empty bins filled by linear interpolation between the nearest
         filled ones."""
-        position = self.lo_mm + (np.arange(self.n_bins) + 0.5) * self.bin_mm
-        esf = np.full(self.n_bins, np.nan)
-        filled = self.counts > 0
-        esf[filled] = self.sums[filled] / self.counts[filled]
+        return self.binned_range(0, self.n_bins)
+
+    def binned_range(self, start: int, n: int, *, offset_mm: float = 0.0) -> BinnedEsf:
+        """The ESF of bins ``start`` .. ``start + n`` - 1 alone (as :meth:`binned` of an
+        accumulator of those bins only); positions relative to ``offset_mm`` (the bins'
+        distances minus ``offset_mm``). Empty bins are filled by linear interpolation
+        between the nearest filled ones of the range."""
+        if start < 0 or n < 1 or start + n > self.n_bins:
+            raise ValueError(f"bins {start}..{start + n - 1} outside the accumulator's 0..{self.n_bins - 1}")
+        position = self.lo_mm - offset_mm + (np.arange(start, start + n) + 0.5) * self.bin_mm
+        counts, sums = self.counts[start : start + n].copy(), self.sums[start : start + n]
+        esf = np.full(n, np.nan)
+        filled = counts > 0
+        esf[filled] = sums[filled] / counts[filled]
         if filled.sum() >= 2:
             esf = np.interp(position, position[filled], esf[filled])
-        return BinnedEsf(position_mm=position, esf_hu=esf, counts=self.counts.copy(), bin_mm=self.bin_mm)
+        return BinnedEsf(position_mm=position, esf_hu=esf, counts=counts, bin_mm=self.bin_mm)
 
 
 def bin_esf(
@@ -195,7 +218,7 @@ def esf_overshoot(esf: BinnedEsf, smooth_mm: float = 0.4, floor: float = 0.03) -
     Common practice, no source (ringing of edge-enhancing kernels shows as overshoot).
     """
     size = _smoothing_bins(esf, smooth_mm)
-    y = ndimage.uniform_filter1d(esf.esf_hu, size=size, mode="nearest")
+    y = esf.smoothed(size)
     shape = _shape_of_smoothed(y, esf.position_mm)  # esf_shape(esf, smooth_mm), smoothed once
     contrast = shape.high_hu - shape.low_hu
     if not np.isfinite(contrast) or contrast == 0:
@@ -230,8 +253,7 @@ def esf_shape(esf: BinnedEsf, smooth_mm: float = 0.4) -> EsfShape:
     The plateaus are the medians of the first and last tenth of the range; the centre
     is the midpoint crossing nearest the middle of the range.
     """
-    y = ndimage.uniform_filter1d(esf.esf_hu, size=_smoothing_bins(esf, smooth_mm), mode="nearest")
-    return _shape_of_smoothed(y, esf.position_mm)
+    return _shape_of_smoothed(esf.smoothed(_smoothing_bins(esf, smooth_mm)), esf.position_mm)
 
 
 def _smoothing_bins(esf: BinnedEsf, smooth_mm: float) -> int:
@@ -582,9 +604,10 @@ def _stack_pixels_near(images: np.ndarray, centre: tuple[float, float], reach: f
     y0, x0 = max(int(math.floor(centre[0] - reach)), 0), max(int(math.floor(centre[1] - reach)), 0)
     y1 = min(int(math.ceil(centre[0] + reach)) + 1, images.shape[1])
     x1 = min(int(math.ceil(centre[1] + reach)) + 1, images.shape[2])
-    yy, xx = np.mgrid[y0:y1, x0:x1].astype(float)
-    near = (yy - centre[0]) ** 2 + (xx - centre[1]) ** 2 <= reach**2
-    return yy[near], xx[near], images[:, y0:y1, x0:x1][:, near].astype(float)
+    ys, xs = np.arange(y0, y1, dtype=float)[:, None], np.arange(x0, x1, dtype=float)[None, :]
+    near = (ys - centre[0]) ** 2 + (xs - centre[1]) ** 2 <= reach**2
+    iy, ix = np.nonzero(near)  # row-major, as boolean indexing
+    return iy + float(y0), ix + float(x0), images[:, y0:y1, x0:x1][:, iy, ix].astype(float)
 
 
 def _pixels_near(image: np.ndarray, centre: tuple[float, float], reach: float
