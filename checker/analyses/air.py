@@ -59,10 +59,16 @@ Method
    when their contrast-to-noise (mean above the air over the air's pixel noise) is at
    least ``min_flag_contrast_to_noise``.
 
-Threads: the coarse grid (step 0) is made over slabs of slices (cut on whole layers of
-blocks) on ``AIR_THREADS`` threads (default: two, or one on a single core; the batch sets
-it to a worker's thread budget). Each slab writes only its own layers, so the grid, and
-everything after it, is the single-thread one value for value.
+Threads: the work splits into parts that share nothing but their inputs, run on
+``AIR_THREADS`` threads (default: two, or one on a single core; the batch sets it to a
+worker's thread budget; 1 runs everything in the calling thread, in the same order):
+the coarse grid (step 0) over slabs of slices cut on whole layers of blocks; steps 2-4
+in two lanes (:func:`scale_structures`), the finest scale's map and hysteresis in one,
+the coarser scales' grids, maps and hysteresis and then the body's noise in the other,
+the scales then combined in order; the structures' full-resolution refinement one
+structure per task (:func:`map_threads`); the label overlay over ranges of rows (each a
+run of its memory). Each part writes only what it owns, so every value is the
+single-thread one.
 
 What may change with the data path: the values in the record are estimates, and the
 coarse grid and the subsampled robust statistics are documented method choices; the
@@ -98,6 +104,7 @@ import functools
 import math
 import mmap
 import os
+from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass
 from typing import Any, Callable
 
@@ -969,34 +976,125 @@ def matched_filter_scales(
     from the pixel noise.
     """
     levels = scale_levels(base, spacing_mm, s["scales_mm"], nz)
-    dims = 3 if nz > 1 else 2
-    alpha = float(s["false_alarms_per_series"]) / len(levels)
-    base_cell = float(np.prod(base))
     grids = _pyramid(sums, counts, [rel for rel, _ in levels])
     maps = []
-    for sigma_mm, (rel, sig), (S, C) in zip(s["scales_mm"], levels, grids):
-        cell = base_cell * float(np.prod(rel))
-        extra: dict[str, Any] = {}
-        if max(sig) == 0.0:
-            z, valid = _box_scale(S, C, cell)
-            extra = {"sums": S, "counts": C}
-        else:
-            contrast, growth, valid = _filtered_scale(S.copy() if S is sums else S, C, cell, sig)
-            z = np.divide(contrast, growth, out=growth)  # contrast / white-noise growth, in place
-            extra = {"contrast_hu": contrast}
+    for k, (S, C) in enumerate(grids):
+        grids[k] = None  # the map owns its grid from here on (filtered in place)
+        m = scale_map(k, S, C, sums, base, spacing_mm, s, noise_floor_hu, nz)
         del S, C
-        n_valid = int(np.count_nonzero(valid))
-        if n_valid < 20:
-            continue
-        step = _plane_step(valid, n=n_valid)
-        med, sd = _robust_sd(z[::step][valid[::step]])
-        sd = max(sd, noise_floor_hu / math.sqrt(cell))
-        resels = _smoothness_resels(z, valid, sd, n_valid)
-        t = max(float(s["min_high_sigma"]), threshold_for_false_alarms(alpha, resels, dims))
-        factors = tuple(b * r for b, r in zip(base, rel))
-        maps.append(ScaleMap(sigma_mm, factors, z, valid, med, sd, t, resels, **extra))
-    del grids
+        if m is not None:
+            maps.append(m)
     return maps
+
+
+def scale_map(
+    k: int,
+    S: np.ndarray,
+    C: np.ndarray,
+    sums: np.ndarray,
+    base: tuple[int, int, int],
+    spacing_mm: tuple[float, float, float],
+    s: dict[str, Any],
+    noise_floor_hu: float,
+    nz: int,
+) -> ScaleMap | None:
+    """Scale ``k`` of ``s["scales_mm"]`` (see :func:`matched_filter_scales`) from its grid
+    ``S``, ``C`` (block sums of the coarse grid's ``sums`` and ``counts``; ``S`` is
+    filtered in place unless it is ``sums`` itself). None when fewer than 20 cells of the
+    grid can be measured.
+
+    Each scale needs only its own grid, so scales can be made side by side.
+
+    References
+    ----------
+    .. [1] Knutsson H, Westin C-F. CVPR 1993; Worsley KJ, et al. Human Brain Mapping 4, 1996.
+    """
+    levels = scale_levels(base, spacing_mm, s["scales_mm"], nz)
+    rel, sig = levels[k]
+    sigma_mm = s["scales_mm"][k]
+    dims = 3 if nz > 1 else 2
+    alpha = float(s["false_alarms_per_series"]) / len(levels)
+    cell = float(np.prod(base)) * float(np.prod(rel))
+    extra: dict[str, Any] = {}
+    if max(sig) == 0.0:
+        z, valid = _box_scale(S, C, cell)
+        extra = {"sums": S, "counts": C}
+    else:
+        contrast, growth, valid = _filtered_scale(S.copy() if S is sums else S, C, cell, sig)
+        z = np.divide(contrast, growth, out=growth)  # contrast / white-noise growth, in place
+        extra = {"contrast_hu": contrast}
+    n_valid = int(np.count_nonzero(valid))
+    if n_valid < 20:
+        return None
+    step = _plane_step(valid, n=n_valid)
+    med, sd = _robust_sd(z[::step][valid[::step]])
+    sd = max(sd, noise_floor_hu / math.sqrt(cell))
+    resels = _smoothness_resels(z, valid, sd, n_valid)
+    t = max(float(s["min_high_sigma"]), threshold_for_false_alarms(alpha, resels, dims))
+    factors = tuple(b * r for b, r in zip(base, rel))
+    return ScaleMap(sigma_mm, factors, z, valid, med, sd, t, resels, **extra)
+
+
+def scale_structures(
+    sums: np.ndarray,
+    counts: np.ndarray,
+    base: tuple[int, int, int],
+    spacing_mm: tuple[float, float, float],
+    s: dict[str, Any],
+    noise_floor_hu: float,
+    nz: int,
+    side: Callable[[], Any] | None = None,
+) -> tuple[list[ScaleMap], list[tuple[np.ndarray, dict[int, float], list[tuple[slice, ...] | None]]], Any]:
+    """The maps of :func:`matched_filter_scales` with the structures of each
+    (:func:`hysteresis_structures_boxes`), and the result of ``side()`` (None without it).
+
+    Two lanes of work that share nothing but their inputs, on ``AIR_THREADS`` threads
+    (one after the other on one): the finest scale (its grid is the coarse grid itself),
+    and the coarser scales' grids (:func:`_pyramid`), maps and structures, then
+    ``side``. The maps and structures are those made one scale after another, value for
+    value.
+    """
+    levels = scale_levels(base, spacing_mm, s["scales_mm"], nz)
+    rels = [rel for rel, _ in levels]
+    grow = float(s["grow_sigma"])
+
+    def one(k: int, S: np.ndarray, C: np.ndarray):
+        m = scale_map(k, S, C, sums, base, spacing_mm, s, noise_floor_hu, nz)
+        return None if m is None else (m, hysteresis_structures_boxes(m, grow))
+
+    def finest() -> list:
+        (S, C), = _pyramid(sums, counts, rels[:1])
+        return [one(0, S, C)]
+
+    def coarser() -> tuple[list, Any]:
+        grids = _pyramid(sums, counts, rels[1:]) if rels[0] == (1, 1, 1) else _pyramid(sums, counts, rels)[1:]
+        out = []
+        for k in range(len(grids)):
+            (S, C), grids[k] = grids[k], None  # the map owns its grid (filtered in place)
+            out.append(one(k + 1, S, C))
+        return out, (side() if side is not None else None)
+
+    first, (rest, side_result) = run_lanes([finest, coarser])
+    done = [f for f in first + rest if f is not None]
+    return [f[0] for f in done], [f[1] for f in done], side_result
+
+
+def run_lanes(lanes: list[Callable[[], Any]], threads: int | None = None) -> list[Any]:
+    """The results of the calls ``lanes``, in order, on at most ``threads`` threads
+    (``AIR_THREADS`` unless given); the calling thread runs the first lane. Each lane must
+    write only what it owns. An exception in a lane is raised here.
+
+    References
+    ----------
+    .. [1] Common practice, no source (independent tasks on a thread pool).
+    """
+    n = AIR_THREADS if threads is None else threads
+    if n <= 1 or len(lanes) <= 1:
+        return [lane() for lane in lanes]
+    with ThreadPoolExecutor(max_workers=min(n, len(lanes)) - 1) as pool:
+        futures = [pool.submit(lane) for lane in lanes[1:]]
+        first = lanes[0]()
+        return [first] + [f.result() for f in futures]
 
 
 def _pyramid(
@@ -1263,7 +1361,10 @@ def combine_scales(
 
 
 def combine_scales_boxes(
-    maps: list[ScaleMap], grow_sigma: float, well_measured_snr: float = 10.0
+    maps: list[ScaleMap],
+    grow_sigma: float,
+    well_measured_snr: float = 10.0,
+    structures: list[tuple[np.ndarray, dict[int, float], list[tuple[slice, ...] | None]]] | None = None,
 ) -> tuple[np.ndarray, tuple[int, int, int], list[tuple[slice, ...] | None]]:
     """Structures of all scales as one label map on the finest grid.
 
@@ -1272,6 +1373,8 @@ def combine_scales_boxes(
     (contrast-to-noise below ``well_measured_snr`` there) replaces them: a faint, large
     structure is outlined at the scale that sees it whole. Also returns each label's
     bounding box (as ``ndimage.find_objects``; None for labels replaced later).
+    ``structures``: :func:`hysteresis_structures_boxes` of each map when already found
+    (see :func:`scale_structures`); otherwise found here.
     """
     base = maps[0].factors
     shape0 = maps[0].z.shape
@@ -1279,8 +1382,9 @@ def combine_scales_boxes(
     quality: dict[int, float] = {}
     boxes: list[tuple[slice, ...] | None] = []
     next_id = 1
-    for m in maps:
-        level, snr, level_boxes = hysteresis_structures_boxes(m, grow_sigma)
+    if structures is None:
+        structures = [hysteresis_structures_boxes(m, grow_sigma) for m in maps]
+    for m, (level, snr, level_boxes) in zip(maps, structures):
         if not snr:
             continue
         rel = tuple(a // b for a, b in zip(m.factors, base))
@@ -1497,21 +1601,19 @@ def measure_structures(
     blocks, so its mean CT number is the ratio of their totals (the same number as the
     mean over its voxels, up to float32 rounding of the block sums).
     """
-    out = []
     vox = volume.voxel_volume_mm3
-    for i, box in enumerate(boxes0, start=1):
-        if box is None:
-            continue
+
+    def one(i: int, box: tuple[slice, ...]) -> tuple[dict[str, Any], tuple[slice, ...], np.ndarray] | None:
         cells = lab0[box] == i
         found = refine_structure(volume, air, cells, box, base)
         if found is None:
-            continue
+            return None
         sl, comp, count, idx = found
         if count * vox < float(s["min_volume_mm3"]):
-            continue
+            return None
         mean_hu = _structure_mean_hu(volume.hu[sl], comp, cells, box, air_mean, block_sums)
         if mean_hu - air_mean < float(s["min_contrast_hu"]):  # a blur tail, not a structure
-            continue
+            return None
         kind = classify(sl, comp, ctx)
         cnr = (mean_hu - air_mean) / max(noise, 1e-6)
         record = {
@@ -1528,8 +1630,26 @@ def measure_structures(
             "kind": kind,
             "flagged": kind in s["flag_kinds"] and cnr >= float(s["min_flag_contrast_to_noise"]),
         }
-        out.append((record, sl, comp))
-    return out
+        return record, sl, comp
+
+    todo = [(i, box) for i, box in enumerate(boxes0, start=1) if box is not None]
+    return [f for f in map_threads(lambda task: one(*task), todo) if f is not None]
+
+
+def map_threads(fn: Callable[[Any], Any], items: list[Any], threads: int | None = None) -> list[Any]:
+    """``[fn(x) for x in items]`` on at most ``threads`` threads (``AIR_THREADS`` unless
+    given), each taking the next item when it is free; the results in the order of
+    ``items``. ``fn`` must write only what it owns.
+
+    References
+    ----------
+    .. [1] Common practice, no source (independent tasks on a thread pool).
+    """
+    n = min(AIR_THREADS if threads is None else threads, len(items))
+    if n <= 1:
+        return [fn(x) for x in items]
+    with ThreadPoolExecutor(max_workers=n) as pool:
+        return list(pool.map(fn, items))
 
 
 def zero_int32(shape: tuple[int, ...]) -> np.ndarray:
@@ -1559,10 +1679,38 @@ def label_overlay(shape: tuple[int, ...], found: list[tuple[dict[str, Any], tupl
     """
     nz, ny, nx = shape
     labels = zero_int32((ny, nx, nz)).transpose(2, 0, 1)
-    for record, sl, comp in found:
-        view = labels[sl].transpose(1, 2, 0)  # memory order
-        np.copyto(view, np.int32(record["id"]), where=comp.transpose(1, 2, 0))
+
+    def rows(y0: int, y1: int) -> None:  # rows y0 .. y1 are one run of memory
+        for record, sl, comp in found:
+            a, b = max(y0, sl[1].start), min(y1, sl[1].stop)
+            if a >= b:
+                continue
+            part = (sl[0], slice(a, b), sl[2])
+            view = labels[part].transpose(1, 2, 0)  # memory order
+            mask = comp[:, a - sl[1].start : b - sl[1].start].transpose(1, 2, 0)
+            np.copyto(view, np.int32(record["id"]), where=mask)
+
+    cuts = _row_ranges(ny, [sl for _, sl, comp in found], [comp.size for _, _, comp in found], AIR_THREADS)
+    run_lanes([functools.partial(rows, a, b) for a, b in cuts])
     return labels
+
+
+def _row_ranges(ny: int, boxes: list[tuple[slice, ...]], sizes: list[int], parts: int) -> list[tuple[int, int]]:
+    """``0 .. ny`` cut into at most ``parts`` ranges of rows holding about equal shares of
+    the boxes' cells (each box's cells spread evenly over its rows)."""
+    if parts <= 1 or not boxes:
+        return [(0, ny)]
+    load = np.zeros(ny + 1, dtype=np.float64)
+    for sl, n in zip(boxes, sizes):
+        rows = max(1, sl[1].stop - sl[1].start)
+        load[sl[1].start : sl[1].stop] += n / rows
+    cum = np.cumsum(load[:ny])
+    total = float(cum[-1]) if ny else 0.0
+    if total <= 0:
+        return [(0, ny)]
+    cuts = [0] + [int(np.searchsorted(cum, total * k / parts)) + 1 for k in range(1, parts)] + [ny]
+    cuts = sorted(set(min(ny, max(0, c)) for c in cuts))
+    return [(a, b) for a, b in zip(cuts[:-1], cuts[1:]) if b > a]
 
 
 def _limit(structures: list[dict[str, Any]], max_structures: int) -> list[dict[str, Any]]:
@@ -1661,11 +1809,12 @@ def analyse(volume: Volume, regions: Regions, settings: dict[str, Any] | None = 
     mean, noise = robust_mean_and_noise(_air_sample(hu, air, n=n_air), float(s["clip_sigma"]))
     if not math.isfinite(mean):
         return AnalysisResult.not_applicable(NAME, "the air holds no finite CT numbers")
-    body_noise = body_noise_hu(volume, regions)
-    findings = _air_findings(mean, noise, body_noise, s)
-
     sums -= np.float32(mean) * counts  # contrast above the air, summed over each block's air
-    maps = matched_filter_scales(sums, counts, base, volume.spacing_mm, s, float(s["min_air_noise_hu"]), hu.shape[0])
+    maps, per_scale, body_noise = scale_structures(
+        sums, counts, base, volume.spacing_mm, s, float(s["min_air_noise_hu"]), hu.shape[0],
+        side=lambda: body_noise_hu(volume, regions),
+    )
+    findings = _air_findings(mean, noise, body_noise, s)
     mode = s["single_slice_mode"]
     ctx = Context(
         regions,
@@ -1677,8 +1826,8 @@ def analyse(volume: Volume, regions: Regions, settings: dict[str, Any] | None = 
     structures: list[dict[str, Any]] = []
     labels = None
     if maps:
-        lab0, base0, boxes0 = combine_scales_boxes(maps, float(s["grow_sigma"]))
-        del maps
+        lab0, base0, boxes0 = combine_scales_boxes(maps, float(s["grow_sigma"]), structures=per_scale)
+        del maps, per_scale
         block_sums = (sums, counts) if base0 == base else None
         found = measure_structures(volume, air, lab0, boxes0, base0, mean, noise, ctx, s, block_sums)
         kept = {id(st) for st in _limit([f[0] for f in found], int(s["max_structures"]))}

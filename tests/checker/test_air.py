@@ -346,3 +346,76 @@ def test_coarse_air_grid_on_two_threads_equals_one_thread_and_plain_sums(monkeyp
     keep[b, 0, 0] = False
     assert np.array_equal(counts[keep], want_c.astype(np.float32)[keep])
     assert np.max(np.abs(sums[keep] - want_s[keep])) < 1e-2
+
+
+def test_run_lanes_and_map_threads_keep_order_and_raise_errors():
+    """Lanes and mapped items come back in their order on one and on two threads, the
+    first lane on the calling thread; an error in a lane or an item is raised."""
+    import threading
+
+    caller = threading.get_ident()
+    for threads in (1, 2):
+        got = air.run_lanes([lambda: threading.get_ident(), lambda: "b", lambda: 3], threads=threads)
+        assert got[0] == caller and got[1:] == ["b", 3]
+        assert air.map_threads(lambda x: x * x, list(range(9)), threads=threads) == [x * x for x in range(9)]
+
+        def fails():
+            raise ValueError("lane failed")
+
+        with pytest.raises(ValueError, match="lane failed"):
+            air.run_lanes([lambda: 1, fails], threads=threads)
+        with pytest.raises(ZeroDivisionError):
+            air.map_threads(lambda x: 1 // x, [1, 0, 2], threads=threads)
+
+
+def test_row_ranges_cover_the_rows_once():
+    """The label volume's rows are cut into disjoint ranges that cover every row, split
+    where the structures' cells are, and one range for one thread or no structure."""
+    boxes = [(slice(0, 5), slice(10, 30), slice(0, 4)), (slice(0, 5), slice(60, 64), slice(0, 4))]
+    sizes = [5 * 20 * 4, 5 * 4 * 4]
+    for parts in (1, 2, 3):
+        cuts = air._row_ranges(64, boxes, sizes, parts)
+        assert cuts[0][0] == 0 and cuts[-1][1] == 64 and len(cuts) <= parts
+        assert all(a < b for a, b in cuts) and all(b == c for (_, b), (c, _) in zip(cuts[:-1], cuts[1:]))
+    assert air._row_ranges(64, boxes, sizes, 2)[0][1] <= 30  # the larger structure is split
+    assert air._row_ranges(64, [], [], 2) == [(0, 64)]
+
+
+def _armed_torso(nz=40, n=128, noise=12.0, seed=5, balls=(((24.0, 14.0, 30.0), 4.0, -900.0), ((30.0, 16.0, 62.0), 3.0, -930.0))):
+    """An invented torso with two arms apart from it and a table bar below it, at 0.7 mm
+    pixels and 1.25 mm slices, correlated noise, balls in the air (centre z, y, x in mm,
+    radius mm, HU)."""
+    dz, dy, dx = 1.25, 0.7, 0.7
+    img = np.full((n, n), -1000.0, dtype=np.float32)
+    img[_ellipse(n, 64, 64, 26, 36)] = 0.0
+    for cx in (12, 116):
+        img[_ellipse(n, 64, cx, 10, 7)] = 40.0
+    img[100:106, 20:108] = 250.0
+    vol = np.repeat(img[None], nz, axis=0)
+    z, y, x = np.ogrid[:nz, :n, :n]
+    for (cz, cy, cx), r, value in balls:
+        vol[((z * dz - cz) ** 2 + (y * dy - cy) ** 2 + (x * dx - cx) ** 2) <= r * r] = value
+    vol = ndimage.gaussian_filter(vol, (0.4, 0.6, 0.6))
+    rng = np.random.default_rng(seed)
+    w = rng.standard_normal(vol.shape).astype(np.float32)
+    w = ndimage.gaussian_filter(w, (0.6, 0.9, 0.9)) - ndimage.gaussian_filter(w, (0.6, 2.2, 2.2))
+    vol = vol + w * (noise / w.std())
+    return Volume.from_array(vol.astype(np.float32), spacing_mm=(dz, dy, dx))
+
+
+def test_two_threads_give_the_single_thread_record_and_labels(monkeypatch):
+    """The whole analysis on two threads (coarse grid on slabs, scales in two lanes with
+    the body noise, structures measured and label rows written side by side) gives the
+    single-thread record and label volume exactly, on a torso with arms, a table, a
+    cable and two faint structures in the air."""
+    vol = _armed_torso(nz=40)
+    regions = find_regions(vol)
+    out = {}
+    for threads in (1, 2):
+        monkeypatch.setattr(air, "AIR_THREADS", threads)
+        out[threads] = air.analyse(vol, regions)
+    one, two = out[1], out[2]
+    assert len(one.record["structures"]) >= 4
+    assert dumps(one.record) == dumps(two.record)
+    assert np.array_equal(one.overlays.labels, two.overlays.labels)
+    assert [f.message for f in one.findings] == [f.message for f in two.findings]
