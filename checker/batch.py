@@ -58,9 +58,10 @@ def _limit_threads(n: int) -> None:
     """Keep the analyses that use threads to ``n`` in this process."""
     if n > 0:
         from . import pipeline, regions
-        from .analyses import streaks
+        from .analyses import air, streaks
 
         streaks.SCREEN_THREADS = n
+        air.AIR_THREADS = n
         pipeline.ANALYSIS_THREADS = n
         regions.REGIONS_THREADS = n
 

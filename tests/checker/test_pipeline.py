@@ -72,12 +72,12 @@ def test_progress_reaches_done_and_cancel_stops_the_run(phantom_volume, monkeypa
 
 def test_threads_follow_the_task_budget():
     from reconaudit.checker import batch, regions
-    from reconaudit.checker.analyses import streaks
+    from reconaudit.checker.analyses import air, streaks
 
-    saved = pipeline.ANALYSIS_THREADS, streaks.SCREEN_THREADS, regions.REGIONS_THREADS
+    saved = pipeline.ANALYSIS_THREADS, streaks.SCREEN_THREADS, regions.REGIONS_THREADS, air.AIR_THREADS
     try:
         batch._limit_threads(1)
-        assert (pipeline.ANALYSIS_THREADS, streaks.SCREEN_THREADS, regions.REGIONS_THREADS) == (1, 1, 1)
+        assert (pipeline.ANALYSIS_THREADS, streaks.SCREEN_THREADS, regions.REGIONS_THREADS, air.AIR_THREADS) == (1, 1, 1, 1)
     finally:
-        pipeline.ANALYSIS_THREADS, streaks.SCREEN_THREADS, regions.REGIONS_THREADS = saved
+        pipeline.ANALYSIS_THREADS, streaks.SCREEN_THREADS, regions.REGIONS_THREADS, air.AIR_THREADS = saved
     assert np.isfinite(pipeline._cores())
