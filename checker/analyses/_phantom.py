@@ -483,7 +483,8 @@ def find_phantom(volume: Volume, regions: Regions, settings: dict | None = None)
 _LAST: dict[str, tuple] = {}
 #: The last count of :func:`count_nonfinite`, keyed the same way.
 _LAST_COUNT: dict[str, tuple] = {}
-#: The last count of :func:`count_nonfinite_in_slices`: (array, (z0, z1), count).
+#: The per-slice counts of :func:`count_nonfinite_in_slices` for the last array:
+#: (array, counts (z,), -1 where a slice was not looked at yet).
 _LAST_SLICES_COUNT: dict[str, tuple] = {}
 #: Held while a search or a count is made, so that analyses of one volume running on
 #: threads at once make it once (a re-entrant lock: a search may count).
@@ -523,10 +524,10 @@ def count_nonfinite_in_slices(volume: Volume, z0: int, z1: int) -> int:
 
     The check of the noise and uniformity analyses: they read only the slices their
     ROIs lie on, so they check those slices whole (a method choice for speed: a
-    non-finite voxel on a slice they do not measure does not stop them). The same
-    float32 sum as :func:`count_nonfinite`; the last answers are kept, keyed by a weak
-    reference to the array and the slice range, so analyses measuring the same
-    slices of one volume pay for one pass.
+    non-finite voxel on a slice they do not measure does not stop them). One float32
+    sum per slice, as in :func:`count_nonfinite`; the count of every slice looked at is
+    kept, keyed by a weak reference to the array, so analyses measuring the same or
+    overlapping slices of one volume look at each slice once.
 
     References
     ----------
@@ -539,14 +540,35 @@ def count_nonfinite_in_slices(volume: Volume, z0: int, z1: int) -> int:
         return 0
     with _COUNT_LOCK:
         hit = _LAST_SLICES_COUNT.get("entry")
-        if hit is not None and hit[0]() is hu and hit[1] == (z0, z1):
-            return hit[2]
-        part = hu[z0 : z1 + 1]
-        bad = 0
-        if not np.isfinite(part.sum(dtype=np.float32)):
-            bad = sum(int(np.count_nonzero(~np.isfinite(part[z : z + 16]))) for z in range(0, part.shape[0], 16))
-        _LAST_SLICES_COUNT["entry"] = (weakref.ref(hu), (z0, z1), bad)
-    return bad
+        if hit is not None and hit[0]() is hu:
+            known = hit[1]
+        else:
+            known = np.full(hu.shape[0], -1, dtype=np.int64)  # -1: not looked at yet
+            _LAST_SLICES_COUNT["entry"] = (weakref.ref(hu), known)
+        todo = np.flatnonzero(known[z0 : z1 + 1] < 0) + z0
+        for a, b in _runs_of_indices(todo):
+            known[a : b + 1] = _slice_counts(hu[a : b + 1])
+        return int(known[z0 : z1 + 1].sum())
+
+
+def _slice_counts(part: np.ndarray) -> np.ndarray:
+    """Number of non-finite values of each slice of a (z, y, x) block: one float32 sum
+    per slice, the pixels looked at only on slices whose sum is not finite."""
+    sums = part.reshape(part.shape[0], -1).sum(axis=1, dtype=np.float32)
+    counts = np.zeros(part.shape[0], dtype=np.int64)
+    for z in np.flatnonzero(~np.isfinite(sums)):
+        counts[z] = np.count_nonzero(~np.isfinite(part[z]))
+    return counts
+
+
+def _runs_of_indices(idx: np.ndarray) -> list[tuple[int, int]]:
+    """Sorted distinct indices as inclusive runs (a, b) of consecutive values."""
+    if idx.size == 0:
+        return []
+    cuts = np.flatnonzero(np.diff(idx) != 1)
+    starts = np.r_[idx[0], idx[cuts + 1]]
+    stops = np.r_[idx[cuts], idx[-1]]
+    return [(int(a), int(b)) for a, b in zip(starts, stops)]
 
 
 def nonfinite_reason(volume: Volume, rois: Sequence[Roi]) -> str:

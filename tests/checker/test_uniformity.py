@@ -298,7 +298,7 @@ def test_slices_between_agreeing_screened_slices_are_not_taken_on_trust():
 def test_a_change_of_disc_between_screened_slices_is_measured_slice_by_slice():
     """Two phantom modules of different radius (60 and 45 px) meeting between two
     screened slices: the slices between are measured, each slice gets its own radius
-    (within a working pixel of 2.4 mm here), and a 3 px centre shift between modules is
+    (within a working pixel of 2.4 mm here), and a 6 px centre shift between modules is
     followed."""
     hu = _discs([60.0] * 7 + [45.0] * 6)
     vol = Volume.from_array(hu, (1.0, 0.8, 0.8))
@@ -310,3 +310,16 @@ def test_a_change_of_disc_between_screened_slices_is_measured_slice_by_slice():
     ph = _phantom.find_phantom(vol, find_regions(vol))
     assert ph.on_slice.all()
     assert np.all(np.abs(ph.centre_yx_vox[:7] - 80.0) < 1.5) and np.all(np.abs(ph.centre_yx_vox[7:] - 86.0) < 1.5)
+
+
+def test_slice_counts_kept_per_slice_equal_direct_counts_in_any_order():
+    """The finite check keeps each slice's count: ranges asked for in any order, nested
+    or overlapping, give numpy's own count of non-finite voxels (the reference)."""
+    rng = np.random.default_rng(17)
+    hu = rng.normal(0.0, 10.0, (12, 24, 24)).astype(np.float32)
+    for _ in range(9):
+        hu[rng.integers(12), rng.integers(24), rng.integers(24)] = rng.choice([np.nan, np.inf, -np.inf])
+    vol = Volume.from_array(hu, (1.0, 1.0, 1.0))
+    for z0, z1 in ((3, 5), (0, 11), (4, 9), (7, 7), (0, 2), (10, 20), (5, 3)):
+        expected = int(np.count_nonzero(~np.isfinite(hu[max(z0, 0) : z1 + 1]))) if z1 >= z0 else 0
+        assert _phantom.count_nonfinite_in_slices(vol, z0, z1) == expected, (z0, z1)
