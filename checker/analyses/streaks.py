@@ -72,7 +72,11 @@ every slab in tests/reference/test_streaks_first_screen.py (streaks on one or tw
 slices of simulated series). Full-coverage data stay well below the threshold (the
 512 x 512 x 400 benchmark of 1.25 mm slices: first-screen indices at most 1.26), so
 the first screen halves the screen's work there. Slices of 2.5 mm and more have no
-first screen.
+first screen. The first screen's slab masks are read from the bytewise OR and AND of
+the slab's full-resolution body and table masks (two binned masks per slab instead of
+one per slice, :meth:`AllowedMasks.slab_mask`): the table's exclusion is exact, the
+union of the body outlines is replaced by a superset (the same where the body does not
+change along the slab: on the benchmark, the same masks).
 
 Missing wedge: a contiguous run of at least ``wedge_min_deg`` of orientation bins of the
 mean profile below ``wedge_level``; each end is the boundary streak peak just outside
@@ -1628,6 +1632,56 @@ class AllowedMasks:
             np.greater(kept[i], outline[i], out=allowed[i])  # kept and not on the outline
         return allowed
 
+    def slab_stack(self, z0: int, z1: int, slab: int, ws: "Workspace | None" = None) -> np.ndarray:
+        """One mask per slab of ``slab`` slices from ``z0`` to ``z1 - 1`` (the first screen's masks).
+
+        Each is :meth:`slab_mask` of its slices: ``(n_slabs, ny_b, nx_b)``, one of ``ws``'s
+        buffers when it is given.
+        """
+        n = -(-(z1 - z0) // slab)
+        out = scratch(ws, "masks_slab", (n,) + self.base.shape, bool)
+        for j in range(n):
+            out[j] = self.slab_mask(z0 + j * slab, min(z0 + (j + 1) * slab, z1), ws)
+        return out
+
+    def slab_mask(self, z0: int, z1: int, ws: "Workspace | None" = None) -> np.ndarray:
+        """Pixels that may count on every slice ``z0`` to ``z1 - 1``, from the slab's OR and AND masks.
+
+        The table's exclusion is that of each slice exactly (one table when all slices
+        carry the same, else slice by slice). The union of the slices' body outlines is
+        replaced by a superset read from two masks instead of one per slice: the outline
+        of the binned AND of the slices' bodies together with the binned OR outside that
+        AND (a slice's outline pixel is on the AND's outline or outside the AND); the
+        two are the same where the body does not change along the slab. Slices whose
+        masks cannot be read as 64-bit words are combined one by one (exact). ``ws`` lends
+        the temporaries (the result is a new array or a kept one: never modify it).
+        """
+        regions = self.regions
+        if regions is None:
+            return self.base
+        body, table = regions.body[z0:z1], regions.table[z0:z1]
+        ny, nx = body.shape[-2:]
+        if z1 - z0 == 1 or (ny * nx) % 8 or not (body.flags.c_contiguous and table.flags.c_contiguous):
+            out = self(z0).copy()
+            for z in range(z0 + 1, z1):
+                out &= self(z)
+            return out
+        f = self.factor
+        t_or, t_and = _or_and_words(table, ws, "slab_table_")
+        if np.array_equal(t_or, t_and):
+            kept = self._kept_beside_table(bin_mask(t_or.view(bool).reshape(ny, nx), f, ws, "slab_bin"))
+        else:
+            kept = self._kept_beside_table(bin_mask(table[0], f)).copy()
+            for i in range(1, z1 - z0):
+                kept &= self._kept_beside_table(bin_mask(table[i], f, ws, "slab_bin"))
+        b_or, b_and = _or_and_words(body, ws, "slab_body_")
+        every = bin_mask(b_and.view(bool).reshape(ny, nx), f, ws, "slab_bin")
+        outline = inner_boundary(every, ws, "slab_outline")
+        if not np.array_equal(b_or, b_and):
+            some = bin_mask(b_or.view(bool).reshape(ny, nx), f, ws, "slab_bin_or")
+            outline |= some > every
+        return kept > outline
+
     def _kept_beside_table(self, table: np.ndarray) -> np.ndarray:
         """The base mask without the exclusion of the binned ``table`` (kept per distinct table;
         an empty table excludes nothing)."""
@@ -1640,6 +1694,18 @@ class AllowedMasks:
                 kept = self.base
             kept = self._kept.setdefault(key, kept)
         return kept
+
+
+def _or_and_words(masks: np.ndarray, ws: "Workspace | None" = None, tag: str = "") -> tuple[np.ndarray, np.ndarray]:
+    """Bytewise OR and AND over the first axis of a C-contiguous boolean stack, as 64-bit words
+    (``ws`` lends the two results, names from ``tag``)."""
+    words = masks.reshape(masks.shape[0], -1).view(np.uint64)
+    some = np.bitwise_or(words[0], words[1], out=scratch(ws, tag + "or", words.shape[1:], np.uint64))
+    every = np.bitwise_and(words[0], words[1], out=scratch(ws, tag + "and", words.shape[1:], np.uint64))
+    for w in words[2:]:
+        some |= w
+        every &= w
+    return some, every
 
 
 def table_band(table: np.ndarray, margin_px: int) -> np.ndarray:
@@ -1788,24 +1854,27 @@ def first_screen_gate(tolerance: float, slab: int, first: int) -> float:
 
 
 def screen_slabs(volume: Volume, masks: "AllowedMasks", factor: int, bins: SpectralBins, cfg: dict[str, Any],
-                 slab: int, ranges: list[tuple[int, int]]) -> dict[int, np.ndarray | str]:
+                 slab: int, ranges: list[tuple[int, int]], slab_masks: bool = False) -> dict[int, np.ndarray | str]:
     """Outcome (profile or skip reason) of every slice of ``ranges`` screened in slabs of ``slab``.
 
     Each range ``(z0, z1)`` starts at a multiple of ``slab``, so its slabs are those of
     the whole volume (slab ``j`` holds slices ``j * slab`` to ``(j + 1) * slab - 1``).
     Tasks of :data:`SCREEN_STACK` slabs go to :data:`SCREEN_THREADS` threads; each
-    slab's outcome depends on that slab only.
+    slab's outcome depends on that slab only. ``slab_masks`` takes each slab's mask
+    from :meth:`AllowedMasks.slab_stack` (the first screen) instead of intersecting
+    the masks of its usable slices.
     """
     per_task = SCREEN_STACK * slab
     tasks = [(a, min(a + per_task, z1)) for z0, z1 in ranges for a in range(z0, z1, per_task)]
+    per_slab = slab_masks and slab > 1
 
     def one(i: int) -> list[np.ndarray | str]:
         ws = thread_workspace()
         z0, z1 = tasks[i]
-        allowed = masks.stack(z0, z1, ws)
+        allowed = masks.slab_stack(z0, z1, slab, ws) if per_slab else masks.stack(z0, z1, ws)
         if slab == 1:
             return screen_stack(volume.hu[z0:z1], allowed, factor, bins, cfg, ws)
-        return screen_slab_stack(volume.hu[z0:z1], allowed, factor, bins, cfg, slab, ws)
+        return screen_slab_stack(volume.hu[z0:z1], allowed, factor, bins, cfg, slab, ws, per_slab)
 
     out: dict[int, np.ndarray | str] = {}
     for (z0, z1), found in zip(tasks, map_slices(one, len(tasks), SCREEN_THREADS)):
@@ -1869,7 +1938,7 @@ def refine_first_screen(volume: Volume, masks: "AllowedMasks", factor: int, bins
     """
     nz = volume.shape[0]
     weight = float(cfg["neighbour_weight"])
-    coarse = screen_slabs(volume, masks, factor, bins, cfg, first, [(0, nz)])
+    coarse = screen_slabs(volume, masks, factor, bins, cfg, first, [(0, nz)], slab_masks=True)
     coarse_profiles = {z: o for z, o in coarse.items() if not isinstance(o, str)}
     coarse_indices = slab_indices(coarse_profiles, nz, first, weight)
     gate = first_screen_gate(float(cfg["tolerance_index"]), slab, first)
@@ -2023,7 +2092,8 @@ def profiles_of_textures(textures: np.ndarray, usable: Any, bins: SpectralBins,
 
 
 def screen_slab_stack(images: np.ndarray, allowed: np.ndarray, factor: int, bins: SpectralBins,
-                      cfg: dict[str, Any], slab: int, ws: Workspace | None = None) -> list[np.ndarray | str]:
+                      cfg: dict[str, Any], slab: int, ws: Workspace | None = None,
+                      per_slab: bool = False) -> list[np.ndarray | str]:
     """Outcome of every slice of a ``(k, ny, nx)`` stack screened in slabs of ``slab`` slices.
 
     Each slice is checked as in :func:`screen_stack` (a finite, non-constant sub-grid of
@@ -2032,7 +2102,8 @@ def screen_slab_stack(images: np.ndarray, allowed: np.ndarray, factor: int, bins
     in one pass (:func:`bin_slab`), and its mask the intersection of their masks (every
     slice's table and body outline stay left out). The slab's profile is the outcome of
     each of its usable slices; unusable slices keep their reason. ``ws`` lends the
-    stack's temporaries.
+    stack's temporaries. With ``per_slab`` ``allowed`` holds one mask per slab of the
+    stack (:meth:`AllowedMasks.slab_stack`) instead of one per slice.
     """
     k = images.shape[0]
     outcomes: list[np.ndarray | str] = ["without usable pixels"] * k
@@ -2054,6 +2125,9 @@ def screen_slab_stack(images: np.ndarray, allowed: np.ndarray, factor: int, bins
     masks = scratch(ws, "slab_masks", (n,) + allowed.shape[-2:], bool)
     for j, m in enumerate(members):
         bin_slab(images, m, factor, out=means[j], ws=ws)
+        if per_slab:
+            np.copyto(masks[j], allowed[m[0] // slab])
+            continue
         np.copyto(masks[j], allowed[m[0]])
         for i in m[1:]:
             masks[j] &= allowed[i]

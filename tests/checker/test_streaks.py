@@ -570,3 +570,72 @@ def test_inner_boundary_word_path_equals_the_erosion():
             expected = m[z] ^ ndimage.binary_erosion(m[z])
             assert np.array_equal(got[z], expected)
             assert np.array_equal(lent[z], expected)
+
+
+# ------------------------------------------------------------------------- first screen
+def _changing_body_regions(n: int = 128, nz: int = 8, width: int | None = None):
+    """A body whose outline grows from slice to slice, a couch (missing on slice 5)."""
+    from dataclasses import replace
+
+    nx = width or n
+    yy, xx = np.mgrid[0:n, 0:nx]
+    hu = np.full((nz, n, nx), -1000.0, dtype=np.float32)
+    for z in range(nz):
+        hu[z, ((xx - nx / 2) / (30.0 + 3.0 * z)) ** 2 + ((yy - 60) / (22.0 + 2.0 * z)) ** 2 <= 1] = 40.0
+    hu += np.random.default_rng(8).normal(0, 5, hu.shape).astype(np.float32)
+    vol = Volume.from_array(hu, (1.25, 1.0, 1.0))
+    table = np.zeros(hu.shape, dtype=bool)
+    table[:, 100:106, 20 : nx - 20] = True
+    table[5] = False
+    return vol, replace(find_regions(vol), table=table)
+
+
+def test_slab_mask_leaves_out_every_slice_outline_and_little_more():
+    """The first screen's slab mask lies inside the intersection of its slices' masks (each
+    slice's table and body outline stay out); what it leaves out beyond that lies within
+    one binned pixel of some slice's outline; where the body and table are the same on
+    every slice it equals the intersection, and masks that are not whole 64-bit words
+    are intersected slice by slice (exactly)."""
+    cfg = streaks.resolve_settings(None)
+    vol, regions = _changing_body_regions()
+    masks = streaks.AllowedMasks(regions, 2, (64, 64), cfg)
+    extra_total = 0
+    for z0 in (0, 4):
+        exact = np.logical_and.reduce([masks(z) for z in range(z0, z0 + 4)])
+        slab = masks.slab_mask(z0, z0 + 4, streaks.Workspace())
+        assert not (slab & ~exact).any()
+        outlines = np.logical_or.reduce([streaks.inner_boundary(streaks.bin_mask(regions.body[z], 2))
+                                         for z in range(z0, z0 + 4)])
+        near = streaks.grow(outlines, 1)
+        extra = exact & ~slab
+        assert not (extra & ~near).any()
+        extra_total += int(extra.sum())
+    assert extra_total > 0  # the body changes: the superset is used
+    stacked = masks.slab_stack(0, 8, 4)
+    assert np.array_equal(stacked[0], masks.slab_mask(0, 4)) and np.array_equal(stacked[1], masks.slab_mask(4, 8))
+    from dataclasses import replace
+
+    same = replace(regions, body=np.repeat(regions.body[:1], 8, axis=0), table=np.repeat(regions.table[:1], 8, axis=0))
+    masks_same = streaks.AllowedMasks(same, 2, (64, 64), cfg)
+    assert np.array_equal(masks_same.slab_mask(0, 4), np.logical_and.reduce([masks_same(z) for z in range(4)]))
+    vol_odd, regions_odd = _changing_body_regions(n=127, width=125)  # 127 x 125 bytes: not whole words
+    masks_odd = streaks.AllowedMasks(regions_odd, 2, (63, 62), cfg)
+    assert np.array_equal(masks_odd.slab_mask(0, 4), np.logical_and.reduce([masks_odd(z) for z in range(4)]))
+
+
+def test_first_screen_refines_incomplete_and_gated_slabs():
+    """12 slices of 1.25 mm (first-screen slabs of 4): a strong line on slice 9 is found
+    and flagged on that slice alone, with the index of screening every two-slice slab;
+    a constant slice makes its first-screen slab incomplete, so it is screened in
+    two-slice slabs (its slab partner gets the two-slice index)."""
+    rng = np.random.default_rng(5)
+    hu = rng.normal(0.0, 10.0, (12, 128, 128)).astype(np.float32)
+    hu[9] = line_image(30.0, seed=7, contrast=60.0)
+    hu[2] = 0.0  # constant
+    default = analyse(hu, spacing=(1.25, 1.0, 1.0)).record
+    every_slab = analyse(hu, {"first_screen_slab_mm": 0.0}, spacing=(1.25, 1.0, 1.0)).record
+    assert default["flagged_slices"] == every_slab["flagged_slices"] == [9]
+    assert default["slice_index"][9] == every_slab["slice_index"][9]
+    assert default["slice_index"][2] is None and every_slab["slice_index"][2] is None
+    assert default["slice_index"][3] == every_slab["slice_index"][3]  # refined: the slab is incomplete
+    assert default["slice_index"][0] == default["slice_index"][1] == every_slab["slice_index"][0]

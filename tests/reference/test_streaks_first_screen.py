@@ -97,7 +97,7 @@ def first_screen_indices(vol: Volume, regions) -> tuple[list[float | None], int,
     masks = streaks.AllowedMasks(regions, factor, shape_b, cfg)
     slab = streaks.slab_size(SLICE_MM, cfg)
     first = streaks.first_screen_size(SLICE_MM, slab, cfg)
-    found = streaks.screen_slabs(vol, masks, factor, bins, cfg, first, [(0, vol.shape[0])])
+    found = streaks.screen_slabs(vol, masks, factor, bins, cfg, first, [(0, vol.shape[0])], slab_masks=True)
     profiles = {z: o for z, o in found.items() if not isinstance(o, str)}
     return streaks.slab_indices(profiles, vol.shape[0], first, float(cfg["neighbour_weight"])), slab, first
 
