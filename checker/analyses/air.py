@@ -37,7 +37,9 @@ Method
    the air equals ``false_alarms_per_series`` / number of scales (Worsley et al. 1992,
    1996). The false-alarm basis is thus the coarse grid's own resels.
 4. Hysteresis on the coarse grids: 3-D components above ``grow_sigma`` that reach the
-   high threshold are kept; each core above the threshold is grown to where the
+   high threshold are kept (labelled only in boxes around groups of cores, grown until
+   they hold their components whole and joined where they overlap, never over the
+   empty air between them: the same components as one labelling of the whole grid); each core above the threshold is grown to where the
    filtered contrast exceeds half of its own contrast (the 90th percentile in the core),
    which places its boundary at the half-contrast edge. A structure well measured at a
    fine scale is not found again at a coarser one; one poorly measured there is outlined
@@ -1200,6 +1202,10 @@ def hysteresis_structures_boxes(
     the threshold is measured on its own (its contrast: the 90th percentile inside the
     core) and grown to where the filtered contrast exceeds half of it, so two structures
     joined by noise keep their own extents; cores whose regions overlap are one structure.
+
+    The components are labelled only inside boxes around groups of cores
+    (:func:`_core_parts`), never over the space between them; the result is that of one
+    labelling of the whole map.
     """
     out = np.zeros(m.z.shape, dtype=np.int32)
     snr: dict[int, float] = {}
@@ -1209,37 +1215,23 @@ def hysteresis_structures_boxes(
     box = _padded_box_3d(high, 2)
     if box is None:
         return out, snr, []
-    hold = None
-    if m.threshold > grow_sigma:  # every core lies in one component of ``low``
-        box, lab, n, hold = _components_box_and_holders(lambda b: m.above(grow_sigma, b), high, box)
-    else:
-        lab, n = ndimage.label(m.above(grow_sigma, box))
-    if n == 0:
+    parts = _core_parts(m, high, box, grow_sigma)
+    if not parts:
         return out, snr, []
-    high = high[box]
-    if m.threshold > grow_sigma:
-        hold = present_labels(lab[high]) if hold is None else hold
-        if hold.size == 0 or hold[-1] == 0:
-            return out, snr, []
-        objects = ndimage.find_objects(lab, max_label=int(hold[-1]))  # boxes up to the last label holding a core
-        cores = cores_by_component(lab, objects, high, hold)
-    else:
-        objects = ndimage.find_objects(lab)
-        cores = _cores_by_labelling(lab, objects, high)
-    out_full, out = out, out[box]
-    maps: dict[int, np.ndarray] = {}  # the contrast in the box of each component holding a core
+    maps: dict[tuple[int, int], np.ndarray] = {}  # the contrast in the box of each component holding a core
 
-    def contrast_of(i: int) -> np.ndarray:
-        if i not in maps:
-            maps[i] = m.contrast_in(_shifted_box(objects[i - 1], box))
-        return maps[i]
+    def contrast_of(p: int, i: int) -> np.ndarray:
+        if (p, i) not in maps:
+            maps[(p, i)] = m.contrast_in(_shifted_box(parts[p][2][i - 1], parts[p][0]))
+        return maps[(p, i)]
 
     found = []
-    for j, (i, core) in enumerate(cores, start=1):
-        found.append((order_percentile(contrast_of(i)[core], 90.0), j, i, core))
-    for contrast, j, i, core in sorted(found, key=lambda f: f[:3], reverse=True):
+    for j, (_, p, i, core) in enumerate(sorted((c for part in parts for c in part[3]), key=lambda c: c[0]), start=1):
+        found.append((order_percentile(contrast_of(p, i)[core], 90.0), j, i, p, core))
+    for contrast, j, i, p, core in sorted(found, key=lambda f: f[:3], reverse=True):
+        pbox, lab, objects, _ = parts[p]
         sl = objects[i - 1]
-        region = contrast_of(i) > np.float32(0.5 * contrast)
+        region = contrast_of(p, i) > np.float32(0.5 * contrast)
         np.logical_and(region, lab[sl] == i, out=region)
         pieces, n_pieces = ndimage.label(region)
         touched = present_labels(pieces[core])
@@ -1248,21 +1240,131 @@ def hysteresis_structures_boxes(
         region = keep[pieces]
         if not region.any():
             continue
+        gsl = _shifted_box(sl, pbox)  # in the coordinates of the whole map
         # labels written so far lie in their outer boxes: none can meet a region outside them all
-        existing = present_labels(out[sl][region]) if _overlaps_any(sl, list(outer.values())) else np.zeros(0, np.int64)
+        existing = present_labels(out[gsl][region]) if _overlaps_any(gsl, list(outer.values())) else np.zeros(0, np.int64)
         existing = existing[existing > 0]
         target = int(existing[0]) if existing.size else len(snr) + 1
-        view = out[sl]
+        view = out[gsl]
         if existing.size:
             np.logical_and(region, view == 0, out=region)
         np.copyto(view, np.int32(target), where=region)
         snr[target] = max(snr.get(target, 0.0), contrast / max(m.noise_hu, 1e-6))
-        outer[target] = _union_box(outer.get(target), sl)
+        outer[target] = _union_box(outer.get(target), gsl)
         written = _padded_box_3d(region, 0)  # cells are never overwritten: a label's box is the union of its writes
         if written is not None:
-            tight[target] = _union_box(tight.get(target), _shifted_box(written, sl))
-    boxes = [tight.get(k) for k in range(1, len(snr) + 1)]
-    return out_full, snr, [None if b is None else _shifted_box(b, box) for b in boxes]
+            tight[target] = _union_box(tight.get(target), _shifted_box(written, gsl))
+    return out, snr, [tight.get(k) for k in range(1, len(snr) + 1)]
+
+
+#: At most this many groups of cores are labelled box by box (more: one box around all),
+#: and only when the box around all holds at least this many cells (speed only: the
+#: structures are the same either way).
+MAX_CORE_GROUPS = 48
+MIN_GROUPED_CELLS = 100_000
+
+
+def _core_parts(
+    m: ScaleMap, high: np.ndarray, box: tuple[slice, ...], grow_sigma: float
+) -> list[tuple[tuple[slice, ...], np.ndarray, list[tuple[slice, ...] | None], list[tuple[tuple[int, ...], int, int, np.ndarray]]]]:
+    """The components of the map above ``grow_sigma`` that hold a core (a component of
+    ``high``), labelled box by box: for each box, (the box, the labels in it, their
+    boxes inside it, its cores as (first cell in map coordinates, box index, label,
+    mask in the label's box)).
+
+    Boxes start around groups of cores (the 8-connected components of the cores'
+    in-plane footprint, each with the slices its cells span, padded by 2 cells), grow
+    until no component holding a core reaches a face (:func:`components_box`), and are
+    joined while any two overlap; the components are then those of one labelling of the
+    whole map (each lies whole in one box, and boxes are apart). With more than
+    ``MAX_CORE_GROUPS`` groups, when the groups' boxes fill half the box around every
+    core, when that box has fewer than ``MIN_GROUPED_CELLS`` cells, or when the threshold is not above ``grow_sigma``, that one box.
+    """
+    low = lambda b: m.above(grow_sigma, b)  # noqa: E731
+    if m.threshold <= grow_sigma:
+        lab, _ = ndimage.label(low(box))
+        objects = ndimage.find_objects(lab)
+        cores = _cores_by_labelling(lab, objects, high[box])
+        return [(box, lab, objects, [(_first_cell(c, objects[i - 1], box), 0, i, c) for i, c in cores])]
+    boxes = _group_boxes(high, box, 2) if _cells(box) >= MIN_GROUPED_CELLS else None
+    if boxes is None or len(boxes) > MAX_CORE_GROUPS or 2 * sum(_cells(b) for b in boxes) > _cells(box):
+        boxes = [box]  # groups that fill half the box save too little
+    while True:
+        grown = []
+        for b in boxes:
+            g, lab, n, hold = _components_box_and_holders(low, high, b)
+            if hold is None:  # the whole map was labelled: one box
+                return _parts_of([(g, lab, hold)], high)
+            grown.append((g, lab, hold))
+        joined = _join_overlapping([g for g, _, _ in grown])
+        if len(joined) == len(grown):
+            return _parts_of(grown, high)
+        boxes = joined
+
+
+def _cells(box: tuple[slice, ...]) -> int:
+    return math.prod(x.stop - x.start for x in box)
+
+
+def _parts_of(labelled: list, high: np.ndarray) -> list:
+    """The parts of :func:`_core_parts` from (box, labels, holders) of each box."""
+    parts = []
+    for g, lab, hold in labelled:
+        hi = high[g]
+        hold = present_labels(lab[hi]) if hold is None else hold
+        if hold.size == 0 or hold[-1] == 0:
+            continue
+        objects = ndimage.find_objects(lab, max_label=int(hold[-1]))  # boxes up to the last label holding a core
+        p = len(parts)
+        cores = [(_first_cell(c, objects[i - 1], g), p, i, c) for i, c in cores_by_component(lab, objects, hi, hold)]
+        parts.append((g, lab, objects, cores))
+    return parts
+
+
+def _first_cell(core: np.ndarray, sl: tuple[slice, ...], box: tuple[slice, ...]) -> tuple[int, ...]:
+    """The first cell (in scan order) of ``core`` (a mask in ``sl``, a box inside ``box``),
+    in the coordinates of the whole map."""
+    first = np.unravel_index(int(np.argmax(core)), core.shape)
+    return tuple(int(a) + x.start + b.start for a, x, b in zip(first, sl, box))
+
+
+def _group_boxes(high: np.ndarray, box: tuple[slice, ...], pad: int) -> list[tuple[slice, ...]] | None:
+    """Boxes around groups of the cells of ``high`` (inside ``box``): one per 8-connected
+    component of their in-plane footprint, spanning the slices its columns hold cells
+    in, padded by ``pad`` (clipped), joined while any two overlap; None when there are
+    more than ``MAX_CORE_GROUPS`` components."""
+    sub = high[box]
+    foot = sub.any(axis=0)
+    flab, n = ndimage.label(foot, structure=np.ones((3, 3), dtype=bool))
+    if n > MAX_CORE_GROUPS:
+        return None
+    out = []
+    for k, (ys, xs) in enumerate(ndimage.find_objects(flab), start=1):
+        cols = sub[:, ys, xs] & (flab[ys, xs] == k)
+        zs = np.flatnonzero(cols.reshape(cols.shape[0], -1).any(axis=1))
+        lo = (box[0].start + int(zs[0]), box[1].start + ys.start, box[2].start + xs.start)
+        hi = (box[0].start + int(zs[-1]) + 1, box[1].start + ys.stop, box[2].start + xs.stop)
+        out.append(tuple(slice(max(0, a - pad), min(size, b + pad)) for a, b, size in zip(lo, hi, high.shape)))
+    return _join_overlapping(out)
+
+
+def _join_overlapping(boxes: list[tuple[slice, ...]]) -> list[tuple[slice, ...]]:
+    """``boxes`` with every two that overlap replaced by the box around both, until none
+    overlap (in their first order otherwise)."""
+    out = list(boxes)
+    merged = True
+    while merged:
+        merged = False
+        for a in range(len(out)):
+            for b in range(a + 1, len(out)):
+                if boxes_overlap(out[a], out[b]):
+                    out[a] = _union_box(out[a], out[b])
+                    del out[b]
+                    merged = True
+                    break
+            if merged:
+                break
+    return out
 
 
 def _shifted_box(sl: tuple[slice, ...], box: tuple[slice, ...]) -> tuple[slice, ...]:

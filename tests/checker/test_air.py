@@ -419,3 +419,54 @@ def test_two_threads_give_the_single_thread_record_and_labels(monkeypatch):
     assert dumps(one.record) == dumps(two.record)
     assert np.array_equal(one.overlays.labels, two.overlays.labels)
     assert [f.message for f in one.findings] == [f.message for f in two.findings]
+
+
+def _blob_map(seed=3, shape=(60, 80, 90)):
+    """A ScaleMap of smooth unit noise with blobs: two far apart, two close together (their
+    padded boxes overlap), a long bar through every slice, and a faint halo joining a
+    blob to a low ridge that runs far beyond the blob's box."""
+    rng = np.random.default_rng(seed)
+    z = ndimage.gaussian_filter(rng.standard_normal(shape), 1.0)
+    z = (z / z.std()).astype(np.float32)
+    zz, yy, xx = np.ogrid[: shape[0], : shape[1], : shape[2]]
+    for (cz, cy, cx), r, v in [((10, 10, 10), 3, 9.0), ((45, 70, 80), 4, 12.0), ((30, 40, 40), 3, 8.0),
+                               ((33, 40, 47), 2, 7.0), ((30, 15, 70), 3, 10.0)]:
+        z[((zz - cz) ** 2 + (yy - cy) ** 2 + (xx - cx) ** 2) <= r * r] += v
+    z[:, 60:63, 5:9] += 9.0  # a bar through every slice (leaves the box of any group)
+    z[30, 15, 20:70] += 3.0  # a low ridge from the blob at x 70 far to the left
+    valid = np.ones(shape, dtype=bool)
+    valid[:, :, :2] = False
+    return air.ScaleMap(1.5, (1, 1, 1), z, valid, 0.0, 1.0, 5.0, 1000.0, contrast_hu=z)
+
+
+def test_grouped_hysteresis_equals_one_box(monkeypatch):
+    """Labelling the components only in boxes around groups of cores (boxes grown, and
+    joined where they overlap) gives the label map, contrast-to-noise and boxes of one
+    labelling around every core, on a map with far-apart, close and joined structures and
+    a bar through every slice; every label lies in components above the low level that
+    hold a core (checked against a plain labelling of the whole map)."""
+    m = _blob_map()
+    monkeypatch.setattr(air, "MIN_GROUPED_CELLS", 0)
+    high = m.above(m.threshold)
+    groups = air._group_boxes(high, air._padded_box_3d(high, 2), 2)
+    assert groups is not None and len(groups) >= 4  # grouped, with the close pair joined
+    assert not any(air.boxes_overlap(a, b) for i, a in enumerate(groups) for b in groups[i + 1:])
+    grouped = air.hysteresis_structures_boxes(m, 2.0)
+    monkeypatch.setattr(air, "MIN_GROUPED_CELLS", 10**12)
+    single = air.hysteresis_structures_boxes(m, 2.0)
+    assert np.array_equal(grouped[0], single[0])
+    assert grouped[1] == single[1] and grouped[2] == single[2]
+    assert len(grouped[1]) >= 5
+    low_lab, _ = ndimage.label(m.above(2.0))
+    holders = set(np.unique(low_lab[high])) - {0}
+    assert set(np.unique(low_lab[grouped[0] > 0])) <= holders
+    assert grouped[2] == ndimage.find_objects(grouped[0])
+
+
+def test_join_overlapping_boxes_leaves_none_overlapping():
+    """Boxes that overlap (also through a chain: a meets b, b meets c) become one box
+    around them; boxes apart stay as they are."""
+    b = lambda *r: tuple(slice(a, c) for a, c in r)  # noqa: E731
+    boxes = [b((0, 5), (0, 5), (0, 5)), b((20, 25), (0, 5), (0, 5)), b((4, 8), (4, 8), (4, 8)), b((7, 12), (7, 9), (0, 3))]
+    out = air._join_overlapping(boxes)
+    assert b((0, 12), (0, 9), (0, 8)) in out and b((20, 25), (0, 5), (0, 5)) in out and len(out) == 2
