@@ -33,7 +33,9 @@ means of the working grid (pixels of twice its size; a method choice for speed u
 the lead's rule that records may change: a quarter of the pixels to smooth, the noise
 of the block means after the Gaussian about that of the smoothed grid, and a group of
 ``min_insert_mm2`` or more still at least one block). The CT numbers are
-read only inside the bounding box of the inner discs of the slices that pass. Centre
+read only inside the bounding box of the inner discs of the slices that pass, and the
+inner discs' masks are made only at the grids the tests read (2 x 2 blocks, every
+fourth pixel; whole masks only for a slice whose sum is not finite), the same masks. Centre
 and radius are therefore estimates on that grid (within a fraction of a working pixel
 for a phantom of tens of working pixels), and the slice median and the noise scale
 (MAD) are those of the inner pixels on every fourth row and column of the grid (some
@@ -50,7 +52,7 @@ from __future__ import annotations
 import threading
 import weakref
 from dataclasses import dataclass, field
-from typing import Sequence
+from typing import Callable, Sequence
 
 import numpy as np
 from scipy import ndimage
@@ -239,6 +241,77 @@ def _inner_discs(
     return inside, (slice(y0, y1), slice(x0, x1))
 
 
+class _InnerDiscs:
+    """The masks of :func:`_inner_discs`, made only where and at the grid they are needed.
+
+    A pixel (row y, column x of the working grid) is inside when ``(x - cx)^2 <=
+    radius^2 - (y - cy)^2`` (the same float32 numbers as :func:`_inner_discs`) and, on
+    slices whose body mask was measured, in the body. The masks of every ``step``-th row
+    and column, of the 2 x 2 blocks (:func:`blocks_within`: a block is inside when its
+    four pixels are, i.e. when the larger x^2 of its columns fits the smaller room of its
+    rows) and of chosen slices are computed from the per-row room and per-column x^2
+    alone, without the whole stack of masks.
+    """
+
+    def __init__(self, body: np.ndarray, measured: np.ndarray, cy: np.ndarray, cx: np.ndarray,
+                 radius: np.ndarray) -> None:
+        ny, nx = body.shape[1:]
+        y0 = max(0, int(np.floor(np.min(cy - radius))))
+        y1 = min(ny, int(np.ceil(np.max(cy + radius))) + 1)
+        x0 = max(0, int(np.floor(np.min(cx - radius))))
+        x1 = min(nx, int(np.ceil(np.max(cx + radius))) + 1)
+        self.box = (slice(y0, y1), slice(x0, x1))
+        yy = (np.arange(y0, y1)[None, :] - cy[:, None]).astype(np.float32) ** 2
+        self.xx = (np.arange(x0, x1)[None, :] - cx[:, None]).astype(np.float32) ** 2
+        self.room = (radius**2).astype(np.float32)[:, None] - yy  # x^2 left on each row (z, y)
+        self.body = body[:, y0:y1, x0:x1]  # rows of slices not measured are not read
+        self.measured = np.asarray(measured, dtype=bool)
+
+    def take(self, keep: np.ndarray) -> "_InnerDiscs":
+        """The discs of the slices where ``keep``."""
+        out = object.__new__(_InnerDiscs)
+        out.box, out.xx, out.room = self.box, self.xx[keep], self.room[keep]
+        out.body, out.measured = self.body[keep], self.measured[keep]
+        return out
+
+    def _with_body(self, inside: np.ndarray, body_of: "Callable[[np.ndarray], np.ndarray]") -> np.ndarray:
+        idx = np.flatnonzero(self.measured)
+        if idx.size == self.measured.size:
+            inside &= body_of(self.body)
+        elif idx.size:
+            inside[idx] &= body_of(self.body[idx])
+        return inside
+
+    def full(self, idx: np.ndarray) -> np.ndarray:
+        """Masks of slices ``idx`` at every pixel of the box."""
+        sub = self.take(idx)
+        inside = np.less_equal(sub.xx[:, None, :], sub.room[:, :, None])
+        return sub._with_body(inside, lambda b: b)
+
+    def every(self, step: int) -> np.ndarray:
+        """Masks at every ``step``-th row and column of the box."""
+        inside = np.less_equal(self.xx[:, None, ::step], self.room[:, ::step, None])
+        return self._with_body(inside, lambda b: b[:, ::step, ::step])
+
+    def blocks(self) -> np.ndarray:
+        """Masks of the 2 x 2 blocks of the box (an odd last row or column left out)."""
+        h, w = self.room.shape[1] // 2 * 2, self.xx.shape[1] // 2 * 2
+        room = np.minimum(self.room[:, 0:h:2], self.room[:, 1:h:2])
+        xx = np.maximum(self.xx[:, 0:w:2], self.xx[:, 1:w:2])
+        inside = np.less_equal(xx[:, None, :], room[:, :, None])
+        return self._with_body(inside, blocks_within)
+
+
+def _finite_in_discs(values: np.ndarray, discs: _InnerDiscs) -> np.ndarray:
+    """:func:`_finite_inside` of ``values`` in the inner discs: the masks are made only
+    for slices whose float32 sum is not finite."""
+    ok = np.ones(values.shape[0], dtype=bool)
+    suspect = np.flatnonzero(~np.isfinite(values.sum(axis=(1, 2), dtype=np.float32)))
+    if suspect.size:
+        ok[suspect] = _finite_inside(values[suspect], discs.full(suspect))
+    return ok
+
+
 def _finite_inside(values: np.ndarray, masks: np.ndarray) -> np.ndarray:
     """Per slice, whether every masked value is finite. A slice's float32 sum is finite
     unless a value is not (or the sum overflows), so only slices whose sum is not are
@@ -250,11 +323,12 @@ def _finite_inside(values: np.ndarray, masks: np.ndarray) -> np.ndarray:
     return ok
 
 
-def _medians_of(values: np.ndarray, masks: np.ndarray, step: int = 4) -> np.ndarray:
+def _medians_of(values: np.ndarray, masks: np.ndarray, step: int = 4, masks_at_step: bool = False) -> np.ndarray:
     """Median of the masked values on every ``step``-th row and column, slice by slice
-    (NaN where none): one sort of the whole stack."""
+    (NaN where none): one sort of the whole stack. ``masks_at_step``: ``masks`` are
+    already those of every ``step``-th row and column."""
     nz = values.shape[0]
-    sub = masks[:, ::step, ::step].reshape(nz, -1)
+    sub = (masks if masks_at_step else masks[:, ::step, ::step]).reshape(nz, -1)
     v = np.where(sub, values[:, ::step, ::step].reshape(nz, -1), np.float32(np.inf))
     v.sort(axis=1)
     count = np.count_nonzero(sub, axis=1)
@@ -419,10 +493,11 @@ def blocks_within(mask: np.ndarray) -> np.ndarray:
 
 
 def _insert_slices(
-    hu: np.ndarray, inner: np.ndarray, median: np.ndarray, pixel_mm: float, s: dict[str, float]
+    hu: np.ndarray, inner: "np.ndarray | _InnerDiscs", median: np.ndarray, pixel_mm: float, s: dict[str, float]
 ) -> np.ndarray:
-    """Which slices of a stack hold a connected group inside ``inner`` departing from the
-    slice's ``median`` (see the module docstring); ``pixel_mm`` is the grid's pixel.
+    """Which slices of a stack hold a connected group inside ``inner`` (masks, or the
+    :class:`_InnerDiscs` they come from) departing from the slice's ``median`` (see the
+    module docstring); ``pixel_mm`` is the grid's pixel.
 
     The test runs on the 2 x 2 block means of the grid (pixels of ``2 pixel_mm``, inside
     ``inner`` when all four are), smoothed by the Gaussian of ``smooth_mm``: a quarter
@@ -430,7 +505,10 @@ def _insert_slices(
     the grid itself did.
     """
     if min(hu.shape[1:]) >= 2:
-        hu, inner, pixel_mm = block_means_2x2(hu), blocks_within(inner), 2.0 * pixel_mm
+        hu, pixel_mm = block_means_2x2(hu), 2.0 * pixel_mm
+        inner = inner.blocks() if isinstance(inner, _InnerDiscs) else blocks_within(inner)
+    elif isinstance(inner, _InnerDiscs):
+        inner = inner.full(np.arange(hu.shape[0]))
     padded, r = _smoothed_padded(hu, s["smooth_mm"] / pixel_mm)
     padded -= median.astype(np.float32)[:, None, None]  # in place on the contiguous array
     np.abs(padded, out=padded)
@@ -604,25 +682,27 @@ def _screened_disc_stats(
 
     - filled in, not measured, when both pass the disc test and agree (centres and
       radii within :data:`_AGREE_GRID_PX` working pixels): centre and radius linearly
-      interpolated, fill the lower of the two, and the slice's mask taken as the whole
-      grid (its inner disc is then the disc itself; the body is hole-filled, so within
-      a passing disc the two are the same);
+      interpolated, fill the lower of the two, and no mask (its inner disc is then the
+      disc itself; the body is hole-filled, so within a passing disc the two are the
+      same);
     - measured, when either passes a relaxed test (radius at least 0.8 of the minimum,
       fill at most 0.05 short of it) and they do not both pass and agree;
     - left out otherwise (radius and fill 0).
 
-    Returns the strided body masks (z, y', x') and centre_y, centre_x, radius, fill
-    (z,) on the working grid.
+    Returns the strided body masks (z, y', x'; valid where ``measured``), ``measured``
+    (z,) and centre_y, centre_x, radius, fill (z,) on the working grid.
     """
     nz = body.shape[0]
     first = np.unique(np.r_[np.arange(0, nz, k), nz - 1])
-    masks = np.zeros((nz, *_strided(body[:1], f).shape[1:]), dtype=bool)
+    masks = np.empty((nz, *_strided(body[:1], f).shape[1:]), dtype=bool)  # written where measured
+    measured = np.zeros(nz, dtype=bool)
     cy, cx = np.full(nz, np.nan), np.full(nz, np.nan)
     r, fill = np.zeros(nz), np.zeros(nz)
 
     def measure(zs: np.ndarray) -> None:
         part = _strided(body, f, zs=zs)
         masks[zs] = part
+        measured[zs] = True
         cy[zs], cx[zs], r[zs], fill[zs] = disc_stats(part)
 
     measure(first)
@@ -646,8 +726,7 @@ def _screened_disc_stats(
         for v in (cy, cx, r):
             v[gap] = (1.0 - t) * v[a] + t * v[b]
         fill[gap] = min(fill[a], fill[b])
-        masks[gap] = True
-    return masks, cy, cx, r, fill
+    return masks, measured, cy, cx, r, fill
 
 
 #: Largest difference (working-grid pixels) of the centres and radii of two screened
@@ -670,18 +749,20 @@ def _find_phantom(volume: Volume, regions: Regions, s: dict[str, float]) -> Phan
     median = np.full(nz, np.nan)
     on = np.zeros(nz, dtype=bool)
     inserts = np.zeros(nz, dtype=bool)
-    body, cy, cx, r, fill = _screened_disc_stats(regions.body, f, _slice_step(volume, s), pixel_mm, s)
+    body, measured, cy, cx, r, fill = _screened_disc_stats(regions.body, f, _slice_step(volume, s), pixel_mm, s)
     zs = np.flatnonzero((r * f * pixel_mm >= s["min_radius_mm"]) & (fill >= s["min_fill"]))
     if zs.size:
         run = _as_slice(zs)  # evenly spaced slices (a phantom series: all of them) as a view
-        inner, box = _inner_discs(body[zs if run is None else run], cy[zs], cx[zs], s["inner_fraction"] * r[zs])
+        inner = _InnerDiscs(body[zs if run is None else run], measured[zs], cy[zs], cx[zs],
+                            s["inner_fraction"] * r[zs])
+        box = inner.box
         rows = slice(box[0].start * f, box[0].stop * f)
         img = _strided(volume.hu, f, rows, slice(box[1].start * f, box[1].stop * f), zs)
-        finite = _finite_inside(img, inner)
-        med = _medians_of(img, inner)
+        finite = _finite_in_discs(img, inner)
+        med = _medians_of(img, inner.every(4), masks_at_step=True)
         keep = finite & (np.abs(med) <= s["water_window_hu"])  # NaN (no inner pixel) fails
         if not keep.all():  # (no copies when every slice passes)
-            zs, inner, img, med = zs[keep], inner[keep], img[keep], med[keep]
+            zs, inner, img, med = zs[keep], inner.take(keep), img[keep], med[keep]
         centre[zs] = np.stack([cy[zs] * f, cx[zs] * f], axis=1)
         radius[zs], median[zs], on[zs] = r[zs] * f, med, True
         if zs.size:

@@ -323,3 +323,31 @@ def test_slice_counts_kept_per_slice_equal_direct_counts_in_any_order():
     for z0, z1 in ((3, 5), (0, 11), (4, 9), (7, 7), (0, 2), (10, 20), (5, 3)):
         expected = int(np.count_nonzero(~np.isfinite(hu[max(z0, 0) : z1 + 1]))) if z1 >= z0 else 0
         assert _phantom.count_nonfinite_in_slices(vol, z0, z1) == expected, (z0, z1)
+
+
+def test_inner_discs_made_where_needed_equal_the_whole_masks():
+    """The inner discs made per grid (every pixel, every 4th row and column, 2 x 2
+    blocks) equal those cut from the whole stack of masks (:func:`_phantom._inner_discs`,
+    and :func:`_phantom.blocks_within` of it as the reference); slices whose body was
+    not measured count as all body."""
+    rng = np.random.default_rng(23)
+    nz, n = 6, 41
+    body = rng.random((nz, n, n)) > 0.1
+    measured = np.array([True, False, True, True, False, True])
+    cy, cx = rng.uniform(18, 22, nz), rng.uniform(17, 23, nz)
+    radius = rng.uniform(12, 17, nz)
+    as_body = body.copy()
+    as_body[~measured] = True
+    ref, box = _phantom._inner_discs(as_body, cy, cx, radius)
+    discs = _phantom._InnerDiscs(body, measured, cy, cx, radius)
+    assert discs.box == box
+    assert np.array_equal(discs.full(np.arange(nz)), ref)
+    assert np.array_equal(discs.full(np.array([1, 3])), ref[[1, 3]])
+    assert np.array_equal(discs.every(4), ref[:, ::4, ::4])
+    assert np.array_equal(discs.blocks(), _phantom.blocks_within(ref))
+    keep = np.array([True, True, False, True, False, False])
+    assert np.array_equal(discs.take(keep).blocks(), _phantom.blocks_within(ref[keep]))
+    values = rng.normal(0, 5, ref.shape).astype(np.float32)
+    values[~ref] = np.nan  # non-finite outside the discs only: every slice passes
+    values[2][ref[2]] = np.inf  # inside on slice 2
+    assert list(_phantom._finite_in_discs(values, discs)) == [True, True, False, True, True, True]
