@@ -114,9 +114,13 @@ def main() -> None:
           f"(target <= 10 ms)")
     wall, cpu, res = timed_runs(lambda: streaks.analyse(vol, regions), args.repeats)
     n = args.slices
-    slab = streaks.slab_size(vol.spacing_mm[0], streaks.resolve_settings(None))
+    cfg = streaks.resolve_settings(None)
+    slab = streaks.slab_size(vol.spacing_mm[0], cfg)
+    first = streaks.first_screen_size(vol.spacing_mm[0], slab, cfg)
     print(f"slices of {vol.spacing_mm[0]:g} mm screened in slabs of {slab} (screen_slab_mm "
-          f"{streaks.DEFAULTS['screen_slab_mm']:g})")
+          f"{streaks.DEFAULTS['screen_slab_mm']:g}), first screen on slabs of {first} (first_screen_slab_mm "
+          f"{streaks.DEFAULTS['first_screen_slab_mm']:g}, refined above "
+          f"{streaks.first_screen_gate(float(cfg['tolerance_index']), slab, first):.2f})")
     print(f"whole analysis, 512 x 512 x {n}, {streaks.SCREEN_THREADS} thread(s), median of {args.repeats}: "
           f"wall {wall:.2f} s ({wall / n * 1e3:.2f} ms/slice), CPU {cpu:.2f} s ({cpu / n * 1e3:.2f} ms/slice), "
           f"index {res.record['index']:.2f}, flagged {res.record['flagged']}")
