@@ -96,8 +96,8 @@ def _print_parts(vol: Volume, regions, repeats: int) -> None:
     parts["insert search"] = lambda: ttf.find_rod_inserts(vol, regions, s, phantom=found)
     inserts = ttf.find_rod_inserts(vol, regions, s, phantom=found)
     allowed = ttf._body_footprint(vol, regions, inserts, s)
-    parts[f"measuring {len(inserts)} rods"] = lambda: [
-        ttf.measure_circular_edge(vol, i, s, allowed=allowed, others=inserts) for i in inserts]
+    parts[f"measuring {len(inserts)} rods"] = lambda: ttf.measure_circular_edges(  # as analyse measures them
+        vol, inserts, s, allowed=allowed, others=inserts)
     for name, fn in parts.items():
         cpus = []
         for _ in range(max(1, repeats)):

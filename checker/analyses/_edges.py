@@ -45,9 +45,9 @@ class BinnedEsf:
     esf_hu: np.ndarray
     counts: np.ndarray
     bin_mm: float
-    #: Running means of ``esf_hu`` already computed (smoothing bins -> values), so that
-    #: :func:`esf_shape` and :func:`esf_overshoot` of one ESF smooth it once; an ESF's
-    #: arrays are not changed after it is made.
+    #: Running means of ``esf_hu`` and their shapes already computed (by smoothing
+    #: bins), so that :func:`esf_shape` and :func:`esf_overshoot` of one ESF smooth and
+    #: describe it once; an ESF's arrays are not changed after it is made.
     _smoothed: dict = field(default_factory=dict, init=False, repr=False, compare=False)
 
     @property
@@ -60,6 +60,14 @@ class BinnedEsf:
         if y is None:
             y = self._smoothed[size] = ndimage.uniform_filter1d(self.esf_hu, size=size, mode="nearest")
         return y
+
+    def shape_of_smoothed(self, size: int) -> "EsfShape":
+        """:func:`_shape_of_smoothed` of :meth:`smoothed` (``size``), computed once."""
+        key = ("shape", size)
+        shape = self._smoothed.get(key)
+        if shape is None:
+            shape = self._smoothed[key] = _shape_of_smoothed(self.smoothed(size), self.position_mm)
+        return shape
 
 
 @dataclass
@@ -219,7 +227,7 @@ def esf_overshoot(esf: BinnedEsf, smooth_mm: float = 0.4, floor: float = 0.03) -
     """
     size = _smoothing_bins(esf, smooth_mm)
     y = esf.smoothed(size)
-    shape = _shape_of_smoothed(y, esf.position_mm)  # esf_shape(esf, smooth_mm), smoothed once
+    shape = esf.shape_of_smoothed(size)  # esf_shape(esf, smooth_mm), computed once
     contrast = shape.high_hu - shape.low_hu
     if not np.isfinite(contrast) or contrast == 0:
         return 0.0
@@ -253,7 +261,7 @@ def esf_shape(esf: BinnedEsf, smooth_mm: float = 0.4) -> EsfShape:
     The plateaus are the medians of the first and last tenth of the range; the centre
     is the midpoint crossing nearest the middle of the range.
     """
-    return _shape_of_smoothed(esf.smoothed(_smoothing_bins(esf, smooth_mm)), esf.position_mm)
+    return esf.shape_of_smoothed(_smoothing_bins(esf, smooth_mm))
 
 
 def _smoothing_bins(esf: BinnedEsf, smooth_mm: float) -> int:
@@ -597,6 +605,100 @@ def refine_circle_centres(
     return np.stack([cy, cx], axis=1)
 
 
+def refine_circle_centres_of_stacks(
+    stacks: list[np.ndarray],
+    centres_yx: list[tuple[float, float]],
+    radii_px: list[float],
+    inside_hu: list[float],
+    outside_hu: list[float],
+    reach_px: list[float],
+    *,
+    iterations: int = 8,
+) -> list[np.ndarray]:
+    """:func:`refine_circle_centres` of several stacks (e.g. the rods of a phantom), each
+    with its own start, radius, CT numbers and reach, iterated together; returns one
+    (n, 2) array per stack.
+
+    Each stack's pixels near its start (those :func:`refine_circle_centres` takes) are
+    split: those within the window less 2 px of the start are inside the window of
+    every centre looked at (a centre that wanders more than 2 px from its start leaves
+    the iteration), so their weighted sums are taken once; the others are padded to one
+    length with pixels that are never inside a window (weight 0), so one vectorised pass
+    per iteration over them serves every image of every stack. Each image keeps its own
+    stopping rule, and an image whose centre wanders more than 2 px from its start is
+    refined on its own, as there. The fixed point of each image is the one it has
+    alone: the same sums, taken in another order (they differ only in rounding).
+
+    References
+    ----------
+    Common practice, no source (centroid of a partial-volume weighted mask).
+    """
+    k = len(stacks)
+    out = [np.tile(np.array([float(c[0]), float(c[1])]), (st.shape[0], 1)) for st, c in zip(stacks, centres_yx)]
+    live = [j for j in range(k) if stacks[j].shape[0] and inside_hu[j] != outside_hu[j]]
+    if not live:
+        return out
+    parts = []
+    for j in live:
+        window = radii_px[j] + reach_px[j]
+        yy, xx, values = _stack_pixels_near(stacks[j], centres_yx[j], window + 2.0)
+        weights = np.clip((values - outside_hu[j]) / (inside_hu[j] - outside_hu[j]), 0.0, 1.0)
+        # pixels within window - 2 of the start are inside the window of every centre the
+        # iteration looks at (at most 2 px from the start): their sums are taken once
+        core = (yy - centres_yx[j][0]) ** 2 + (xx - centres_yx[j][1]) ** 2 <= max(window - 2.0, 0.0) ** 2
+        wc = weights[:, core]
+        fixed = np.stack([wc.sum(axis=1), np.einsum("ij,j->i", wc, yy[core]), np.einsum("ij,j->i", wc, xx[core])],
+                         axis=1)  # no BLAS threads
+        parts.append((yy[~core], xx[~core], weights[:, ~core], window, fixed))
+    m = max(max(p[0].size for p in parts), 1)
+    n = sum(stacks[j].shape[0] for j in live)
+    far = 1e9  # never within a window of a centre
+    yy_all, xx_all, w_all = np.full((n, m), far), np.full((n, m), far), np.zeros((n, m))
+    win2, start, fixed_all = np.empty(n), np.empty((n, 2)), np.empty((n, 3))
+    row = 0
+    for j, (yy, xx, weights, window, fixed) in zip(live, parts):
+        rows = slice(row, row + weights.shape[0])
+        yy_all[rows, : yy.size], xx_all[rows, : xx.size], w_all[rows, : yy.size] = yy, xx, weights
+        win2[rows], start[rows], fixed_all[rows] = window**2, centres_yx[j], fixed
+        row += weights.shape[0]
+    cy, cx = start[:, 0].copy(), start[:, 1].copy()
+    active = np.ones(n, dtype=bool)
+    alone = np.zeros(n, dtype=bool)
+    for _ in range(iterations):
+        rows = np.flatnonzero(active)
+        if rows.size == 0:
+            break
+        every = rows.size == n  # all still moving: no row selection (no copies)
+        yy, xx, wts = (yy_all, xx_all, w_all) if every else (yy_all[rows], xx_all[rows], w_all[rows])
+        inside = (yy - cy[rows, None]) ** 2 + (xx - cx[rows, None]) ** 2 <= win2[rows, None]
+        w = np.where(inside, wts, 0.0)
+        fx = fixed_all[rows]
+        total = fx[:, 0] + w.sum(axis=1)
+        stop = total <= 0
+        active[rows[stop]] = False
+        if stop.any():
+            keep = ~stop
+            rows, w, total, yy, xx, fx = rows[keep], w[keep], total[keep], yy[keep], xx[keep], fx[keep]
+        ny = (fx[:, 1] + np.einsum("ij,ij->i", w, yy)) / total
+        nx = (fx[:, 2] + np.einsum("ij,ij->i", w, xx)) / total
+        moved = np.hypot(ny - cy[rows], nx - cx[rows])
+        cy[rows], cx[rows] = ny, nx
+        active[rows[moved < 1e-4]] = False
+        wandered = np.hypot(cy - start[:, 0], cx - start[:, 1]) > 2.0
+        alone |= wandered & active
+        active &= ~wandered
+    row = 0
+    for j in live:
+        count = stacks[j].shape[0]
+        rows = slice(row, row + count)
+        out[j] = np.stack([cy[rows], cx[rows]], axis=1)
+        for i in np.flatnonzero(alone[rows]):
+            out[j][i] = refine_circle_centre(stacks[j][i], centres_yx[j], radii_px[j], inside_hu[j], outside_hu[j],
+                                             reach_px=reach_px[j], iterations=iterations)
+        row += count
+    return out
+
+
 def _stack_pixels_near(images: np.ndarray, centre: tuple[float, float], reach: float
                        ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     """Row and column indices (float) of the pixels :func:`_pixels_near` takes, and their
@@ -607,7 +709,13 @@ def _stack_pixels_near(images: np.ndarray, centre: tuple[float, float], reach: f
     ys, xs = np.arange(y0, y1, dtype=float)[:, None], np.arange(x0, x1, dtype=float)[None, :]
     near = (ys - centre[0]) ** 2 + (xs - centre[1]) ** 2 <= reach**2
     iy, ix = np.nonzero(near)  # row-major, as boolean indexing
-    return iy + float(y0), ix + float(x0), images[:, y0:y1, x0:x1][:, iy, ix].astype(float)
+    iy += y0
+    ix += x0
+    if images.flags.c_contiguous:  # one gather from the flattened images
+        values = images.reshape(images.shape[0], -1).take(iy * images.shape[2] + ix, axis=1)
+    else:
+        values = images[:, iy, ix]
+    return iy.astype(float), ix.astype(float), values.astype(float, copy=False)
 
 
 def _pixels_near(image: np.ndarray, centre: tuple[float, float], reach: float

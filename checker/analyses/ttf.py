@@ -44,7 +44,10 @@ is then taken to its group's centre, at most 0.02 px from its own slice's). The 
 about the measured edge radius comes from one binning of the pixels near the edge (bins
 reaching half a range beyond the range on both sides): the range is moved onto the
 edge by whole bins, so it is centred on the edge to half a bin (0.05 px) instead of
-being binned again about each new radius (:func:`_centred_esf`). Values in
+being binned again about each new radius (:func:`_centred_esf`). The rods found in a
+series are measured together only where that saves work without changing a value: the
+centre refinement of all their sub-stack mean images runs as one vectorised iteration
+(:func:`measure_circular_edges`; each image reaches its own fixed point). Values in
 the records may therefore differ from a full-resolution, slice-by-slice pass by their
 estimation error: the lead's decision is that record values are estimates and may
 change, while the record keys, types and meaning do not, the checks of
@@ -603,8 +606,8 @@ def _slices_of_rod(hu: np.ndarray, z: int, centre: tuple[float, float], r_px: fl
     """
     y0, x0, crop = _crop(hu, centre, 2.2 * r_px)
     ny, nx = crop.shape[1:]
-    d = np.hypot((np.arange(ny) - (centre[0] - y0))[:, None], (np.arange(nx) - (centre[1] - x0))[None, :])
-    inside, ring = d <= 0.6 * r_px, (d >= 1.4 * r_px) & (d <= 2.0 * r_px)
+    d2 = (np.arange(ny) - (centre[0] - y0))[:, None] ** 2 + (np.arange(nx) - (centre[1] - x0))[None, :] ** 2
+    inside, ring = d2 <= (0.6 * r_px) ** 2, (d2 >= (1.4 * r_px) ** 2) & (d2 <= (2.0 * r_px) ** 2)
     n_in, n_ring = int(np.count_nonzero(inside)), int(np.count_nonzero(ring))
     if not n_in or not n_ring:
         return z, z
@@ -737,20 +740,61 @@ def measure_circular_edge(
     Richard et al., Med Phys 39(7) 2012; AAPM TG-233 (2019); Cunningham & Fenster,
     Med Phys 14(4) 1987.
     """
+    return measure_circular_edges(volume, [insert], settings, allowed=allowed, others=others)[0]
+
+
+def measure_circular_edges(
+    volume: Volume,
+    inserts: Sequence[Insert],
+    settings: dict[str, Any] | None = None,
+    *,
+    allowed: np.ndarray | None = None,
+    others: Sequence[Insert] = (),
+) -> list[EdgeMeasurement]:
+    """:func:`measure_circular_edge` of several rods: each rod is measured on its own,
+    except that the centre refinement of all their sub-stack mean images runs as one
+    vectorised iteration (:func:`reconaudit.checker.analyses._edges.refine_circle_centres_of_stacks`;
+    the same fixed point for each image as refined alone).
+
+    ``allowed`` applies to every rod (pass None for rods the user placed).
+
+    References
+    ----------
+    Richard et al., Med Phys 39(7) 2012; AAPM TG-233 (2019); Cunningham & Fenster,
+    Med Phys 14(4) 1987.
+    """
     s = resolve_settings(settings)
     sy, sx = volume.spacing_mm[1], volume.spacing_mm[2]
     px = 0.5 * (sy + sx)
-    r_px = insert.radius_mm / px
-    half_mm = min(float(s["esf_half_range_mm"]), 0.9 * insert.radius_mm)
-    y0, x0, crop = _crop_from(insert.pixels, volume.hu, insert.z0, insert.z1, insert.centre_yx_vox,
-                              r_px + half_mm / px + 3)
-    # the rod's pixels are read where they are (the copy made when its slices were
-    # found): the run sums accumulate in float64, the side noise casts its few gathered
-    # pixels, so no float64 copy of the whole crop is made
+    prepared = []
+    for insert in inserts:
+        r_px = insert.radius_mm / px
+        half_mm = min(float(s["esf_half_range_mm"]), 0.9 * insert.radius_mm)
+        # the rod's pixels are read where they are (the copy made when its slices were
+        # found): the run sums accumulate in float64, the side noise casts its few
+        # gathered pixels, so no float64 copy of the whole crop is made
+        y0, x0, crop = _crop_from(insert.pixels, volume.hu, insert.z0, insert.z1, insert.centre_yx_vox,
+                                  r_px + half_mm / px + 3)
+        c_local = (insert.centre_yx_vox[0] - y0, insert.centre_yx_vox[1] - x0)
+        prepared.append((insert, y0, x0, crop, half_mm, _run_images(crop, c_local, r_px, px)))
+    runs = [p[5] for p in prepared]
+    per_rod = _edges.refine_circle_centres_of_stacks(
+        [ri.images for ri in runs], [ri.start for ri in runs], [ri.r_px for ri in runs],
+        [ri.inside_hu for ri in runs], [ri.outside_hu for ri in runs], [ri.reach_px for ri in runs])
+    return [_measure_rod(volume, insert, y0, x0, crop, half_mm, ri, per, s, allowed, others)
+            for (insert, y0, x0, crop, half_mm, ri), per in zip(prepared, per_rod)]
+
+
+def _measure_rod(volume: Volume, insert: Insert, y0: int, x0: int, crop: np.ndarray, half_mm: float,
+                 ri: RunImages, per: np.ndarray, s: dict[str, Any], allowed: np.ndarray | None,
+                 others: Sequence[Insert]) -> EdgeMeasurement:
+    """The rest of :func:`measure_circular_edge` once the run centres ``per`` are known:
+    centre line, pooling, ESF about the measured radius, contrast, noise and record."""
+    sy, sx = volume.spacing_mm[1], volume.spacing_mm[2]
+    px = 0.5 * (sy + sx)
     free = _free_mask(crop.shape[1:], (y0, x0), volume.hu.shape[1:], insert, others, allowed, px)
-    c_local = (insert.centre_yx_vox[0] - y0, insert.centre_yx_vox[1] - x0)
-    centres, inside_hu, outside_hu, total = _refine_centres(crop, c_local, r_px, px)
-    pool = _pool_slices(crop, centres, (sy, sx), float(s["bin_fraction"]), total=total)
+    centres = _centre_line(ri, per, crop.shape[0])
+    pool = _pool_slices(crop, centres, (sy, sx), float(s["bin_fraction"]), total=ri.total)
     reach_mm = _free_reach_mm(pool.dist, free, insert.radius_mm)
     problems: list[str] = []
     if reach_mm < half_mm:
@@ -760,13 +804,12 @@ def measure_circular_edge(
                 f"{max(reach_mm, 0):.1f} mm free beyond the edge, {s['min_half_range_mm']:g} mm needed"
             )
         half_mm = max(reach_mm, px)
-    radius_mm = insert.radius_mm
-    # the pixels either pass may use (the second moves the range by at most half of it)
-    esf, radius_mm = _centred_esf(pool, free, radius_mm, half_mm, px * float(s["bin_fraction"]))
+    esf, radius_mm = _centred_esf(pool, free, insert.radius_mm, half_mm, px * float(s["bin_fraction"]))
     contrast, noise = _contrast_and_noise(crop, pool, free, radius_mm, half_mm, px)
-    centre_zyx = (0.5 * (insert.z0 + insert.z1), float(np.mean([c[0] for c in centres])) + y0, float(np.mean([c[1] for c in centres])) + x0)
+    mean_yx = np.asarray(centres, dtype=float).mean(axis=0)
+    centre_zyx = (0.5 * (insert.z0 + insert.z1), float(mean_yx[0]) + y0, float(mean_yx[1]) + x0)
     extra = {"radius_mm": round(radius_mm, 3), "source": insert.source}
-    return _edge_result("circular", volume, esf, contrast, inside_hu if contrast else float("nan"), noise,
+    return _edge_result("circular", volume, esf, contrast, ri.inside_hu if contrast else float("nan"), noise,
                         (insert.z0, insert.z1), centre_zyx, s, problems, extra)
 
 
@@ -941,6 +984,56 @@ def _free_reach_mm(dist: np.ndarray, free: np.ndarray, radius_mm: float) -> floa
     return float(dist[:, blocked].min()) - radius_mm
 
 
+@dataclass
+class RunImages:
+    """What the centre line of a rod is refined from (:func:`_run_images`)."""
+
+    runs: list[np.ndarray]  # crop slice indices of each run
+    sizes: np.ndarray  # slices in each run (float)
+    images: np.ndarray  # (runs, y, x) mean image of each run (the crop itself when a run is a slice)
+    total: np.ndarray  # float64 sum of all the crop's slices
+    start: tuple[float, float]  # where the refinement starts (crop indices)
+    r_px: float
+    inside_hu: float
+    outside_hu: float
+    reach_px: float
+
+
+def _run_images(crop: np.ndarray, centre: tuple[float, float], r_px: float, px: float,
+                groups: int = 3) -> RunImages:
+    """The sub-stack mean images a rod's centre line is refined from, and the inside and
+    outside CT numbers of its disc (medians inside 0.6 r and on the ring r + 2 mm ..
+    r + 4 mm of the mean of all slices): see :func:`_refine_centres`."""
+    nz = crop.shape[0]
+    runs = np.array_split(np.arange(nz), min(groups, nz))
+    run_sums = _run_sums(crop, runs)
+    total = run_sums.sum(axis=0)
+    first = total / nz
+    d2 = (np.arange(first.shape[0]) - centre[0])[:, None] ** 2 + (np.arange(first.shape[1]) - centre[1])[None, :] ** 2
+    core = d2 <= (0.6 * r_px) ** 2
+    inside_hu = _edges._median(first[core]) if core.any() else float(first.mean())
+    ring = (d2 >= (r_px + 2.0 / px) ** 2) & (d2 <= (r_px + 4.0 / px) ** 2)
+    outside_hu = _edges._median(first[ring]) if ring.any() else _edges._median(first.ravel())
+    reach = min(3.0 / px, 0.5 * r_px + 1)
+    sizes = np.array([r.size for r in runs], dtype=float)
+    images = crop if len(runs) == nz else run_sums / sizes[:, None, None]
+    return RunImages(runs, sizes, images, total, (float(centre[0]), float(centre[1])), float(r_px),
+                     inside_hu, outside_hu, float(reach))
+
+
+def _centre_line(ri: RunImages, per: np.ndarray, nz: int) -> list[tuple[float, float]]:
+    """Every slice's centre from the run centres ``per`` (runs, 2): a straight line along
+    z through them (weighted by their slice counts), or each run's centre for its slices
+    when there is one run."""
+    if len(per) >= 2:
+        z = np.arange(nz, dtype=float)
+        mid_z = np.array([float(r[0]) for r in ri.runs]) + 0.5 * (ri.sizes - 1.0)  # each run's mean slice, exactly
+        fit = _line_along_z(mid_z, per, ri.sizes, z)
+        return list(zip(fit[:, 0].tolist(), fit[:, 1].tolist()))
+    per_slice = np.concatenate([np.repeat(p[None], r.size, axis=0) for p, r in zip(per, ri.runs)])
+    return [tuple(p) for p in per_slice]
+
+
 def _refine_centres(crop: np.ndarray, centre: tuple[float, float], r_px: float, px: float,
                     groups: int = 3) -> tuple[list[tuple[float, float]], float, float, np.ndarray]:
     """Sub-pixel centre line of a rod from a few sub-stack mean images.
@@ -956,45 +1049,24 @@ def _refine_centres(crop: np.ndarray, centre: tuple[float, float], r_px: float, 
     pooling tolerance over the rod, :func:`_pool_slices` makes one group of all slices
     about its mean (the ESF of all slices is then one binning of the summed image).
     Returns the centres, the inside and outside CT numbers and the float64 sum of all
-    slices (the sum of the runs' sums).
+    slices (the sum of the runs' sums). :func:`measure_circular_edges` runs the same
+    steps for several rods with one refinement of all their run images.
 
     References
     ----------
     Richard et al., Med Phys 39(7) 2012 (radial ESF about the sub-pixel rod centre);
     common practice, no source (centroid refinement, straight line along z).
     """
-    nz = crop.shape[0]
-    runs = np.array_split(np.arange(nz), min(groups, nz))
-    run_sums = _run_sums(crop, runs)
-    total = run_sums.sum(axis=0)
-    first = total / nz
-    d = np.hypot((np.arange(first.shape[0]) - centre[0])[:, None], (np.arange(first.shape[1]) - centre[1])[None, :])
-    core = d <= 0.6 * r_px
-    inside_hu = _edges._median(first[core]) if core.any() else float(first.mean())
-    ring = (d >= r_px + 2.0 / px) & (d <= r_px + 4.0 / px)
-    outside_hu = _edges._median(first[ring]) if ring.any() else _edges._median(first.ravel())
-    reach = min(3.0 / px, 0.5 * r_px + 1)
-    sizes = np.array([r.size for r in runs], dtype=float)
-    images = crop if len(runs) == nz else run_sums / sizes[:, None, None]
-    per = _edges.refine_circle_centres(images, centre, r_px, inside_hu, outside_hu, reach_px=reach)
-    z = np.arange(nz, dtype=float)
-    if len(per) >= 2:
-        mid_z = np.array([float(r[0]) for r in runs]) + 0.5 * (sizes - 1.0)  # each run's mean slice, exactly
-        fit = _line_along_z(mid_z, per, sizes, z)
-        return list(zip(fit[:, 0].tolist(), fit[:, 1].tolist())), inside_hu, outside_hu, total
-    per_slice = np.concatenate([np.repeat(p[None], r.size, axis=0) for p, r in zip(per, runs)])
-    return [tuple(p) for p in per_slice], inside_hu, outside_hu, total
+    ri = _run_images(crop, centre, r_px, px, groups)
+    (per,) = _edges.refine_circle_centres_of_stacks([ri.images], [ri.start], [ri.r_px], [ri.inside_hu],
+                                                   [ri.outside_hu], [ri.reach_px])
+    return _centre_line(ri, per, crop.shape[0]), ri.inside_hu, ri.outside_hu, ri.total
 
 
 def _run_sums(crop: np.ndarray, runs: Sequence[np.ndarray]) -> np.ndarray:
-    """Float64 sum of the crop's slices over each run of consecutive slices: (runs, y, x).
-    Runs of one length are summed by one reshape (the same sums, slice by slice in
-    order, as one sum per run)."""
-    sizes = {r.size for r in runs}
-    if len(sizes) == 1 and crop.flags.c_contiguous:
-        k = sizes.pop()
-        return crop.reshape(len(runs), k, *crop.shape[1:]).sum(axis=1, dtype=np.float64)
-    return np.stack([crop[r[0] : r[-1] + 1].sum(axis=0, dtype=np.float64) for r in runs])
+    """Float64 sum of the crop's slices over each run of consecutive slices: (runs, y, x)
+    (the crop may be a strided view; each run's sum accumulates in float64)."""
+    return np.stack([crop[int(r[0]) : int(r[-1]) + 1].sum(axis=0, dtype=np.float64) for r in runs])
 
 
 def _line_along_z(zc: np.ndarray, yx: np.ndarray, weights: np.ndarray, z: np.ndarray) -> np.ndarray:
@@ -1573,9 +1645,10 @@ def analyse(volume: Volume, regions: Regions, settings: dict[str, Any] | None = 
         auto = find_rod_inserts(volume, regions, s, phantom=phantom_found())
     inserts = user + auto
     allowed = _body_footprint(volume, regions, inserts, s) if auto and regions.has_body else None
-    for ins in inserts:
-        measurements.append(measure_circular_edge(volume, ins, s, allowed=allowed if ins.source == "auto" else None,
-                                                  others=inserts))
+    if user:
+        measurements.extend(measure_circular_edges(volume, user, s, allowed=None, others=inserts))
+    if auto:
+        measurements.extend(measure_circular_edges(volume, auto, s, allowed=allowed, others=inserts))
     want_skin = s["skin_edge"] == "always" or (s["skin_edge"] == "auto" and not measurements)
     if want_skin and not (s["skin_edge"] == "auto" and phantom_found()[0].found):
         skin = skin_edge_ttf(volume, regions, s)

@@ -430,3 +430,31 @@ def test_inserts_of_a_run_at_once_equal_one_by_one(monkeypatch, near_border):
         assert a.centre_yx_vox == pytest.approx(b.centre_yx_vox, abs=1e-9)
         assert a.radius_mm == pytest.approx(b.radius_mm, abs=1e-9)
         np.testing.assert_array_equal(a.pixels[3], b.pixels[3])
+
+
+def test_centres_of_several_stacks_refined_together_equal_each_alone():
+    """Run images of several rods (own starts, radii, CT numbers; one stack of a
+    constant image that cannot be refined) iterated together reach each image's own
+    fixed point: the centres refine_circle_centres gives each stack alone, to 1e-9 px."""
+    from reconaudit.checker.analyses._edges import refine_circle_centres, refine_circle_centres_of_stacks
+
+    stacks, starts, radii, ins, outs, reaches = [], [], [], [], [], []
+    for k, (hu, r_mm, cy, cx) in enumerate([(900.0, 6.0, 40.3, 39.6), (-1000.0, 4.0, 41.1, 38.2), (120.0, 9.0, 39.4, 40.8)]):
+        vol, _ = disc_stack(n=80, nz=3, radius_mm=r_mm, contrast=hu, noise=8.0, seed=k, cy=cy, cx=cx)
+        stacks.append(vol.hu.astype(np.float64))
+        starts.append((round(cy) + 0.4, round(cx) - 0.3))
+        radii.append(r_mm / PX)
+        ins.append(hu)
+        outs.append(0.0)
+        reaches.append(min(3.0 / PX, 0.5 * r_mm / PX + 1))
+    stacks.append(np.zeros((2, 80, 80)))
+    starts.append((40.0, 40.0))
+    radii.append(10.0)
+    ins.append(0.0)
+    outs.append(0.0)
+    reaches.append(3.0)
+    together = refine_circle_centres_of_stacks(stacks, starts, radii, ins, outs, reaches)
+    for j in range(len(stacks)):
+        alone = refine_circle_centres(stacks[j], starts[j], radii[j], ins[j], outs[j], reach_px=reaches[j])
+        np.testing.assert_allclose(together[j], alone, atol=1e-9, rtol=0)
+    assert np.abs(together[0] - np.array([40.3, 39.6])).max() < 0.05  # the disc's centre, not the start
