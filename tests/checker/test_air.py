@@ -470,3 +470,25 @@ def test_join_overlapping_boxes_leaves_none_overlapping():
     boxes = [b((0, 5), (0, 5), (0, 5)), b((20, 25), (0, 5), (0, 5)), b((4, 8), (4, 8), (4, 8)), b((7, 12), (7, 9), (0, 3))]
     out = air._join_overlapping(boxes)
     assert b((0, 12), (0, 9), (0, 8)) in out and b((20, 25), (0, 5), (0, 5)) in out and len(out) == 2
+
+
+def test_dense_empty_and_zero_int32_arrays_behave_as_numpy_arrays():
+    """Arrays on large pages (written whole) and the label volume's zero map are plain
+    writable numpy arrays of the asked shape and dtype; the zero map reads zero before
+    any write; small arrays come from np.empty; subtract_scaled equals a - float32(k) * b
+    value for value."""
+    big = air.dense_empty((3, 700, 1000), np.float32)  # 8.4 MB: a map of its own
+    assert big.shape == (3, 700, 1000) and big.dtype == np.float32 and big.flags.writeable
+    big[...] = 2.5
+    assert float(big.sum(dtype=np.float64)) == 2.5 * big.size
+    small = air.dense_empty((4, 5), np.bool_)
+    assert small.shape == (4, 5) and small.dtype == np.bool_
+    labels = air.zero_int32((6, 300, 400))
+    assert labels.dtype == np.int32 and not labels.any()
+    labels[2, 10:20, 30:40] = 7
+    assert int(labels.sum()) == 7 * 100
+    rng = np.random.default_rng(2)
+    a = rng.normal(0, 100, (70, 40, 50)).astype(np.float32)
+    b = rng.integers(0, 32, a.shape).astype(np.float32)
+    want = a - np.float32(-1000.03) * b
+    assert np.array_equal(air.subtract_scaled(a, b, -1000.03), want)
