@@ -492,3 +492,32 @@ def test_dense_empty_and_zero_int32_arrays_behave_as_numpy_arrays():
     b = rng.integers(0, 32, a.shape).astype(np.float32)
     want = a - np.float32(-1000.03) * b
     assert np.array_equal(air.subtract_scaled(a, b, -1000.03), want)
+
+
+@pytest.mark.parametrize(
+    "where, centre_from_ends",
+    [("across the cut between the two threads' slabs", None), ("near the first slice", 9.0),
+     ("near the last slice", -9.0), ("6 mm from the body", "body")],
+)
+def test_faint_ellipsoid_found_on_one_and_two_threads(monkeypatch, where, centre_from_ends):
+    """A faint structure, a 14 mm ball at -920 HU (80 HU above the air, 6.7 times the
+    12 HU noise) is found, isolated and flagged, at each of several places: across the
+    slice where the coarse grid is cut between two threads (slice 24 of 48), 9 mm from
+    either end of the scan (its edge 2 mm inside), and 6 mm from the body; the same
+    structure on one and on two threads. Its centroid lies within 2 mm of the ball's
+    centre and its volume within 25 % of the ball's 1437 mm3 (4/3 pi 7^3, analytic)."""
+    nz, dz = 48, 1.25
+    cz = {None: 30.0, 9.0: 9.0, -9.0: (nz - 1) * dz - 9.0, "body": 30.0}[centre_from_ends]
+    centre = (cz, 13.5, 60.0) if centre_from_ends == "body" else (cz, 12.0, 45.0)
+    vol = _armed_torso(nz=nz, balls=((centre, 7.0, -920.0),))
+    regions = find_regions(vol)
+    found = {}
+    for threads in (1, 2):
+        monkeypatch.setattr(air, "AIR_THREADS", threads)
+        found[threads] = air.analyse(vol, regions).record["structures"]
+    assert found[1] == found[2], where
+    flagged = [st for st in found[2] if st["flagged"]]
+    assert len(flagged) == 1 and flagged[0]["kind"] == "isolated", where
+    got = np.array(flagged[0]["centroid_zyx_vox"]) * np.array(vol.spacing_mm)
+    assert np.linalg.norm(got - np.array(centre)) <= 2.0, where
+    assert abs(flagged[0]["volume_mm3"] - 4.0 / 3.0 * np.pi * 7.0**3) <= 0.25 * 1437.0, where
