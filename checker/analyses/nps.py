@@ -974,7 +974,8 @@ def _remove_fit_in_place(stack: np.ndarray, method: str) -> tuple[np.ndarray, np
     The fit is the projection on the orthonormal products P_i(y) Q_j(x), i + j <= order,
     of :func:`detrend_rois` (the same least-squares fit): the coefficients of a few ROIs
     at a time are one matrix product with those basis images, and so is the fit
-    (:data:`_FIT_ROIS` ROIs a call keeps each product small enough for one BLAS thread).
+    (:func:`_fit_rois_per_call` ROIs a call keep each product small enough for one BLAS
+    thread).
 
     Returns
     -------
@@ -995,17 +996,28 @@ def _remove_fit_in_place(stack: np.ndarray, method: str) -> tuple[np.ndarray, np
         return stack, energy
     basis = _fit_basis(ny, nx, 1 if method == "poly1" else 2)
     flat = stack.reshape(n, ny * nx)
-    for start in range(0, n, _FIT_ROIS):
-        part = flat[start : start + _FIT_ROIS]
+    step = _fit_rois_per_call(basis.shape[0], ny * nx)
+    for start in range(0, n, step):
+        part = flat[start : start + step]
         coef = part @ basis.T
         part -= coef @ basis
-        energy[start : start + _FIT_ROIS] = np.square(coef, dtype=np.float64).sum(axis=1)
+        energy[start : start + step] = np.square(coef, dtype=np.float64).sum(axis=1)
     return stack, energy
 
 
-#: ROIs whose polynomial fit is one matrix product (small products stay on one thread:
-#: thin products on many BLAS threads stall on a loaded machine).
-_FIT_ROIS = 8
+#: Largest product M N K of one fit's matrix product (ROIs x pixels x basis images):
+#: OpenBLAS keeps a GEMM on one thread below about twice 2^18 multiply-adds (from
+#: memory of its threading rule; 1.5 x 2^18 leaves a margin). Thin products on several
+#: threads stall on a loaded machine: 144 ROIs of 64 px took 0.9 ms at 16 a call, 1.5 ms
+#: at 8 and 90 ms at 32 (measured here under load).
+_FIT_PRODUCT = 3 << 17
+
+
+def _fit_rois_per_call(terms: int, pixels: int) -> int:
+    """ROIs whose fit is one matrix product: as many as keep M N K at most
+    :data:`_FIT_PRODUCT`, at least one (16 ROIs of 64 x 64 pixels and 6 terms)."""
+    return max(1, _FIT_PRODUCT // (terms * pixels))
+
 
 
 @lru_cache(maxsize=16)

@@ -335,3 +335,16 @@ def test_phantom_rois_on_the_middle_sixteen_slices_keep_noise_and_texture():
     assert not repeat["flagged"], repeat["texture_vs_baseline"]
     blurred = run(water_cylinder(nz=40, blur_px=1.2, seed=5), baseline=recs[0]).record
     assert blurred["flagged"] and blurred["texture_vs_baseline"]["f_av_ratio"] < 0.9
+
+
+def test_fit_removal_over_several_products_equals_detrend():
+    """40 ROIs of 64 x 64 px take three matrix products of at most 16 ROIs (poly2); the
+    residuals equal detrend_rois's (float64 reference) for every ROI, the last partial
+    product included."""
+    assert nps._fit_rois_per_call(6, 64 * 64) == 16
+    rng = np.random.default_rng(41)
+    yy, xx = np.mgrid[:64, :64]
+    stack = rng.normal(0.0, 10.0, (40, 64, 64)) + 0.2 * xx - 0.01 * (yy - 30.0) ** 2
+    stack -= stack.mean(axis=(1, 2), keepdims=True)
+    res, _ = nps._remove_fit_in_place(stack.astype(np.float32), "poly2")
+    assert np.abs(res - nps.detrend_rois(stack, "poly2")).max() < 1e-3
