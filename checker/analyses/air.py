@@ -65,9 +65,9 @@ Threads: the work splits into parts that share nothing but their inputs, run on
 ``AIR_THREADS`` threads (default: two, or one on a single core; the batch sets it to a
 worker's thread budget; 1 runs everything in the calling thread, in the same order):
 the coarse grid (step 0) over slabs of slices cut on whole layers of blocks; steps 2-4
-in two lanes (:func:`scale_structures`), the finest scale's map and hysteresis in one,
-the coarser scales' grids, maps and hysteresis and then the body's noise in the other,
-the scales then combined in order; the structures' full-resolution refinement one
+in lanes (:func:`scale_structures`): the finest scale's map and hysteresis, the coarser
+scales' grids, maps and hysteresis, and the body's noise slice by slice (taken by
+whichever thread is free), the scales then combined in order; the structures' full-resolution refinement one
 structure per task (:func:`map_threads`); the label overlay over ranges of rows (each a
 run of its memory). Each part writes only what it owns, so every value is the
 single-thread one.
@@ -326,26 +326,45 @@ def body_noise_hu(volume: Volume, regions: Regions, max_slices: int = 4) -> floa
     .. [1] Christianson O, et al. Automated technique to measure noise in clinical CT
            examinations. AJR 205(1), 2015.
     """
-    hu = volume.hu
+    return body_noise_mode([body_slice_local_sd(volume, regions, int(z)) for z in body_noise_slices(volume, max_slices)])
+
+
+def body_noise_slices(volume: Volume, max_slices: int = 4) -> np.ndarray:
+    """The up to ``max_slices`` evenly spaced slices of :func:`body_noise_hu`."""
+    nz = volume.hu.shape[0]
+    return np.unique(np.linspace(0, nz - 1, min(max_slices, nz)).round().astype(int))
+
+
+def body_slice_local_sd(volume: Volume, regions: Regions, z: int) -> np.ndarray | None:
+    """The local SDs of :func:`body_noise_hu` on slice ``z`` (None when it has too little
+    soft tissue); each slice on its own, so slices can be worked side by side."""
     dy, dx = volume.spacing_mm[1:]
     size = max(3, int(round(6.0 / min(dy, dx))) | 1)
     erode = max(1, int(round(6.0 / min(dy, dx))))
-    zs = np.unique(np.linspace(0, hu.shape[0] - 1, min(max_slices, hu.shape[0])).round().astype(int))
-    sds = []
-    for z in zs:
-        box = _padded_box(regions.body[z], size + erode + 2)
-        if box is None:
-            continue
-        inner = eroded_in_plane(regions.body[z][box], erode)
-        img = hu[z][box].astype(np.float32)
-        tissue = inner & (img > -100) & (img < 200)
-        if tissue.sum() < 50:
-            continue
-        mean = ndimage.uniform_filter(img, size)
-        sq = ndimage.uniform_filter(img * img, size)
-        sd = np.sqrt(np.clip(sq - mean * mean, 0, None))
-        ok = eroded_in_plane(tissue, size // 2)
-        sds.append(sd[ok if ok.sum() >= 20 else tissue])
+    box = _padded_box(regions.body[z], size + erode + 2)
+    if box is None:
+        return None
+    inner = eroded_in_plane(regions.body[z][box], erode)
+    img = volume.hu[z][box].astype(np.float32)
+    tissue = inner & (img > -100) & (img < 200)
+    if tissue.sum() < 50:
+        return None
+    mean = ndimage.uniform_filter(img, size)
+    sq = ndimage.uniform_filter(img * img, size)
+    sd = np.sqrt(np.clip(sq - mean * mean, 0, None))
+    ok = eroded_in_plane(tissue, size // 2)
+    return sd[ok if ok.sum() >= 20 else tissue]
+
+
+def body_noise_mode(per_slice: list[np.ndarray | None]) -> float:
+    """The mode of the histogram of the local SDs of the slices (in slice order; None
+    for a slice left out); NaN when there are none.
+
+    References
+    ----------
+    .. [1] Christianson O, et al. AJR 205(1), 2015.
+    """
+    sds = [sd for sd in per_slice if sd is not None]
     if not sds:
         return float("nan")
     sd = np.concatenate(sds)
@@ -1053,16 +1072,16 @@ def scale_structures(
     s: dict[str, Any],
     noise_floor_hu: float,
     nz: int,
-    side: Callable[[], Any] | None = None,
-) -> tuple[list[ScaleMap], list[tuple[np.ndarray, dict[int, float], list[tuple[slice, ...] | None]]], Any]:
+    side: list[Callable[[], Any]] = (),
+) -> tuple[list[ScaleMap], list[tuple[np.ndarray, dict[int, float], list[tuple[slice, ...] | None]]], list[Any]]:
     """The maps of :func:`matched_filter_scales` with the structures of each
-    (:func:`hysteresis_structures_boxes`), and the result of ``side()`` (None without it).
+    (:func:`hysteresis_structures_boxes`), and the results of the calls ``side``.
 
-    Two lanes of work that share nothing but their inputs, on ``AIR_THREADS`` threads
-    (one after the other on one): the finest scale (its grid is the coarse grid itself),
-    and the coarser scales' grids (:func:`_pyramid`), maps and structures, then
-    ``side``. The maps and structures are those made one scale after another, value for
-    value.
+    Lanes of work that share nothing but their inputs, on ``AIR_THREADS`` threads (one
+    after the other on one, :func:`run_lanes`): the finest scale (its grid is the coarse
+    grid itself), the coarser scales' grids (:func:`_pyramid`), maps and structures,
+    then each of ``side`` (small tasks taken by whichever thread is free). The maps and
+    structures are those made one scale after another, value for value.
     """
     levels = scale_levels(base, spacing_mm, s["scales_mm"], nz)
     rels = [rel for rel, _ in levels]
@@ -1076,23 +1095,25 @@ def scale_structures(
         (S, C), = _pyramid(sums, counts, rels[:1])
         return [one(0, S, C)]
 
-    def coarser() -> tuple[list, Any]:
+    def coarser() -> list:
         grids = _pyramid(sums, counts, rels[1:]) if rels[0] == (1, 1, 1) else _pyramid(sums, counts, rels)[1:]
         out = []
         for k in range(len(grids)):
             (S, C), grids[k] = grids[k], None  # the map owns its grid (filtered in place)
             out.append(one(k + 1, S, C))
-        return out, (side() if side is not None else None)
+        return out
 
-    first, (rest, side_result) = run_lanes([finest, coarser])
+    first, rest, *side_results = run_lanes([finest, coarser, *side])
     done = [f for f in first + rest if f is not None]
-    return [f[0] for f in done], [f[1] for f in done], side_result
+    return [f[0] for f in done], [f[1] for f in done], side_results
 
 
 def run_lanes(lanes: list[Callable[[], Any]], threads: int | None = None) -> list[Any]:
     """The results of the calls ``lanes``, in order, on at most ``threads`` threads
-    (``AIR_THREADS`` unless given); the calling thread runs the first lane. Each lane must
-    write only what it owns. An exception in a lane is raised here.
+    (``AIR_THREADS`` unless given). The calling thread runs the first lane while the
+    others take the rest from the front; then it takes, from the back, those not yet
+    begun (so the small last ones go to whichever thread is free). Each lane must write
+    only what it owns. An exception in a lane is raised here.
 
     References
     ----------
@@ -1103,8 +1124,16 @@ def run_lanes(lanes: list[Callable[[], Any]], threads: int | None = None) -> lis
         return [lane() for lane in lanes]
     with ThreadPoolExecutor(max_workers=min(n, len(lanes)) - 1) as pool:
         futures = [pool.submit(lane) for lane in lanes[1:]]
-        first = lanes[0]()
-        return [first] + [f.result() for f in futures]
+        results: list[Any] = [lanes[0]()] + [None] * len(futures)
+        done_here = set()
+        for k in range(len(futures) - 1, -1, -1):
+            if futures[k].cancel():  # not begun: run it here
+                results[k + 1] = lanes[k + 1]()
+                done_here.add(k)
+        for k, f in enumerate(futures):
+            if k not in done_here:
+                results[k + 1] = f.result()
+        return results
 
 
 def _pyramid(
@@ -1979,10 +2008,11 @@ def analyse(volume: Volume, regions: Regions, settings: dict[str, Any] | None = 
     if not math.isfinite(mean):
         return AnalysisResult.not_applicable(NAME, "the air holds no finite CT numbers")
     subtract_scaled(sums, counts, mean)  # contrast above the air, summed over each block's air
-    maps, per_scale, body_noise = scale_structures(
+    maps, per_scale, body_sds = scale_structures(
         sums, counts, base, volume.spacing_mm, s, float(s["min_air_noise_hu"]), hu.shape[0],
-        side=lambda: body_noise_hu(volume, regions),
+        side=[functools.partial(body_slice_local_sd, volume, regions, int(z)) for z in body_noise_slices(volume)],
     )
+    body_noise = body_noise_mode(body_sds)
     findings = _air_findings(mean, noise, body_noise, s)
     mode = s["single_slice_mode"]
     ctx = Context(

@@ -1,6 +1,7 @@
 """Unit tests of the air analysis: bad input, settings, record and overlays, findings."""
 from __future__ import annotations
 
+import functools
 import json
 
 import numpy as np
@@ -358,6 +359,8 @@ def test_run_lanes_and_map_threads_keep_order_and_raise_errors():
         got = air.run_lanes([lambda: threading.get_ident(), lambda: "b", lambda: 3], threads=threads)
         assert got[0] == caller and got[1:] == ["b", 3]
         assert air.map_threads(lambda x: x * x, list(range(9)), threads=threads) == [x * x for x in range(9)]
+        many = [functools.partial(lambda k: (k, sum(range(20000 * (k % 3)))), k) for k in range(12)]
+        assert air.run_lanes(many, threads=threads) == [lane() for lane in many]  # taken from front and back
 
         def fails():
             raise ValueError("lane failed")
