@@ -256,25 +256,33 @@ def find_rod_inserts(volume: Volume, regions: Regions, settings: dict[str, Any] 
         zs = _search_slices(z0, z1)
         centre = phantom.centre_yx_vox[kmid] * factor
         radius = phantom.radius_vox[kmid] * factor
-        median_hu = float(np.nanmedian(phantom.median_hu[k0 : k1 + 1]))
+        median_hu = _finite_median(phantom.median_hu[k0 : k1 + 1])
         (by0, bx0), box = _box_about(centre, 0.92 * radius + int(4.0 / px + 0.5) + 1, volume.shape[1:])
         coarse = volume.hu[zs, box[0].start : box[0].stop : f, box[1].start : box[1].stop : f].mean(axis=0)
         smooth = ndimage.gaussian_filter(coarse, 1.0 / (px * f)) - median_hu
         inner = _disc(coarse.shape, ((centre[0] - by0) / f, (centre[1] - bx0) / f), 0.92 * radius / f)
         candidates = []
-        for sign in (1.0, -1.0):
-            lab, _ = ndimage.label((sign * smooth > float(s["min_contrast_hu"])) & inner)
-            for i, sl in enumerate(ndimage.find_objects(lab), start=1):
-                if sl is None or not _may_be_insert(lab[sl] == i, f, px, s):
-                    continue
-                comp_yx = np.nonzero(lab[sl] == i)
-                at = (comp_yx[0] + sl[0].start) * f + by0, (comp_yx[1] + sl[1].start) * f + bx0
-                candidates.append((at, sign))
+        limit = float(s["min_contrast_hu"])
+        # both signs labelled at once, as two planes never connected to each other (the
+        # labels of the brighter plane come first, in the order of its own labelling)
+        lab, _ = ndimage.label(np.stack([smooth > limit, -smooth > limit]) & inner, structure=_IN_PLANE)
+        for i, sl in enumerate(ndimage.find_objects(lab), start=1):
+            if sl is None or not _may_be_insert(lab[sl][0] == i, f, px, s):
+                continue
+            comp_yx = np.nonzero(lab[sl][0] == i)
+            at = (comp_yx[0] + sl[1].start) * f + by0, (comp_yx[1] + sl[2].start) * f + bx0
+            candidates.append((at, 1.0 if sl[0].start == 0 else -1.0))
         found = _inserts_at_full_resolution(volume.hu, zs, candidates, median_hu, centre, radius, mid, px, s,
                                             window=(z0 - step, z1 + step))
         inserts.extend(ins for ins in found if ins is not None)
     inserts.sort(key=lambda r: (r.z0, r.centre_yx_vox[0], r.centre_yx_vox[1]))
     return inserts
+
+
+def _finite_median(values: np.ndarray) -> float:
+    """``np.nanmedian`` of a small 1-D array (NaN when no value is finite), from one sort."""
+    v = np.asarray(values, dtype=float)
+    return _edges._median(v[np.isfinite(v)])
 
 
 def _search_slices(z0: int, z1: int) -> slice:
@@ -336,6 +344,13 @@ def _insert_at_full_resolution(hu: np.ndarray, zs: slice, at: tuple[np.ndarray, 
     return _insert_from_component(hu, dev[sl], lab[sl] == j, full, mid, px, s, window=window)
 
 
+#: Labelling structure of a stack of (y, x) images: 4-connected within each image, never
+#: across images.
+_IN_PLANE = np.zeros((3, 3, 3), dtype=bool)
+_IN_PLANE[1] = ndimage.generate_binary_structure(2, 1)
+_IN_PLANE.flags.writeable = False
+
+
 def _inserts_at_full_resolution(hu: np.ndarray, zs: slice, candidates: Sequence[tuple[tuple[np.ndarray, np.ndarray], float]],
                                 median_hu: float, centre: Sequence[float], radius: float, mid: int, px: float,
                                 s: dict[str, Any], window: tuple[int, int] | None = None) -> list[Insert | None]:
@@ -371,9 +386,7 @@ def _inserts_at_full_resolution(hu: np.ndarray, zs: slice, candidates: Sequence[
     yy = np.arange(h, dtype=float)[None, :, None] - (centre[0] - origin[:, 0, None, None])
     xx = np.arange(w, dtype=float)[None, None, :] - (centre[1] - origin[:, 1, None, None])
     inner = yy * yy + xx * xx <= (0.92 * radius) ** 2
-    plane = np.zeros((3, 3, 3), dtype=bool)
-    plane[1] = ndimage.generate_binary_structure(2, 1)
-    lab, _ = ndimage.label((dev > float(s["min_contrast_hu"])) & inner, structure=plane)
+    lab, _ = ndimage.label((dev > float(s["min_contrast_hu"])) & inner, structure=_IN_PLANE)
     winners = np.zeros(len(candidates), dtype=lab.dtype)
     for k, (at, _) in enumerate(candidates):
         hits = lab[k, at[0] - origin[k, 0], at[1] - origin[k, 1]]
@@ -425,9 +438,7 @@ def _discs_of_components(dev: np.ndarray, comps: np.ndarray) -> tuple[np.ndarray
 def _fill_holes_each(masks: np.ndarray) -> np.ndarray:
     """:func:`_fill_holes` of every (y, x) mask of a stack at once, from one labelling
     (4-connected within each mask only, the border of each mask counting as outside)."""
-    plane = np.zeros((3, 3, 3), dtype=bool)
-    plane[1] = ndimage.generate_binary_structure(2, 1)
-    lab, n = ndimage.label(~masks, structure=plane)
+    lab, n = ndimage.label(~masks, structure=_IN_PLANE)
     outside = np.zeros(n + 1, dtype=bool)
     outside[lab[:, 0]] = outside[lab[:, -1]] = outside[lab[:, :, 0]] = outside[lab[:, :, -1]] = True
     outside[0] = False
@@ -806,7 +817,7 @@ def _measure_rod(volume: Volume, insert: Insert, y0: int, x0: int, crop: np.ndar
         half_mm = max(reach_mm, px)
     esf, radius_mm = _centred_esf(pool, free, insert.radius_mm, half_mm, px * float(s["bin_fraction"]))
     contrast, noise = _contrast_and_noise(crop, pool, free, radius_mm, half_mm, px)
-    mean_yx = np.asarray(centres, dtype=float).mean(axis=0)
+    mean_yx = centres.mean(axis=0)
     centre_zyx = (0.5 * (insert.z0 + insert.z1), float(mean_yx[0]) + y0, float(mean_yx[1]) + x0)
     extra = {"radius_mm": round(radius_mm, 3), "source": insert.source}
     return _edge_result("circular", volume, esf, contrast, ri.inside_hu if contrast else float("nan"), noise,
@@ -885,7 +896,7 @@ class PooledSlices:
         return slice(start, start + int(self.n_slices[g]))
 
 
-def _pool_slices(crop: np.ndarray, centres: Sequence[tuple[float, float]], spacing_yx_mm: tuple[float, float],
+def _pool_slices(crop: np.ndarray, centres: Sequence[tuple[float, float]] | np.ndarray, spacing_yx_mm: tuple[float, float],
                  bin_fraction: float, *, total: np.ndarray | None = None) -> PooledSlices:
     """Pool consecutive slices whose centres lie within ``POOL_TOLERANCE_BINS`` ESF bins
     of each other (so within that of their group's centre, the mean of theirs).
@@ -1021,17 +1032,15 @@ def _run_images(crop: np.ndarray, centre: tuple[float, float], r_px: float, px: 
                      inside_hu, outside_hu, float(reach))
 
 
-def _centre_line(ri: RunImages, per: np.ndarray, nz: int) -> list[tuple[float, float]]:
-    """Every slice's centre from the run centres ``per`` (runs, 2): a straight line along
-    z through them (weighted by their slice counts), or each run's centre for its slices
-    when there is one run."""
+def _centre_line(ri: RunImages, per: np.ndarray, nz: int) -> np.ndarray:
+    """Every slice's centre (nz, 2) from the run centres ``per`` (runs, 2): a straight
+    line along z through them (weighted by their slice counts), or each run's centre for
+    its slices when there is one run."""
     if len(per) >= 2:
         z = np.arange(nz, dtype=float)
         mid_z = np.array([float(r[0]) for r in ri.runs]) + 0.5 * (ri.sizes - 1.0)  # each run's mean slice, exactly
-        fit = _line_along_z(mid_z, per, ri.sizes, z)
-        return list(zip(fit[:, 0].tolist(), fit[:, 1].tolist()))
-    per_slice = np.concatenate([np.repeat(p[None], r.size, axis=0) for p, r in zip(per, ri.runs)])
-    return [tuple(p) for p in per_slice]
+        return _line_along_z(mid_z, per, ri.sizes, z)
+    return np.concatenate([np.repeat(p[None], r.size, axis=0) for p, r in zip(per, ri.runs)])
 
 
 def _refine_centres(crop: np.ndarray, centre: tuple[float, float], r_px: float, px: float,
@@ -1060,7 +1069,8 @@ def _refine_centres(crop: np.ndarray, centre: tuple[float, float], r_px: float, 
     ri = _run_images(crop, centre, r_px, px, groups)
     (per,) = _edges.refine_circle_centres_of_stacks([ri.images], [ri.start], [ri.r_px], [ri.inside_hu],
                                                    [ri.outside_hu], [ri.reach_px])
-    return _centre_line(ri, per, crop.shape[0]), ri.inside_hu, ri.outside_hu, ri.total
+    line = _centre_line(ri, per, crop.shape[0])
+    return [(float(y), float(x)) for y, x in line], ri.inside_hu, ri.outside_hu, ri.total
 
 
 def _run_sums(crop: np.ndarray, runs: Sequence[np.ndarray]) -> np.ndarray:
