@@ -843,8 +843,8 @@ def _centred_esf(pool: PooledSlices, free: np.ndarray, radius_mm: float, half_mm
     ----------
     Richard et al., Med Phys 39(7) 2012 (radial ESF about the edge radius).
     """
-    acc = _edges.EsfAccumulator(bin_mm=bin_mm, lo_mm=-half_mm, hi_mm=half_mm)
-    n, extra = acc.n_bins, int(math.ceil(0.5 * half_mm / bin_mm))
+    n = max(int(math.floor((half_mm - (-half_mm)) / bin_mm)), 1)  # the bins of the range, as EsfAccumulator counts them
+    extra = int(math.ceil(0.5 * half_mm / bin_mm))
     wide = _edges.EsfAccumulator(bin_mm=bin_mm, lo_mm=-half_mm - extra * bin_mm,
                                  hi_mm=-half_mm + (n + extra) * bin_mm)
     near = free[None] & (np.abs(pool.dist - radius_mm) < 1.5 * half_mm)
@@ -1678,7 +1678,8 @@ def _body_footprint(volume: Volume, regions: Regions, inserts: Sequence[Insert],
     """(y, x) pixels inside the body on some slice of the inserts' slices, computed only
     over each rod's crop (the only place :func:`measure_circular_edge` looks); False
     elsewhere. A rod's ESF reads only its own slices, so slices outside every insert's
-    range are not looked at."""
+    range are not looked at; a crop inside the body on the middle slice is inside it
+    whatever the other slices hold, so they are read only for a crop that is not."""
     px = 0.5 * (volume.spacing_mm[1] + volume.spacing_mm[2])
     out = np.zeros(volume.shape[1:], dtype=bool)
     if not inserts:
@@ -1687,7 +1688,10 @@ def _body_footprint(volume: Volume, regions: Regions, inserts: Sequence[Insert],
     for ins in inserts:
         half = ins.radius_mm / px + min(float(s["esf_half_range_mm"]), 0.9 * ins.radius_mm) / px + 3
         box = _box_about(ins.centre_yx_vox, half, volume.shape[1:])[1]
-        out[box] |= regions.body[z0 : z1 + 1, box[0], box[1]].any(axis=0)
+        # a box inside the body on one of the slices is inside it on some slice everywhere:
+        # the union over the slices is then the whole box without reading the others
+        one = regions.body[(z0 + z1) // 2, box[0], box[1]]
+        out[box] |= True if one.all() else regions.body[z0 : z1 + 1, box[0], box[1]].any(axis=0)
     return out
 
 

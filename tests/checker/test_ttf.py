@@ -458,3 +458,31 @@ def test_centres_of_several_stacks_refined_together_equal_each_alone():
         alone = refine_circle_centres(stacks[j], starts[j], radii[j], ins[j], outs[j], reach_px=reaches[j])
         np.testing.assert_allclose(together[j], alone, atol=1e-9, rtol=0)
     assert np.abs(together[0] - np.array([40.3, 39.6])).max() < 0.05  # the disc's centre, not the start
+
+
+def test_body_footprint_equals_the_union_over_the_rods_slices():
+    """The pixels a rod's ESF may use are those inside the body on some slice of the
+    rods' slices: reading only the middle slice for a crop wholly inside the body there
+    gives the same mask as the union over every slice (case: a body that shrinks along
+    z so that one rod's crop leaves it on the middle slice)."""
+    from reconaudit.checker.regions import Regions
+
+    nz, n = 9, 120
+    hu = np.zeros((nz, n, n), dtype=np.float32)
+    vol = Volume.from_array(hu, (1.0, PX, PX))
+    yy, xx = np.indices((n, n))
+    body = np.stack([np.hypot(yy - 60, xx - 60) <= 55 - 3 * k for k in range(nz)])
+    regions = Regions(fov=np.ones((n, n), dtype=bool), body=body, table=np.zeros_like(body),
+                      air=~body, fov_center_yx_vox=(60.0, 60.0), fov_radius_vox=60.0, fov_is_circle=True,
+                      body_centroid_zyx_vox=(4.0, 60.0, 60.0))
+    inserts = [ttf.Insert(1, 7, (60.0, 60.0), 5.0, "auto"), ttf.Insert(1, 7, (60.0, 22.0), 5.0, "auto")]
+    got = ttf._body_footprint(vol, regions, inserts, ttf.DEFAULTS)
+    want = np.zeros((n, n), dtype=bool)
+    for ins in inserts:
+        half = ins.radius_mm / PX + min(ttf.DEFAULTS["esf_half_range_mm"], 0.9 * ins.radius_mm) / PX + 3
+        box = ttf._box_about(ins.centre_yx_vox, half, (n, n))[1]
+        want[box] |= body[1:8, box[0], box[1]].any(axis=0)
+    np.testing.assert_array_equal(got, want)
+    assert want.any() and not want.all()
+    box = ttf._box_about((60.0, 22.0), 5.0 / PX + 4.5 / PX + 3, (n, n))[1]
+    assert not body[4][box].all() and not want[box].all()  # the second crop leaves the body
