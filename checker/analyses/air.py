@@ -1539,12 +1539,12 @@ def combine_scales_boxes(
             existing = existing[existing > 0]
             if existing.size and any(quality[int(e)] >= well_measured_snr for e in existing):
                 continue
-            if existing.size:
-                gone = np.isin(combined, existing)
-                combined[gone] = 0
-                for e in existing:
-                    quality.pop(int(e))
-                    boxes[int(e) - 1] = None
+            for e in existing:  # each lies inside its box: cleared there only
+                e = int(e)
+                part = combined[boxes[e - 1]]
+                part[part == e] = 0
+                quality.pop(e)
+                boxes[e - 1] = None
             view = combined[sl]
             view[region] = next_id
             quality[next_id] = snr[lbl]

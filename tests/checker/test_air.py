@@ -524,3 +524,33 @@ def test_faint_ellipsoid_found_on_one_and_two_threads(monkeypatch, where, centre
     got = np.array(flagged[0]["centroid_zyx_vox"]) * np.array(vol.spacing_mm)
     assert np.linalg.norm(got - np.array(centre)) <= 2.0, where
     assert abs(flagged[0]["volume_mm3"] - 4.0 / 3.0 * np.pi * 7.0**3) <= 0.25 * 1437.0, where
+
+
+def test_poorly_measured_fine_structure_is_replaced_by_the_coarser_outline():
+    """A structure measured poorly at the fine scale (contrast-to-noise below 10 there)
+    and seen whole at a coarser scale is outlined at the coarser scale: its fine label is
+    cleared everywhere, the coarser region takes its place, and its box is dropped; a
+    well measured fine structure elsewhere is kept as it is."""
+    rng = np.random.default_rng(8)
+    fine_shape, coarse_shape = (40, 32, 32), (20, 16, 16)
+    zf = (0.3 * rng.standard_normal(fine_shape)).astype(np.float32)
+    zf[18:22, 14:18, 14:18] = 7.0  # faint at the fine scale (SNR 7 < 10)
+    zf[4:7, 3:6, 3:6] = 30.0  # well measured at the fine scale
+    zc = (0.3 * rng.standard_normal(coarse_shape)).astype(np.float32)
+    zc[8:12, 6:10, 6:10] = 20.0  # the same place, whole and larger, at the coarser scale
+    zc[2:3, 1:3, 1:3] = 20.0  # the well measured one seen again coarser: not replaced
+    ones_f, ones_c = np.ones(fine_shape, dtype=bool), np.ones(coarse_shape, dtype=bool)
+    fine = air.ScaleMap(1.5, (2, 4, 4), zf, ones_f, 0.0, 1.0, 5.0, 100.0, contrast_hu=zf)
+    coarse = air.ScaleMap(3.0, (4, 8, 8), zc, ones_c, 0.0, 1.0, 5.0, 100.0, contrast_hu=zc)
+    combined, base, boxes = air.combine_scales_boxes([fine, coarse], 2.0)
+    assert base == (2, 4, 4)
+    labels = set(np.unique(combined)) - {0}
+    assert len(labels) == 2
+    strong = int(combined[5, 4, 4])
+    outlined = int(combined[20, 16, 16])
+    assert strong and outlined and strong != outlined
+    assert boxes[outlined - 1] == (slice(16, 24), slice(12, 20), slice(12, 20))
+    assert np.all(combined[16:24, 12:20, 12:20] == outlined)
+    assert np.count_nonzero(combined == outlined) == 8 * 8 * 8
+    assert sum(b is None for b in boxes) == 1  # the faint fine label, replaced
+    assert boxes[strong - 1] == (slice(4, 7), slice(3, 6), slice(3, 6))
