@@ -67,10 +67,11 @@ worker's thread budget; 1 runs everything in the calling thread, in the same ord
 the coarse grid (step 0) over slabs of slices cut on whole layers of blocks; steps 2-4
 in lanes (:func:`scale_structures`): the finest scale's map and hysteresis, the coarser
 scales' grids, maps and hysteresis, and the body's noise slice by slice (taken by
-whichever thread is free), the scales then combined in order; the structures' full-resolution refinement one
-structure per task (:func:`map_threads`); the label overlay over ranges of rows (each a
-run of its memory). Each part writes only what it owns, so every value is the
-single-thread one.
+whichever thread is free), the scales then combined in order; the structures'
+full-resolution refinement one structure per task (:func:`map_threads`); the label
+overlay over ranges of rows (each a run of its memory). Each part writes only what it
+owns, so every value is the single-thread one. (The checker also runs analyses side by
+side; a batch worker with a budget of one thread sets ``AIR_THREADS`` to 1.)
 
 Pages: the large arrays written whole (the coarse grid, the finest map, the pyramid's
 sums, the level masks) are put on 2 MiB pages (:func:`dense_empty`), even where the
