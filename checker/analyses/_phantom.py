@@ -709,23 +709,22 @@ def _screened_disc_stats(
     radius_mm = r[first] * f * pixel_mm
     near = (radius_mm >= 0.8 * s["min_radius_mm"]) & (fill[first] >= s["min_fill"] - 0.05)
     passes = (radius_mm >= s["min_radius_mm"]) & (fill[first] >= s["min_fill"])
-    between, filled = [], []
-    for i, (a, b) in enumerate(zip(first[:-1], first[1:])):
-        if b == a + 1 or not (near[i] or near[i + 1]):
-            continue
-        gap = np.arange(a + 1, b)
-        if passes[i] and passes[i + 1] and _discs_agree(cy, cx, r, a, b):
-            filled.append(gap)
-        else:
-            between.append(gap)
-    if between:
-        measure(np.concatenate(between))
-    for gap in filled:
-        a, b = gap[0] - 1, gap[-1] + 1
-        t = (gap - a) / float(b - a)
+    a, b = first[:-1], first[1:]
+    agree = np.maximum(np.maximum(np.abs(cy[a] - cy[b]), np.abs(cx[a] - cx[b])), np.abs(r[a] - r[b])) <= _AGREE_GRID_PX
+    look = near[:-1] | near[1:]
+    fill_in = look & passes[:-1] & passes[1:] & agree
+    rest = np.setdiff1d(np.arange(nz), first, assume_unique=True)  # the slices between
+    pair = np.searchsorted(first, rest) - 1  # first[pair] < z < first[pair + 1]
+    between = rest[look[pair] & ~fill_in[pair]]
+    if between.size:
+        measure(between)
+    filled, pair = rest[fill_in[pair]], pair[fill_in[pair]]
+    if filled.size:
+        lo, hi = first[pair], first[pair + 1]
+        t = (filled - lo) / (hi - lo).astype(float)
         for v in (cy, cx, r):
-            v[gap] = (1.0 - t) * v[a] + t * v[b]
-        fill[gap] = min(fill[a], fill[b])
+            v[filled] = (1.0 - t) * v[lo] + t * v[hi]
+        fill[filled] = np.minimum(fill[lo], fill[hi])
     return masks, measured, cy, cx, r, fill
 
 
@@ -734,10 +733,36 @@ def _screened_disc_stats(
 _AGREE_GRID_PX = 0.5
 
 
-def _discs_agree(cy: np.ndarray, cx: np.ndarray, r: np.ndarray, a: int, b: int) -> bool:
-    """Slices ``a`` and ``b`` show the same disc: centres and radii within
-    :data:`_AGREE_GRID_PX` working pixels."""
-    return bool(max(abs(cy[a] - cy[b]), abs(cx[a] - cx[b]), abs(r[a] - r[b])) <= _AGREE_GRID_PX)
+def _water_and_inserts(
+    hu: np.ndarray, f: int, zs: np.ndarray, inner: _InnerDiscs, grid_mm: float, s: dict[str, float]
+) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """The water test and the insert test of slices ``zs`` (see the module docstring) on
+    the working grid of step ``f`` (pixels of ``grid_mm``) inside ``inner``'s box.
+
+    One strided read of the grid inside the box, then the finite check, the water
+    median and, on the slices that pass, the insert test.
+
+    Returns
+    -------
+    water : ndarray of bool (len(zs),)
+        Every inner pixel finite and the median within ``water_window_hu`` of 0 HU.
+    median : ndarray (len(zs),)
+        Median of the inner pixels (every fourth row and column of the grid).
+    inserts : ndarray of bool (len(zs),)
+        A water slice holding an insert.
+    """
+    rows = slice(inner.box[0].start * f, inner.box[0].stop * f)
+    cols = slice(inner.box[1].start * f, inner.box[1].stop * f)
+    img = _strided(hu, f, rows, cols, zs)
+    median = _medians_of(img, inner.every(4), masks_at_step=True)
+    water = _finite_in_discs(img, inner) & (np.abs(median) <= s["water_window_hu"])  # NaN fails
+    inserts = np.zeros(zs.size, dtype=bool)
+    if water.all():  # (no copies when every slice passes)
+        inserts = _insert_slices(img, inner, median, grid_mm, s)
+    elif water.any():
+        idx = np.flatnonzero(water)
+        inserts[idx] = _insert_slices(img[idx], inner.take(idx), median[idx], grid_mm, s)
+    return water, median, inserts
 
 
 def _find_phantom(volume: Volume, regions: Regions, s: dict[str, float]) -> Phantom:
@@ -755,18 +780,10 @@ def _find_phantom(volume: Volume, regions: Regions, s: dict[str, float]) -> Phan
         run = _as_slice(zs)  # evenly spaced slices (a phantom series: all of them) as a view
         inner = _InnerDiscs(body[zs if run is None else run], measured[zs], cy[zs], cx[zs],
                             s["inner_fraction"] * r[zs])
-        box = inner.box
-        rows = slice(box[0].start * f, box[0].stop * f)
-        img = _strided(volume.hu, f, rows, slice(box[1].start * f, box[1].stop * f), zs)
-        finite = _finite_in_discs(img, inner)
-        med = _medians_of(img, inner.every(4), masks_at_step=True)
-        keep = finite & (np.abs(med) <= s["water_window_hu"])  # NaN (no inner pixel) fails
-        if not keep.all():  # (no copies when every slice passes)
-            zs, inner, img, med = zs[keep], inner.take(keep), img[keep], med[keep]
+        keep, med, has = _water_and_inserts(volume.hu, f, zs, inner, pixel_mm * f, s)
+        zs, med, has = zs[keep], med[keep], has[keep]
         centre[zs] = np.stack([cy[zs] * f, cx[zs] * f], axis=1)
-        radius[zs], median[zs], on[zs] = r[zs] * f, med, True
-        if zs.size:
-            inserts[zs] = _insert_slices(img, inner, med, pixel_mm * f, s)
+        radius[zs], median[zs], on[zs], inserts[zs] = r[zs] * f, med, True, has
     reason = ""
     if not on.any():
         reason = (
