@@ -628,10 +628,10 @@ def _slices_of_rod(hu: np.ndarray, z: int, centre: tuple[float, float], r_px: fl
     def contrasts(k0: int, k1: int) -> np.ndarray:
         at = _place_in(pixels, k0, y0, x0, (k1 - k0, ny, nx))
         if at is None:
-            return np.einsum("ij,j->i", crop[k0:k1, iy, ix].astype(np.float64), w)  # no BLAS threads
+            return np.einsum("ij,j->i", crop[k0:k1, iy, ix], w)  # in float64 (w's type); no BLAS threads
         block = pixels[3]  # type: ignore[index]
         flat = block.reshape(block.shape[0], -1)[at[0] : at[0] + k1 - k0]
-        return np.einsum("ij,j->i", flat.take((iy + at[1]) * block.shape[2] + ix + at[2], axis=1).astype(np.float64), w)
+        return np.einsum("ij,j->i", flat.take((iy + at[1]) * block.shape[2] + ix + at[2], axis=1), w)
 
     nz = hu.shape[0]
     lo_w, hi_w = (z, min(z + chunk, nz) - 1) if window is None else window
