@@ -87,7 +87,11 @@ wraps past 180), or ``null``.
 
 Dominant directions: the two boundaries of a missing wedge (streaks of a missing wedge
 run along its boundary rays), then the local maxima of the profile above
-``peak_level``, strongest first, at most ``max_directions``.
+``peak_level``, strongest first, at most ``max_directions``. With a missing wedge the
+peaks are judged on the profile divided by its mean outside the wedge
+(:func:`level_outside_wedge`): the empty wedge lowers the mean of the whole profile, so
+every measured orientation sits above 1 (about 180 / (180 - width)) and noise bins would
+pass ``peak_level`` without any line energy of their own.
 
 Dense-object pairs (flagged slices only). Rays through two dense objects (metal) are
 starved and hardened most, which leaves a band along the line joining them (dark for
@@ -1203,7 +1207,7 @@ def missing_wedge(profile: np.ndarray, bin_deg: float, level: float, min_deg: fl
 
 
 #: how far (deg) outside a wedge's half-level crossing its boundary streak is looked for
-BOUNDARY_SEARCH_DEG = 8.0
+BOUNDARY_SEARCH_DEG = 10.0
 #: the least height (isotropic level = 1) of a boundary streak peak
 BOUNDARY_PEAK_MIN = 1.2
 
@@ -1280,10 +1284,26 @@ def dominant_angles(profile: np.ndarray, wedge: dict[str, float] | None, cfg: di
     for angle in pair_angles or []:
         if all(angle_distance(angle, c) > 2.5 * bin_deg for c in chosen):
             chosen.append(angle)
-    for angle, _ in profile_peaks(profile, bin_deg, float(cfg["peak_level"])):
+    level = level_outside_wedge(profile, wedge, bin_deg)
+    for angle, _ in profile_peaks(profile / level, bin_deg, float(cfg["peak_level"])):
         if all(angle_distance(angle, c) > 2.5 * bin_deg for c in chosen):
             chosen.append(angle)
     return [round(a, 1) % 180.0 for a in chosen[: int(cfg["max_directions"])]]
+
+
+def level_outside_wedge(profile: np.ndarray, wedge: dict[str, float] | None, bin_deg: float) -> float:
+    """Mean of the profile over the orientations outside a missing wedge (1 without one).
+
+    The profile's mean over all orientations is 1 by construction; a wedge of width
+    ``w`` holding (almost) no energy raises the mean of the other bins to about
+    ``180 / (180 - w)``, which is the isotropic level the peaks must be judged against.
+    """
+    if wedge is None:
+        return 1.0
+    into = (np.arange(profile.size) * bin_deg - wedge["from_deg"]) % 180.0
+    outside = into > wedge["width_deg"]
+    level = float(profile[outside].mean()) if outside.any() else 1.0
+    return level if level > 0 else 1.0
 
 
 def _outside_strength(profile: np.ndarray, edge_deg: float, bin_deg: float, wedge: dict[str, float]) -> float:

@@ -221,6 +221,40 @@ def test_demo_limited_angle_directions(demo_results):
         assert min(streaks.angle_distance(expected, a) for a in top) <= 5.0, (expected, top)
 
 
+def test_demo_limited_angle_wedge_and_only_its_boundaries(demo_results):
+    """The 120-degree arc misses 60 degrees of line orientations (Fourier slice theorem,
+    Kak & Slaney 1988): the wedge is about that wide and its two boundary rays are the
+    only directions listed (no noise peaks of the measured orientations)."""
+    from reconaudit.checker import demo
+
+    rec = demo_results["torso_limited_angle"].record
+    assert abs(rec["missing_wedge_deg"]["width_deg"] - 60.0) <= 10.0, rec["missing_wedge_deg"]
+    angles = rec["dominant_angles_deg"]
+    assert len(angles) == 2, angles
+    for expected in demo.LIMITED_STREAK_ANGLES_DEG:
+        assert min(streaks.angle_distance(expected, a) for a in angles) <= 5.0, (expected, angles)
+
+
+def test_peaks_are_judged_against_the_level_outside_a_wedge():
+    """An empty wedge of 50 deg lifts every other orientation to about 180 / 130 = 1.38 of
+    the mean: a noise bump of 1.7 there is 1.23 of its own level (no direction), a line
+    of 2.8 is 2.0 (a direction)."""
+    cfg = streaks.resolve_settings(None)
+    angles = np.arange(90) * 2.0
+    profile = np.full(90, 1.3)
+    profile[(angles >= 40) & (angles <= 90)] = 0.1
+    profile[65] = 1.7  # 130 deg: noise on the measured orientations
+    profile[75] = 2.8  # 150 deg: a line structure
+    wedge = streaks.missing_wedge(profile, 2.0, cfg["wedge_level"], cfg["wedge_min_deg"])
+    assert wedge is not None
+    level = streaks.level_outside_wedge(profile, wedge, 2.0)
+    assert 1.3 < level < 1.35
+    found = streaks.dominant_angles(profile, wedge, cfg)
+    assert any(streaks.angle_distance(a, 150.0) <= 1.0 for a in found), found
+    assert all(streaks.angle_distance(a, 130.0) > 2.0 for a in found), found
+    assert streaks.level_outside_wedge(profile, None, 2.0) == 1.0
+
+
 def test_demo_sparse_views_not_a_wedge(demo_results):
     rec = demo_results["torso_sparse_views"].record
     assert rec["missing_wedge_deg"] is None
