@@ -359,6 +359,7 @@ def test_run_lanes_and_map_threads_keep_order_and_raise_errors():
         got = air.run_lanes([lambda: threading.get_ident(), lambda: "b", lambda: 3], threads=threads)
         assert got[0] == caller and got[1:] == ["b", 3]
         assert air.map_threads(lambda x: x * x, list(range(9)), threads=threads) == [x * x for x in range(9)]
+        assert air.map_threads(lambda x: -x, [3, 1, 2], threads=threads, cost=[1.0, 5.0, 2.0]) == [-3, -1, -2]
         many = [functools.partial(lambda k: (k, sum(range(20000 * (k % 3)))), k) for k in range(12)]
         assert air.run_lanes(many, threads=threads) == [lane() for lane in many]  # taken from front and back
 
