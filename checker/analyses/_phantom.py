@@ -35,7 +35,10 @@ of the block means after the Gaussian about that of the smoothed grid, and a gro
 ``min_insert_mm2`` or more still at least one block). The CT numbers are
 read only inside the bounding box of the inner discs of the slices that pass, and the
 inner discs' masks are made only at the grids the tests read (2 x 2 blocks, every
-fourth pixel; whole masks only for a slice whose sum is not finite), the same masks. Centre
+fourth pixel; whole masks only for a slice whose sum is not finite), the same masks.
+The grid is read eight slices at a time and turned at once into what the tests use
+(block means, every fourth pixel, each slice's sum) while it is in the processor
+cache; the whole grid is never kept (the same values). Centre
 and radius are therefore estimates on that grid (within a fraction of a working pixel
 for a phantom of tens of working pixels), and the slice median and the noise scale
 (MAD) are those of the inner pixels on every fourth row and column of the grid (some
@@ -493,18 +496,23 @@ def blocks_within(mask: np.ndarray) -> np.ndarray:
 
 
 def _insert_slices(
-    hu: np.ndarray, inner: "np.ndarray | _InnerDiscs", median: np.ndarray, pixel_mm: float, s: dict[str, float]
+    hu: np.ndarray, inner: "np.ndarray | _InnerDiscs", median: np.ndarray, pixel_mm: float, s: dict[str, float],
+    block_means: bool = False,
 ) -> np.ndarray:
     """Which slices of a stack hold a connected group inside ``inner`` (masks, or the
     :class:`_InnerDiscs` they come from) departing from the slice's ``median`` (see the
     module docstring); ``pixel_mm`` is the grid's pixel.
 
     The test runs on the 2 x 2 block means of the grid (pixels of ``2 pixel_mm``, inside
-    ``inner`` when all four are), smoothed by the Gaussian of ``smooth_mm``: a quarter
+    ``inner`` when all four are; ``block_means``: ``hu`` holds them already, ``inner``
+    being of the grid), smoothed by the Gaussian of ``smooth_mm``: a quarter
     of the pixels to smooth, with the noise reduced about as much as the smoothing of
     the grid itself did.
     """
-    if min(hu.shape[1:]) >= 2:
+    if block_means:  # ``hu`` holds the block means already (``inner`` is of the grid)
+        pixel_mm = 2.0 * pixel_mm
+        inner = inner.blocks() if isinstance(inner, _InnerDiscs) else blocks_within(inner)
+    elif min(hu.shape[1:]) >= 2:
         hu, pixel_mm = block_means_2x2(hu), 2.0 * pixel_mm
         inner = inner.blocks() if isinstance(inner, _InnerDiscs) else blocks_within(inner)
     elif isinstance(inner, _InnerDiscs):
@@ -753,16 +761,52 @@ def _water_and_inserts(
     """
     rows = slice(inner.box[0].start * f, inner.box[0].stop * f)
     cols = slice(inner.box[1].start * f, inner.box[1].stop * f)
-    img = _strided(hu, f, rows, cols, zs)
-    median = _medians_of(img, inner.every(4), masks_at_step=True)
-    water = _finite_in_discs(img, inner) & (np.abs(median) <= s["water_window_hu"])  # NaN fails
+    as_blocks = min(inner.room.shape[1], inner.xx.shape[1]) >= 2
+    if as_blocks:
+        sums, every4, grid = _grid_reads(hu, f, rows, cols, zs)
+    else:  # a grid too small for blocks: the insert test takes the grid itself
+        grid = _strided(hu, f, rows, cols, zs)
+        sums, every4 = grid.sum(axis=(1, 2), dtype=np.float32), grid[:, ::4, ::4]
+    median = _medians_of(every4, inner.every(4), step=1)
+    finite = np.isfinite(sums)  # a sum is finite when every value is
+    suspect = np.flatnonzero(~finite)
+    if suspect.size:  # only these slices are looked at pixel by pixel
+        finite[suspect] = _finite_inside(_strided(hu, f, rows, cols, zs[suspect]), inner.full(suspect))
+    water = finite & (np.abs(median) <= s["water_window_hu"])  # NaN fails
     inserts = np.zeros(zs.size, dtype=bool)
     if water.all():  # (no copies when every slice passes)
-        inserts = _insert_slices(img, inner, median, grid_mm, s)
+        inserts = _insert_slices(grid, inner, median, grid_mm, s, block_means=as_blocks)
     elif water.any():
         idx = np.flatnonzero(water)
-        inserts[idx] = _insert_slices(img[idx], inner.take(idx), median[idx], grid_mm, s)
+        inserts[idx] = _insert_slices(grid[idx], inner.take(idx), median[idx], grid_mm, s, block_means=as_blocks)
     return water, median, inserts
+
+
+def _grid_reads(hu: np.ndarray, f: int, rows: slice, cols: slice, zs: np.ndarray
+                ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """What the water and insert tests need of the working grid ``hu[zs, rows, cols]``
+    (every ``f``-th pixel): the float32 sum of each slice, every fourth row and column,
+    and the 2 x 2 block means (:func:`block_means_2x2`), read :data:`_READ_SLICES`
+    slices at a time so that each piece of the grid is used while it is in the
+    processor cache (the whole grid is never kept). The same values as from one copy of
+    the grid."""
+    n = zs.size
+    h, w = len(range(rows.start, rows.stop, f)), len(range(cols.start, cols.stop, f))
+    sums = np.empty(n, dtype=np.float32)
+    every4 = np.empty((n, (h + 3) // 4, (w + 3) // 4), dtype=np.float32)
+    blocks = np.empty((n, h // 2, w // 2), dtype=np.float32)
+    for a in range(0, n, _READ_SLICES):
+        b = min(n, a + _READ_SLICES)
+        piece = _strided(hu, f, rows, cols, zs[a:b])
+        sums[a:b] = piece.reshape(b - a, -1).sum(axis=1, dtype=np.float32)
+        every4[a:b] = piece[:, ::4, ::4]
+        blocks[a:b] = block_means_2x2(piece)
+    return sums, every4, blocks
+
+
+#: Slices of the working grid :func:`_grid_reads` reads at a time (some 300 KB for a
+#: 512 x 512 series: they stay in the processor's cache).
+_READ_SLICES = 8
 
 
 def _find_phantom(volume: Volume, regions: Regions, s: dict[str, float]) -> Phantom:

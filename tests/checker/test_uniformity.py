@@ -351,3 +351,33 @@ def test_inner_discs_made_where_needed_equal_the_whole_masks():
     values[~ref] = np.nan  # non-finite outside the discs only: every slice passes
     values[2][ref[2]] = np.inf  # inside on slice 2
     assert list(_phantom._finite_in_discs(values, discs)) == [True, True, False, True, True, True]
+
+
+def test_grid_reads_in_pieces_equal_one_copy_of_the_grid():
+    """The water and insert tests' reads of the working grid, taken a few slices at a
+    time, equal numpy's slicing of one copy of the grid (the reference): every fourth
+    row and column, the 2 x 2 block means and each slice's finite sum (odd sizes, runs,
+    evenly spaced and scattered slices)."""
+    rng = np.random.default_rng(29)
+    hu = rng.normal(0.0, 20.0, (21, 70, 66)).astype(np.float32)
+    rows, cols = slice(3, 61), slice(5, 64)
+    for zs in (np.arange(21), np.arange(1, 20, 2), np.array([0, 2, 3, 9, 10, 11, 17, 20])):
+        sums, every4, blocks = _phantom._grid_reads(hu, 3, rows, cols, zs)
+        grid = hu[zs][:, rows.start : rows.stop : 3, cols.start : cols.stop : 3]
+        assert np.array_equal(every4, grid[:, ::4, ::4])
+        assert np.array_equal(blocks, _phantom.block_means_2x2(grid))
+        assert np.allclose(sums, grid.astype(np.float64).sum(axis=(1, 2)), rtol=1e-4, atol=1e-2)
+
+
+def test_a_non_finite_pixel_inside_the_disc_drops_only_its_slice():
+    """A NaN inside the inner disc of one slice of a long series (on the working grid,
+    every second pixel here) makes that slice no phantom slice; a NaN or infinity in
+    the air beside the phantom changes nothing (pixel by pixel check of the slices whose
+    sum is not finite)."""
+    hu = _discs([60.0] * 12)
+    hu[4, 80, 84] = np.nan  # inside the disc
+    hu[7, 30, 30] = np.nan  # in the air, on the grid inside the box read about the discs
+    hu[9, 150, 150] = np.inf
+    vol = Volume.from_array(hu, (2.0, 0.8, 0.8))
+    ph = _phantom.find_phantom(vol, find_regions(vol))
+    assert list(np.flatnonzero(~ph.on_slice)) == [4]
