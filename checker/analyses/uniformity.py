@@ -10,6 +10,12 @@ a tenth of the phantom diameter. Means and SDs are pooled over the slices.
 - ``uniformity_hu``: max |peripheral mean - centre mean|;
 - ``centre_sd_hu``: pixel SD in the centre ROI.
 
+The ROIs span the middle ``max_slices`` (16) slices of that run (32 before: a method
+choice for speed under the lead's rule that records may change; half the pixels to
+read and check, the same slices as the noise analysis). On invented scans the water
+CT number, uniformity and centre SD from 16 slices differ from those of 32 by at most
+0.25 HU (10 HU noise, tested), a twentieth of the tolerances.
+
 The phantom's centre, radius and uniform slices come from the shared search of
 :mod:`._phantom`, made on a strided working grid for speed: they are estimates, so the
 ROIs may sit a pixel away from where a full-resolution search would put them; the
@@ -41,7 +47,7 @@ NAME = "uniformity"
 DEFAULTS: dict[str, Any] = {
     "roi_size_mm": 0.0,
     "edge_margin_mm": 10.0,
-    "max_slices": 32,
+    "max_slices": 16,
     "water_hu_expected": 0.0,
     "water_hu_tolerance": 4.0,
     "uniformity_hu_max": 5.0,
@@ -52,6 +58,8 @@ SOURCES: dict[str, str] = {
     "roi_size_mm": "from memory: ROI about 10% of the phantom diameter (common acceptance-test "
     "practice, e.g. IEC 61223-3-5; not checked)",
     "edge_margin_mm": "from memory: peripheral ROIs about 1 cm inside the edge (common practice)",
+    "max_slices": "our choice for speed: the ROI means of 16 slices differ from those of 32 by at "
+    "most 0.25 HU on invented scans (tested), a twentieth of the tolerances",
     "water_hu_expected": "Hounsfield scale: water is 0 HU by definition",
     "water_hu_tolerance": "from memory: water CT number 0 +/- 4 HU is a commonly quoted limit",
     "uniformity_hu_max": "from memory: centre-to-periphery difference <= 5 HU is a commonly "

@@ -381,3 +381,25 @@ def test_a_non_finite_pixel_inside_the_disc_drops_only_its_slice():
     vol = Volume.from_array(hu, (2.0, 0.8, 0.8))
     ph = _phantom.find_phantom(vol, find_regions(vol))
     assert list(np.flatnonzero(~ph.on_slice)) == [4]
+
+
+def test_sixteen_middle_slices_keep_the_numbers_and_the_flags():
+    """Sensitivity of the 16-slice default (``max_slices``) on a 40-slice uniform run:
+    the ROIs span its 16 middle slices; water CT number, uniformity and centre SD lie
+    within 0.4 HU of those from 32 slices (a tenth of the 4 and 5 HU tolerances); a
+    water offset of 5 HU and a cupping of 12 HU at the edge (some 6.5 HU between the
+    centre and peripheral ROIs) are still flagged, plain water is not."""
+    for seed in range(3):
+        vol = water_cylinder(nz=40, insert_slices=0, sd=10.0, seed=seed)
+        regions = find_regions(vol)
+        rec = uniformity.analyse(vol, regions).record
+        wide = uniformity.analyse(vol, regions, {"max_slices": 32}).record
+        assert rec["slices"] == [11, 26] and wide["slices"] == [3, 34]
+        for key in ("water_hu", "uniformity_hu", "centre_sd_hu"):
+            assert abs(rec[key] - wide[key]) < 0.4, (key, rec[key], wide[key])
+        assert not rec["flagged"]
+    offset = water_cylinder(nz=40, insert_slices=0, sd=10.0, offset_hu=5.0)
+    assert uniformity.analyse(offset, find_regions(offset)).record["flagged"]
+    cupped = water_cylinder(nz=40, insert_slices=0, sd=10.0, cupping_hu=12.0)
+    rec = uniformity.analyse(cupped, find_regions(cupped)).record
+    assert rec["flagged"] and rec["uniformity_hu"] > 5.0
