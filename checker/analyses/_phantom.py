@@ -47,8 +47,10 @@ This is a method choice for speed: the records of the analyses built on it are
 estimates, as before, and may differ slightly from a search at full resolution.
 
 One search and one count of non-finite voxels per volume: the last answers are kept,
-keyed by weak references to the arrays, and a lock makes analyses that run on threads
-at the same time wait for the first one's answer instead of repeating the work.
+keyed by weak references to the arrays (the counts of the measured slices slice by
+slice, so analyses measuring overlapping slices look at each slice once), and a lock
+makes analyses that run on threads at the same time wait for the first one's answer
+instead of repeating the work.
 """
 from __future__ import annotations
 
