@@ -421,7 +421,7 @@ def _discs_of_components(dev: np.ndarray, comps: np.ndarray) -> tuple[np.ndarray
     Common practice, no source (threshold at half contrast, hole filling, disc test).
     """
     n, h, w = comps.shape
-    cy, cx, r_eq, _ = disc_stats(comps)
+    cy, cx, r_eq = _centroids_and_radii(comps)
     yy = np.arange(h, dtype=float)[None, :, None] - cy[:, None, None]
     xx = np.arange(w, dtype=float)[None, None, :] - cx[:, None, None]
     core = (yy**2 + xx**2 <= (0.5 * r_eq[:, None, None]) ** 2) & comps
@@ -433,6 +433,20 @@ def _discs_of_components(dev: np.ndarray, comps: np.ndarray) -> tuple[np.ndarray
             if cut.any():
                 half[k] = cut
     return disc_stats(_fill_holes_each(half))
+
+
+def _centroids_and_radii(masks: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Centroid and equal-area radius of every (y, x) mask of a stack, computed as
+    :func:`reconaudit.checker.analyses._phantom.disc_stats` computes them (integer row
+    and column counts; NaN centroid for an empty mask), without its fill ratio."""
+    row_counts = np.count_nonzero(masks, axis=2).astype(np.int64)
+    col_counts = np.count_nonzero(masks, axis=1).astype(np.int64)
+    n = row_counts.sum(axis=1)
+    safe = np.maximum(n, 1)
+    cy = (row_counts @ np.arange(masks.shape[1])) / safe
+    cx = (col_counts @ np.arange(masks.shape[2])) / safe
+    empty = n == 0
+    return np.where(empty, np.nan, cy), np.where(empty, np.nan, cx), np.sqrt(n / np.pi)
 
 
 def _fill_holes_each(masks: np.ndarray) -> np.ndarray:

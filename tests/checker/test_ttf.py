@@ -486,3 +486,19 @@ def test_body_footprint_equals_the_union_over_the_rods_slices():
     assert want.any() and not want.all()
     box = ttf._box_about((60.0, 22.0), 5.0 / PX + 4.5 / PX + 3, (n, n))[1]
     assert not body[4][box].all() and not want[box].all()  # the second crop leaves the body
+
+
+def test_centroids_and_radii_are_those_of_disc_stats():
+    """The first disc measure of the insert test (centroid and equal-area radius only)
+    equals disc_stats on random masks, an empty one included."""
+    from reconaudit.checker.analyses._phantom import disc_stats
+
+    rng = np.random.default_rng(5)
+    masks = rng.random((6, 31, 27)) < 0.3
+    masks[2] = False
+    cy, cx, r = ttf._centroids_and_radii(masks)
+    ry, rx, rr, _ = disc_stats(masks)
+    np.testing.assert_array_equal(np.isnan(cy), np.isnan(ry))
+    np.testing.assert_allclose(cy[~np.isnan(cy)], ry[~np.isnan(ry)], rtol=0, atol=1e-12)
+    np.testing.assert_allclose(cx[~np.isnan(cx)], rx[~np.isnan(rx)], rtol=0, atol=1e-12)
+    np.testing.assert_allclose(r, rr, rtol=0, atol=1e-12)
