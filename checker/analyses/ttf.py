@@ -25,7 +25,9 @@ from the pixels of a thin strip along each normal; the insert search and the rod
 measurements work on crops about each rod. The phantom search that tells where rods
 may be runs on a decimated copy: at most 256 pixels a side and about 16 slices, at most
 10 mm apart unless that takes more than 32 slices (a rod module shorter than the step
-may fall between two of them).
+may fall between two of them); in-plane it takes the pixels of the working grid the
+phantom search strides a whole volume with (every ``work_pixel_mm`` / pixel-th), so the
+search reads those pixels directly instead of striding a finer copy again.
 A rod's centre line is fitted from a few sub-stack mean images (the lead's method
 decision): its slices are split into up to 3 contiguous runs, the centre is refined
 once on each run's mean image (noise lower by the square root of the run's slice
@@ -81,7 +83,7 @@ from ..results import AnalysisResult, Finding, Overlays, Point, Roi, Severity
 from ..volume import Volume
 from . import _edges
 from ._edges import BinnedEsf, TtfCurve, bin_esf, condition_esf, esf_shape, ttf_from_esf
-from ._phantom import disc_of, disc_stats, find_phantom
+from ._phantom import PHANTOM_DEFAULTS, _grid_step, disc_of, disc_stats, find_phantom
 
 NAME = "ttf"
 
@@ -471,12 +473,20 @@ def _phantom_of(volume: Volume, regions: Regions) -> tuple[Any, int, int]:
     at full resolution, so the search needs only one slice in each rod module. A
     method choice for speed: the search costs about its number of slices.
 
+    When a decimated copy is made, its in-plane factor is at least the step of the
+    working grid ``find_phantom`` would take on the whole volume (every
+    ``work_pixel_mm`` / pixel-th pixel): the search then runs on that same grid with
+    no further striding inside (the same pixels, fewer index steps), instead of on a
+    finer copy it strides again.
+
     Returns the phantom, the in-plane factor and the slice step.
     """
     factor = max(1, int(math.ceil(max(volume.shape[1:]) / 256)))
     step = _phantom_search_step(volume.shape[0], float(volume.spacing_mm[0]))
     if factor == 1 and step == 1:
         return find_phantom(volume, regions), 1, 1
+    px = 0.5 * (float(volume.spacing_mm[1]) + float(volume.spacing_mm[2]))
+    factor = max(factor, _grid_step(px, float(PHANTOM_DEFAULTS["work_pixel_mm"])))
     dz, dy, dx = volume.spacing_mm
     zf, yf = slice(None, None, step), slice(None, None, factor)
     small = Volume.from_array(volume.hu[zf, yf, yf], (dz * step, dy * factor, dx * factor))

@@ -502,3 +502,38 @@ def test_centroids_and_radii_are_those_of_disc_stats():
     np.testing.assert_allclose(cy[~np.isnan(cy)], ry[~np.isnan(ry)], rtol=0, atol=1e-12)
     np.testing.assert_allclose(cx[~np.isnan(cx)], rx[~np.isnan(rx)], rtol=0, atol=1e-12)
     np.testing.assert_allclose(r, rr, rtol=0, atol=1e-12)
+
+
+def test_phantom_search_copy_runs_on_the_working_grid_of_the_whole_volume():
+    """The decimated phantom search (more than 256 pixels a side) takes every
+    ``work_pixel_mm`` / pixel-th pixel, the grid ``find_phantom`` itself strides the
+    whole volume with, and finds what a copy of half that step finds: the same slices
+    with inserts and the same centres, radii and medians (case: a 300 x 300 x 24 water
+    disc of 0.45 mm pixels, a +340 HU rod on the first 8 slices; grid step 4)."""
+    from reconaudit.checker.analyses import _phantom
+
+    n, nz, px = 300, 24, 0.45
+    yy, xx = np.indices((n, n), dtype=float)
+    img = np.where(np.hypot(yy - 150, xx - 150) <= 120, 0.0, -1000.0)
+    rods = img.copy()
+    rods[np.hypot(yy - 150, xx - 200) <= 14] = 340.0
+    st = np.stack([rods if z < 8 else img for z in range(nz)]) + np.random.default_rng(5).normal(0, 5, (nz, n, n))
+    vol = Volume.from_array(st.astype(np.float32), (2.5, px, px))
+    regions = find_regions(vol)
+    _phantom._LAST.clear()
+    phantom, factor, step = ttf._phantom_of(vol, regions)
+    assert factor == _phantom._grid_step(px, _phantom.PHANTOM_DEFAULTS["work_pixel_mm"]) == 4
+    assert step == 2 and phantom.found
+    assert np.array_equal(np.flatnonzero(phantom.inserts), [0, 1, 2, 3])  # slices 0, 2, 4, 6 of the 24
+    orig = ttf._grid_step
+    try:  # the copy of the previous rule: half the step, strided again inside the search
+        ttf._grid_step = lambda p, w: 1
+        _phantom._LAST.clear()
+        finer, f2, step2 = ttf._phantom_of(vol, regions)
+    finally:
+        ttf._grid_step = orig
+    assert (f2, step2) == (2, 2)
+    np.testing.assert_array_equal(phantom.inserts, finer.inserts)
+    np.testing.assert_allclose(phantom.centre_yx_vox * factor, finer.centre_yx_vox * f2, atol=1e-9)
+    np.testing.assert_allclose(phantom.radius_vox * factor, finer.radius_vox * f2, atol=1e-9)
+    np.testing.assert_allclose(phantom.median_hu, finer.median_hu, atol=1e-9)
