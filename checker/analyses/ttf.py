@@ -34,7 +34,9 @@ once on each run's mean image (noise lower by the square root of the run's slice
 count, so each refinement is more stable than a per-slice one), and a straight line
 through the run centres gives every slice's centre; a rod is straight, so the line
 needs only a few points. The insert search looks at the mean of 3 slices of each run of
-phantom-search slices (at a quarter, half and three quarters of it); the full-resolution
+phantom-search slices (at a quarter, half and three quarters of it), smoothed by a box
+mean of about 2 mm (a few shifted additions; the full-resolution crops keep their 1 mm
+Gaussian, so the screen only says where to look); the full-resolution
 crops about the screen's groups of one run are smoothed, labelled and disc-tested as one
 stack (one pass for all rods, the same inserts as crop by crop).
 Each rod's pixels are copied once, as one contiguous block over the slices the search
@@ -219,8 +221,8 @@ def find_rod_inserts(volume: Volume, regions: Regions, settings: dict[str, Any] 
 
     ``find_phantom`` (on an in-plane decimated copy when the slices are larger than 256
     pixels, to keep it cheap) gives the phantom and its slices with inserts. On the mean
-    of three slices of each contiguous run of such slices (:func:`_search_slices`), smoothed by 1 mm,
-    connected groups departing from the phantom median by more than
+    of three slices of each contiguous run of such slices (:func:`_search_slices`), smoothed by
+    a box mean of about 2 mm (:func:`_screen_smoothed`), connected groups departing from the phantom median by more than
     ``min_contrast_hu`` (each sign on its own) whose shape is a disc of
     ``min_insert_diameter_mm`` to ``max_insert_diameter_mm`` are inserts; each insert's
     slices are those where its disc keeps at least 3/4 of its contrast to the
@@ -261,7 +263,7 @@ def find_rod_inserts(volume: Volume, regions: Regions, settings: dict[str, Any] 
         median_hu = _finite_median(phantom.median_hu[k0 : k1 + 1])
         (by0, bx0), box = _box_about(centre, 0.92 * radius + int(4.0 / px + 0.5) + 1, volume.shape[1:])
         coarse = volume.hu[zs, box[0].start : box[0].stop : f, box[1].start : box[1].stop : f].mean(axis=0)
-        smooth = ndimage.gaussian_filter(coarse, 1.0 / (px * f)) - median_hu
+        smooth = _screen_smoothed(coarse, px * f) - median_hu
         inner = _disc(coarse.shape, ((centre[0] - by0) / f, (centre[1] - bx0) / f), 0.92 * radius / f)
         candidates = []
         limit = float(s["min_contrast_hu"])
@@ -300,6 +302,39 @@ def _search_slices(z0: int, z1: int) -> slice:
     step = n // 4
     start = z0 + step
     return slice(start, start + 2 * step + 1, step)
+
+
+#: Half-width (mm) of the box mean that smooths the insert screen (:func:`_screen_smoothed`).
+SCREEN_BOX_HALF_MM = 1.0
+
+
+def _screen_smoothed(image: np.ndarray, pixel_mm: float) -> np.ndarray:
+    """Box mean of the insert screen: (2 h + 1) x (2 h + 1) pixels, h = ``SCREEN_BOX_HALF_MM``
+    / ``pixel_mm`` rounded (at least 1), edges mirrored (as ``ndimage.uniform_filter``).
+
+    A method choice for speed (the lead's decision): the screen only says where the
+    full-resolution search looks (it smooths its own crops by a 1 mm Gaussian as before),
+    and a box of about 2 mm lowers the screen's noise by its width (3 x for 3 x 3 pixels,
+    against about 3.9 x for the 1 mm Gaussian of 0.9 mm pixels) while keeping the full
+    contrast of a disc wider than the box; it is a few shifted additions instead of a
+    Gaussian correlation. The smallest, faintest inserts the search must find are
+    found as before (tests/checker/test_ttf.py, box screen against Gaussian screen).
+
+    References
+    ----------
+    Common practice, no source (box mean before a threshold).
+    """
+    h = max(1, int(round(SCREEN_BOX_HALF_MM / pixel_mm)))
+    w = 2 * h + 1
+    p = np.pad(image, h, mode="symmetric")
+    rows = p[: p.shape[0] - w + 1].copy()
+    for k in range(1, w):
+        rows += p[k : p.shape[0] - w + 1 + k]
+    out = rows[:, : rows.shape[1] - w + 1].copy()
+    for k in range(1, w):
+        out += rows[:, k : rows.shape[1] - w + 1 + k]
+    out *= out.dtype.type(1.0 / (w * w))
+    return out
 
 
 def _screen_factor(px: float, min_diameter_mm: float) -> int:
