@@ -32,7 +32,9 @@ test runs on every phantom slice, on the 2 x 2 block
 means of the working grid (pixels of twice its size; a method choice for speed under
 the lead's rule that records may change: a quarter of the pixels to smooth, the noise
 of the block means after the Gaussian about that of the smoothed grid, and a group of
-``min_insert_mm2`` or more still at least one block). The CT numbers are
+``min_insert_mm2`` or more still at least one block); the noise scale (MAD) is
+taken only on slices with an inner deviation above ``insert_contrast_hu``, the least
+threshold any slice has (the same answer). The CT numbers are
 read only inside the bounding box of the inner discs of the slices that pass, and the
 inner discs' masks are made only at the grids the tests read (2 x 2 blocks, every
 fourth pixel; whole masks only for a slice whose sum is not finite), the same masks.
@@ -523,14 +525,20 @@ def _insert_slices(
     padded -= median.astype(np.float32)[:, None, None]  # in place on the contiguous array
     np.abs(padded, out=padded)
     dev = padded[:, r : r + hu.shape[1], r : r + hu.shape[2]]
-    mad = _medians_of(dev, inner, step=2) * 1.4826
-    threshold = np.maximum(s["insert_contrast_hu"], 5.0 * mad).astype(np.float32)
-    out = np.greater(dev, threshold[:, None, None])
+    # every slice's threshold is at least insert_contrast_hu (float32 rounding keeps the
+    # order), so a slice with no inner deviation above that has no insert and needs no
+    # noise scale: the MAD is taken only on the other slices (the same answer)
+    out = np.greater(dev, np.float32(s["insert_contrast_hu"]))
     out &= inner
     has = np.zeros(hu.shape[0], dtype=bool)
     candidates = np.flatnonzero(out.any(axis=(1, 2)))
     if candidates.size:
-        largest = _largest_groups(out[candidates])
+        dev_c = dev[candidates]
+        mad = _medians_of(dev_c, inner[candidates], step=2) * 1.4826
+        threshold = np.maximum(s["insert_contrast_hu"], 5.0 * mad).astype(np.float32)
+        above = out[candidates]
+        above &= np.greater(dev_c, threshold[:, None, None])
+        largest = _largest_groups(above)
         has[candidates] = largest * pixel_mm**2 >= s["min_insert_mm2"]
     return has
 

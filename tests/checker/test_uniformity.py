@@ -403,3 +403,43 @@ def test_sixteen_middle_slices_keep_the_numbers_and_the_flags():
     cupped = water_cylinder(nz=40, insert_slices=0, sd=10.0, cupping_hu=12.0)
     rec = uniformity.analyse(cupped, find_regions(cupped)).record
     assert rec["flagged"] and rec["uniformity_hu"] > 5.0
+
+
+def test_insert_test_with_the_noise_scale_only_where_needed_equals_the_direct_rule():
+    """The insert test takes the noise scale (MAD) only on slices with an inner
+    deviation above ``insert_contrast_hu``; the answer must equal the rule applied to
+    every slice directly (scipy Gaussian, numpy median, ndimage labels): plain water,
+    a 45 HU rod in quiet water (an insert), the same rod in noisy water whose 5 x MAD
+    threshold is above 45 HU (not an insert), a 400 HU rod in that noisy water (an
+    insert), and a slice with no inner pixel."""
+    from scipy import ndimage
+
+    rng = np.random.default_rng(21)
+    n, pixel_mm = 40, 1.0
+    yy, xx = np.mgrid[:n, :n]
+    inner = np.broadcast_to((yy - 19.5) ** 2 + (xx - 19.5) ** 2 <= 17**2, (5, n, n)).copy()
+    inner[4] = False
+    rod = (yy - 12) ** 2 + (xx - 24) ** 2 <= 3**2
+    stack = rng.normal(0.0, 2.0, (5, n, n))
+    stack[2] = rng.normal(0.0, 90.0, (n, n))
+    stack[3] = rng.normal(0.0, 90.0, (n, n))
+    stack[1][rod] += 45.0
+    stack[2][rod] += 45.0
+    stack[3][rod] += 400.0
+    stack = stack.astype(np.float32)
+    s = dict(_phantom.PHANTOM_DEFAULTS)
+    median = np.array([np.median(stack[z][inner[z]]) if inner[z].any() else np.nan for z in range(5)])
+    got = _phantom._insert_slices(stack, inner, median, pixel_mm, s)
+    blocks = _phantom.block_means_2x2(stack)
+    block_inner = _phantom.blocks_within(inner)
+    expected = []
+    for z in range(5):
+        dev = np.abs(ndimage.gaussian_filter(blocks[z], s["smooth_mm"] / (2 * pixel_mm), truncate=2.5) - median[z])
+        sub = block_inner[z, ::2, ::2]
+        mad = 1.4826 * np.median(dev[::2, ::2][sub]) if sub.any() else np.nan
+        above = (dev > max(s["insert_contrast_hu"], 5.0 * mad)) & block_inner[z]
+        lab, count = ndimage.label(above)
+        largest = np.bincount(lab.ravel())[1:].max() if count else 0
+        expected.append(largest * (2 * pixel_mm) ** 2 >= s["min_insert_mm2"])
+    assert list(got) == expected, (list(got), expected)
+    assert expected == [False, True, False, True, False], expected
