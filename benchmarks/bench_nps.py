@@ -11,7 +11,12 @@ into a temporary folder and timed while pydicom reads every file and builds the 
 pays for them; uniformity is also shown after the noise analysis, as in a check, and the
 subtraction (pair) NPS of two invented repeated scans of the phantom.
 
-Usage: ``python benchmarks/bench_nps.py [--slices 400] [--repeats 5]``
+``--breakdown`` adds the CPU time of the parts of a cold noise analysis (phantom
+search, finite check of the measured slices, ROI gather, 2-D measurement, the 3-D
+record's increment), each part timed alone in the same loop, parts alternating, so the
+shares are not skewed by the load changing between stages.
+
+Usage: ``python benchmarks/bench_nps.py [--slices 400] [--repeats 5] [--breakdown]``
 """
 from __future__ import annotations
 
@@ -63,10 +68,48 @@ def _timed(fn, *args, repeats: int, cold: bool) -> tuple[float, float, float, ob
     return float(np.median(walls)), float(np.median(cpus)), float(np.min(cpus)), res
 
 
+def _clear_shared() -> None:
+    _phantom._LAST.clear()
+    _phantom._LAST_COUNT.clear()
+    _phantom._LAST_SLICES_COUNT.clear()
+
+
+def breakdown(vol: Volume, regions, repeats: int) -> dict[str, tuple[float, float]]:
+    """Least and median CPU seconds of each part of a cold ``nps.analyse`` with the 3-D
+    record, the parts timed one after the other within each of ``repeats`` rounds."""
+    s = nps._settings({"nps_3d": True})
+    s2 = {**s, "nps_3d": False}
+    parts: dict[str, list[float]] = {k: [] for k in
+                                     ("phantom search", "finite check", "ROI gather", "2-D measurement",
+                                      "3-D increment", "whole (2-D + 3-D)")}
+
+    def timed(key: str, fn):
+        c0 = time.process_time()
+        out = fn()
+        parts[key].append(time.process_time() - c0)
+        return out
+
+    for _ in range(repeats):
+        _clear_shared()
+        timed("phantom search", lambda: _phantom.find_phantom(vol, regions))
+        rois = nps.phantom_rois(vol, regions, s).rois
+        timed("finite check", lambda: _phantom.nonfinite_reason(vol, rois))
+        stack = timed("ROI gather", lambda: nps.roi_images(vol.hu, rois))
+        timed("2-D measurement", lambda: nps.measure_roi_images(stack, vol.spacing_mm, rois, s2))
+        stack = nps.roi_images(vol.hu, rois)
+        c0 = time.process_time()
+        nps.measure_roi_images(stack, vol.spacing_mm, rois, s)
+        parts["3-D increment"].append(time.process_time() - c0 - parts["2-D measurement"][-1])
+        _clear_shared()
+        timed("whole (2-D + 3-D)", lambda: nps.analyse(vol, regions, {"nps_3d": True}))
+    return {k: (float(np.min(v)), float(np.median(v))) for k, v in parts.items()}
+
+
 def main() -> None:
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     parser.add_argument("--slices", type=int, default=120)
     parser.add_argument("--repeats", type=int, default=5, help="runs per stage (medians printed)")
+    parser.add_argument("--breakdown", action="store_true", help="CPU time of the parts of a cold nps")
     args = parser.parse_args()
     vol = make_phantom(args.slices)
     limit, how = float(harness.read_limit(vol)), "benchmarks/harness.py read_limit"
@@ -92,6 +135,11 @@ def main() -> None:
             print(f"  {label}: not applicable: {record.get('reason')}")
         print(f"  {label}: {wall * 1e3:.1f} ms = {wall / limit:.3f} x read (CPU {cpu * 1e3:.1f} ms = "
               f"{cpu / limit:.3f} x, least {cpu_min * 1e3:.1f} ms; goal <= 0.1, median of {args.repeats})")
+    if args.breakdown:
+        runs = max(args.repeats, 11)
+        print(f"  parts of a cold nps (2-D + 3-D), CPU least / median of {runs} rounds:")
+        for label, (least, median) in breakdown(vol, regions, runs).items():
+            print(f"    {label}: {least * 1e3:.2f} / {median * 1e3:.2f} ms = {median / limit:.3f} x read")
 
 
 if __name__ == "__main__":
