@@ -33,7 +33,11 @@ decision): its slices are split into up to 3 contiguous runs, the centre is refi
 once on each run's mean image (noise lower by the square root of the run's slice
 count, so each refinement is more stable than a per-slice one), and a straight line
 through the run centres gives every slice's centre; a rod is straight, so the line
-needs only a few points. The insert search looks at the mean of 3 slices of each run of
+needs only a few points. The line's tilt is kept only when it exceeds
+``TILT_SIGNIFICANCE`` (3) standard errors estimated from the scatter of the run centres
+about it; otherwise every slice takes the mean centre (a noise tilt of a few hundredths
+of a pixel would split a straight rod's pooled slices into groups, each binned: slower,
+and no more accurate). The insert search looks at the mean of 3 slices of each run of
 phantom-search slices (at a quarter, half and three quarters of it), smoothed by a box
 mean of about 2 mm (a few shifted additions; the full-resolution crops keep their 1 mm
 Gaussian, so the screen only says where to look); the full-resolution
@@ -1091,15 +1095,65 @@ def _run_images(crop: np.ndarray, centre: tuple[float, float], r_px: float, px: 
                      inside_hu, outside_hu, float(reach))
 
 
+#: A rod's fitted tilt counts only when it exceeds this many of its standard errors
+#: (:func:`_tilt_is_significant`); otherwise its centre line is its mean centre.
+TILT_SIGNIFICANCE = 3.0
+
+
 def _centre_line(ri: RunImages, per: np.ndarray, nz: int) -> np.ndarray:
     """Every slice's centre (nz, 2) from the run centres ``per`` (runs, 2): a straight
     line along z through them (weighted by their slice counts), or each run's centre for
-    its slices when there is one run."""
+    its slices when there is one run.
+
+    With three or more runs the line's tilt is kept only when it is significant
+    (:func:`_tilt_is_significant`); a tilt within the scatter of the run centres about
+    the line is noise, and every slice then takes the line's mean centre (the weighted
+    mean of the run centres, where the line passes at the rod's middle slice). A method
+    choice (the lead's decision): the centre of a straight rod in noise is then not
+    tilted by the noise of its run centres, so its slices pool into one group
+    (:func:`_pool_slices`) instead of being split by a noise tilt of a few hundredths of
+    a pixel; a tilted rod keeps its line (tests/checker/test_ttf.py).
+    """
     if len(per) >= 2:
         z = np.arange(nz, dtype=float)
         mid_z = np.array([float(r[0]) for r in ri.runs]) + 0.5 * (ri.sizes - 1.0)  # each run's mean slice, exactly
-        return _line_along_z(mid_z, per, ri.sizes, z)
+        line = _line_along_z(mid_z, per, ri.sizes, z)
+        if len(per) >= 3 and not _tilt_is_significant(mid_z, per, ri.sizes):
+            mean = ri.sizes @ per / ri.sizes.sum()
+            return np.repeat(mean[None], nz, axis=0)
+        return line
     return np.concatenate([np.repeat(p[None], r.size, axis=0) for p, r in zip(per, ri.runs)])
+
+
+def _tilt_is_significant(zc: np.ndarray, yx: np.ndarray, weights: np.ndarray) -> bool:
+    """Whether the weighted least-squares tilt of the points ``yx`` (n >= 3, 2) at ``zc``
+    exceeds ``TILT_SIGNIFICANCE`` standard errors.
+
+    Each point is the mean centre of ``weights`` slices, so its variance is taken as
+    sigma^2 / weight; sigma^2 is estimated from the weighted residuals about the line,
+    pooled over both coordinates (2 (n - 2) degrees of freedom), and the standard error
+    of each slope component is sigma / sqrt(sum w (z - z_mean)^2). The tilt is the
+    length of the slope vector. Residuals of exactly zero (a noiseless line) make any
+    tilt significant.
+
+    References
+    ----------
+    Draper NR, Smith H. Applied Regression Analysis, 3rd ed. Wiley, 1998 (weighted least
+    squares, standard error of the slope).
+    """
+    w = np.asarray(weights, dtype=float)
+    zm = float(np.dot(w, zc) / w.sum())
+    dz = zc - zm
+    sxx = float(np.dot(w, dz * dz))
+    if sxx <= 0:
+        return False
+    mean = w @ yx / w.sum()
+    slope = (w * dz) @ (yx - mean) / sxx
+    resid = yx - mean[None, :] - dz[:, None] * slope[None, :]
+    dof = 2 * (len(zc) - 2)
+    sigma2 = float((w[:, None] * resid * resid).sum()) / dof
+    tilt = math.hypot(float(slope[0]), float(slope[1]))
+    return tilt * tilt > TILT_SIGNIFICANCE**2 * sigma2 / sxx
 
 
 def _refine_centres(crop: np.ndarray, centre: tuple[float, float], r_px: float, px: float,

@@ -196,3 +196,26 @@ def test_skin_edge_of_a_large_blurred_disc():
     (edge,) = res.record["edges"]
     assert edge["kind"] == "skin"
     assert edge["f50_per_mm"] == pytest.approx(f50_true(s), rel=0.05)
+
+
+def test_straight_noisy_rods_flattened_centre_line_is_not_less_accurate(monkeypatch):
+    """Centre line of a straight rod in noise: with the tilt-significance rule
+    (``ttf.TILT_SIGNIFICANCE`` standard errors) a noise tilt is dropped and the rod's
+    slices pool about one centre. Over 16 noise seeds (12 mm disc, s = 0.7 mm, CNR 10,
+    24 slices) the mean |error| of f50 and f10 against the analytic Gaussian MTF
+    (f50 = 0.18739 / s, f10 = 0.34152 / s) is not larger than with the tilt always kept
+    (measured: f50 0.57 % against 0.61 %, f10 1.57 % against 1.64 %), and every f50 stays
+    within the 5 % of the noisy-disc checks."""
+    errors = {}
+    for significance in (0.0, ttf.TILT_SIGNIFICANCE):
+        monkeypatch.setattr(ttf, "TILT_SIGNIFICANCE", significance)
+        rows = []
+        for seed in range(16):
+            vol, centre = disc_volume(12.0, 0.7, cnr=10, nz=24, seed=seed)
+            e = only_edge(vol, centre)
+            rows.append((e["f50_per_mm"] / f50_true(0.7) - 1.0, e["f10_per_mm"] / f10_true(0.7) - 1.0))
+        errors[significance] = np.abs(np.array(rows))
+    kept, flattened = errors[0.0], errors[ttf.TILT_SIGNIFICANCE]
+    assert flattened[:, 0].mean() <= kept[:, 0].mean()
+    assert flattened[:, 1].mean() <= kept[:, 1].mean()
+    assert flattened[:, 0].max() <= 0.05
