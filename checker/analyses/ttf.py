@@ -87,7 +87,7 @@ from ..errors import ProfileError
 from ..regions import Regions
 from ..results import AnalysisResult, Finding, Overlays, Point, Roi, Severity
 from ..volume import Volume
-from . import _edges
+from . import _edges, _phantom
 from ._edges import BinnedEsf, TtfCurve, bin_esf, condition_esf, esf_shape, ttf_from_esf
 from ._phantom import PHANTOM_DEFAULTS, _grid_step, disc_of, disc_stats, find_phantom
 
@@ -518,6 +518,10 @@ def _phantom_of(volume: Volume, regions: Regions) -> tuple[Any, int, int]:
     no further striding inside (the same pixels, fewer index steps), instead of on a
     finer copy it strides again.
 
+    The search of a copy is not kept as ``find_phantom``'s shared answer (a copy is a new
+    array every time, so it could never be reused), so the full-volume answer that the
+    noise and uniformity analyses of the same volume share stays in place.
+
     Returns the phantom, the in-plane factor and the slice step.
     """
     factor = max(1, int(math.ceil(max(volume.shape[1:]) / 256)))
@@ -537,7 +541,10 @@ def _phantom_of(volume: Volume, regions: Regions) -> tuple[Any, int, int]:
         fov_radius_vox=regions.fov_radius_vox / factor, fov_is_circle=regions.fov_is_circle,
         body_centroid_zyx_vox=None if centroid is None else (centroid[0] / step, centroid[1] / factor, centroid[2] / factor),
     )
-    return find_phantom(small, small_regions), factor, step
+    # searched directly, not through find_phantom's shared answer: the copy is a new
+    # array at every call, so its answer would never be reused, and keeping it would
+    # push out the full-volume answer that the noise analyses of this volume share
+    return _phantom._find_phantom(small, small_regions, dict(PHANTOM_DEFAULTS)), factor, step
 
 
 def _phantom_search_step(nz: int, dz_mm: float) -> int:

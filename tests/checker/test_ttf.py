@@ -619,3 +619,27 @@ def test_tilt_significance_of_run_centres():
     assert not ttf._tilt_is_significant(z, straight, w)
     assert ttf._tilt_is_significant(z, tilted, w)
     assert ttf._tilt_is_significant(z, noiseless, w)
+
+
+def test_decimated_phantom_search_keeps_the_shared_full_volume_answer():
+    """The decimated phantom search of the TTF analysis leaves the full-volume answer
+    that the noise analyses share (``find_phantom``'s cache) in place, and finds the same
+    phantom as before (case: a 300 x 300 x 24 water disc with a +340 HU rod)."""
+    from reconaudit.checker.analyses import _phantom
+
+    n, nz, px = 300, 24, 0.45
+    yy, xx = np.indices((n, n), dtype=float)
+    img = np.where(np.hypot(yy - 150, xx - 150) <= 120, 0.0, -1000.0)
+    img[np.hypot(yy - 150, xx - 200) <= 14] = 340.0
+    st = np.repeat(img[None], nz, axis=0) + np.random.default_rng(6).normal(0, 5, (nz, n, n))
+    vol = Volume.from_array(st.astype(np.float32), (2.5, px, px))
+    regions = find_regions(vol)
+    _phantom._LAST.clear()
+    shared = _phantom.find_phantom(vol, regions)
+    entry = _phantom._LAST["entry"]
+    phantom, factor, step = ttf._phantom_of(vol, regions)
+    assert (factor, step) == (4, 2)
+    assert _phantom._LAST["entry"] is entry
+    assert _phantom.find_phantom(vol, regions) is shared
+    assert phantom.found and phantom.inserts.all()
+    np.testing.assert_allclose(phantom.centre_yx_vox * factor, shared.centre_yx_vox[::step], atol=0.5)
