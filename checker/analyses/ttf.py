@@ -1086,7 +1086,7 @@ def _run_images(crop: np.ndarray, centre: tuple[float, float], r_px: float, px: 
     outside CT numbers of its disc (medians inside 0.6 r and on the ring r + 2 mm ..
     r + 4 mm of the mean of all slices): see :func:`_refine_centres`."""
     nz = crop.shape[0]
-    runs = np.array_split(np.arange(nz), min(groups, nz))
+    runs = _split_runs(nz, min(groups, nz))
     run_sums = _run_sums(crop, runs)
     total = run_sums.sum(axis=0)
     first = total / nz
@@ -1105,6 +1105,16 @@ def _run_images(crop: np.ndarray, centre: tuple[float, float], r_px: float, px: 
 #: A rod's fitted tilt counts only when it exceeds this many of its standard errors
 #: (:func:`_tilt_is_significant`); otherwise its centre line is its mean centre.
 TILT_SIGNIFICANCE = 3.0
+
+
+def _split_runs(nz: int, k: int) -> list[np.ndarray]:
+    """``np.array_split(np.arange(nz), k)`` (the first ``nz % k`` runs one slice longer),
+    without its generic splitting."""
+    size, extra = divmod(nz, k)
+    bounds = [0]
+    for i in range(k):
+        bounds.append(bounds[-1] + size + (1 if i < extra else 0))
+    return [np.arange(a, b) for a, b in zip(bounds[:-1], bounds[1:])]
 
 
 def _centre_line(ri: RunImages, per: np.ndarray, nz: int) -> np.ndarray:

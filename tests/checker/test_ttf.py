@@ -643,3 +643,14 @@ def test_decimated_phantom_search_keeps_the_shared_full_volume_answer():
     assert _phantom.find_phantom(vol, regions) is shared
     assert phantom.found and phantom.inserts.all()
     np.testing.assert_allclose(phantom.centre_yx_vox * factor, shared.centre_yx_vox[::step], atol=0.5)
+
+
+def test_runs_of_slices_split_as_array_split():
+    """The runs a rod's slices are split into for its centre line are those of
+    ``np.array_split`` (the first ones one slice longer when the count does not divide)."""
+    for nz in range(1, 50):
+        for k in range(1, min(nz, 5) + 1):
+            ours, numpy_runs = ttf._split_runs(nz, k), np.array_split(np.arange(nz), k)
+            assert len(ours) == len(numpy_runs) == k
+            for a, b in zip(ours, numpy_runs):
+                np.testing.assert_array_equal(a, b)
