@@ -283,8 +283,39 @@ def find_rod_inserts(volume: Volume, regions: Regions, settings: dict[str, Any] 
         found = _inserts_at_full_resolution(volume.hu, zs, candidates, median_hu, centre, radius, mid, px, s,
                                             window=(z0 - step, z1 + step))
         inserts.extend(ins for ins in found if ins is not None)
+    inserts = distinct_inserts(inserts, px)
     inserts.sort(key=lambda r: (r.z0, r.centre_yx_vox[0], r.centre_yx_vox[1]))
     return inserts
+
+
+def distinct_inserts(inserts: list[Insert], pixel_mm: float) -> list[Insert]:
+    """One insert per rod: of inserts whose slices overlap and whose centres lie within
+    half the smaller radius of each other, the one over the most slices is kept.
+
+    Runs of phantom-search slices are searched one by one, and each found rod's slices
+    are extended to wherever its disc keeps its contrast, so when the phantom search
+    marks a rod's slices in several runs (a low-contrast rod in noise) the same rod is
+    found once per run with the same slices; measured twice, it would be reported as
+    two edges.
+
+    References
+    ----------
+    Common practice, no source (one measurement per physical insert).
+    """
+    kept: list[Insert] = []
+    for ins in sorted(inserts, key=lambda r: (-(r.z1 - r.z0), r.z0)):
+        if not any(_same_rod(ins, other, pixel_mm) for other in kept):
+            kept.append(ins)
+    return kept
+
+
+def _same_rod(a: Insert, b: Insert, pixel_mm: float) -> bool:
+    """Whether two inserts overlap in z and their centres are within half the smaller radius."""
+    if a.z0 > b.z1 or b.z0 > a.z1:
+        return False
+    reach_vox = 0.5 * min(a.radius_mm, b.radius_mm) / max(pixel_mm, 1e-9)
+    dy, dx = a.centre_yx_vox[0] - b.centre_yx_vox[0], a.centre_yx_vox[1] - b.centre_yx_vox[1]
+    return dy * dy + dx * dx <= reach_vox * reach_vox
 
 
 def _finite_median(values: np.ndarray) -> float:
