@@ -549,62 +549,6 @@ def refine_circle_centre(
     return cy, cx
 
 
-def refine_circle_centres(
-    images: np.ndarray,
-    centre_yx: tuple[float, float],
-    radius_px: float,
-    inside_hu: float,
-    outside_hu: float,
-    *,
-    reach_px: float,
-    iterations: int = 8,
-) -> np.ndarray:
-    """:func:`refine_circle_centre` of every image of a (n, y, x) stack from the same
-    start, iterated together (one vectorised pass per iteration); returns (n, 2).
-
-    An image whose centre wanders more than 2 px from the start (beyond the pixels
-    taken about it) is refined on its own.
-
-    References
-    ----------
-    Common practice, no source (centroid of a partial-volume weighted mask).
-    """
-    n = images.shape[0]
-    cy = np.full(n, float(centre_yx[0]))
-    cx = np.full(n, float(centre_yx[1]))
-    if inside_hu == outside_hu or n == 0:
-        return np.stack([cy, cx], axis=1)
-    window = radius_px + reach_px
-    yy, xx, values = _stack_pixels_near(images, (cy[0], cx[0]), window + 2.0)
-    weights = np.clip((values - outside_hu) / (inside_hu - outside_hu), 0.0, 1.0)
-    active = np.ones(n, dtype=bool)
-    alone = np.zeros(n, dtype=bool)
-    for _ in range(iterations):
-        rows = np.flatnonzero(active)
-        if rows.size == 0:
-            break
-        every = rows.size == n  # all still moving: no row selection (no copies)
-        ry, rx = (cy[:, None], cx[:, None]) if every else (cy[rows, None], cx[rows, None])
-        inside = (yy[None] - ry) ** 2 + (xx[None] - rx) ** 2 <= window**2
-        w = np.where(inside, weights if every else weights[rows], 0.0)
-        total = w.sum(axis=1)
-        stop = total <= 0
-        active[rows[stop]] = False
-        if stop.any():
-            rows, w, total = rows[~stop], w[~stop], total[~stop]
-        ny, nx = (w * yy[None]).sum(axis=1) / total, (w * xx[None]).sum(axis=1) / total
-        moved = np.hypot(ny - cy[rows], nx - cx[rows])
-        cy[rows], cx[rows] = ny, nx
-        active[rows[moved < 1e-4]] = False
-        far = np.hypot(cy - centre_yx[0], cx - centre_yx[1]) > 2.0
-        alone |= far & active
-        active &= ~far
-    for k in np.nonzero(alone)[0]:
-        cy[k], cx[k] = refine_circle_centre(images[k], centre_yx, radius_px, inside_hu, outside_hu,
-                                            reach_px=reach_px, iterations=iterations)
-    return np.stack([cy, cx], axis=1)
-
-
 def refine_circle_centres_of_stacks(
     stacks: list[np.ndarray],
     centres_yx: list[tuple[float, float]],
@@ -615,11 +559,11 @@ def refine_circle_centres_of_stacks(
     *,
     iterations: int = 8,
 ) -> list[np.ndarray]:
-    """:func:`refine_circle_centres` of several stacks (e.g. the rods of a phantom), each
-    with its own start, radius, CT numbers and reach, iterated together; returns one
-    (n, 2) array per stack.
+    """:func:`refine_circle_centre` of every image of several stacks (e.g. the rods of a
+    phantom), each with its own start, radius, CT numbers and reach, iterated together;
+    returns one (n, 2) array per stack.
 
-    Each stack's pixels near its start (those :func:`refine_circle_centres` takes) are
+    Each stack's pixels near its start (within the window and 2 px about it) are
     split: those within the window less 2 px of the start are inside the window of
     every centre looked at (a centre that wanders more than 2 px from its start leaves
     the iteration), so their weighted sums are taken once; the others are padded to one

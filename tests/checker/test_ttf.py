@@ -435,8 +435,8 @@ def test_inserts_of_a_run_at_once_equal_one_by_one(monkeypatch, near_border):
 def test_centres_of_several_stacks_refined_together_equal_each_alone():
     """Run images of several rods (own starts, radii, CT numbers; one stack of a
     constant image that cannot be refined) iterated together reach each image's own
-    fixed point: the centres refine_circle_centres gives each stack alone, to 1e-9 px."""
-    from reconaudit.checker.analyses._edges import refine_circle_centres, refine_circle_centres_of_stacks
+    fixed point: the centre refine_circle_centre gives each image alone, to 1e-9 px."""
+    from reconaudit.checker.analyses._edges import refine_circle_centre, refine_circle_centres_of_stacks
 
     stacks, starts, radii, ins, outs, reaches = [], [], [], [], [], []
     for k, (hu, r_mm, cy, cx) in enumerate([(900.0, 6.0, 40.3, 39.6), (-1000.0, 4.0, 41.1, 38.2), (120.0, 9.0, 39.4, 40.8)]):
@@ -455,8 +455,9 @@ def test_centres_of_several_stacks_refined_together_equal_each_alone():
     reaches.append(3.0)
     together = refine_circle_centres_of_stacks(stacks, starts, radii, ins, outs, reaches)
     for j in range(len(stacks)):
-        alone = refine_circle_centres(stacks[j], starts[j], radii[j], ins[j], outs[j], reach_px=reaches[j])
-        np.testing.assert_allclose(together[j], alone, atol=1e-9, rtol=0)
+        alone = [refine_circle_centre(image, starts[j], radii[j], ins[j], outs[j], reach_px=reaches[j])
+                 for image in stacks[j]]
+        np.testing.assert_allclose(together[j], np.array(alone, dtype=float), atol=1e-9, rtol=0)
     assert np.abs(together[0] - np.array([40.3, 39.6])).max() < 0.05  # the disc's centre, not the start
 
 
