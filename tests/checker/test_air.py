@@ -271,12 +271,17 @@ def _fine_torso(nz=24, n=128, noise=12.0, seed=21, sphere=None):
     dz, dy, dx = 1.25, 0.7, 0.7
     img = np.full((n, n), -1000.0, dtype=np.float32)
     img[_ellipse(n, 80, 64, 30, 45)] = 0.0
+    return _with_balls_and_noise(img, nz, [sphere] if sphere is not None else [], noise, seed, (dz, dy, dx))
+
+
+def _with_balls_and_noise(img, nz, balls, noise, seed, spacing):
+    """``nz`` copies of ``img`` with balls painted in (centre z, y, x in mm, radius mm,
+    HU), slightly blurred, plus band-pass correlated noise of SD ``noise``."""
+    dz, dy, dx = spacing
     vol = np.repeat(img[None], nz, axis=0)
-    if sphere is not None:
-        (cz, cy, cx), r, value = sphere
-        z, y, x = np.ogrid[:nz, :n, :n]
-        ball = ((z * dz - cz) ** 2 + (y * dy - cy) ** 2 + (x * dx - cx) ** 2) <= r * r
-        vol[ball] = value
+    z, y, x = np.ogrid[: vol.shape[0], : vol.shape[1], : vol.shape[2]]
+    for (cz, cy, cx), r, value in balls:
+        vol[((z * dz - cz) ** 2 + (y * dy - cy) ** 2 + (x * dx - cx) ** 2) <= r * r] = value
     vol = ndimage.gaussian_filter(vol, (0.4, 0.6, 0.6))
     rng = np.random.default_rng(seed)
     w = rng.standard_normal(vol.shape).astype(np.float32)
@@ -395,16 +400,7 @@ def _armed_torso(nz=40, n=128, noise=12.0, seed=5, balls=(((24.0, 14.0, 30.0), 4
     for cx in (12, 116):
         img[_ellipse(n, 64, cx, 10, 7)] = 40.0
     img[100:106, 20:108] = 250.0
-    vol = np.repeat(img[None], nz, axis=0)
-    z, y, x = np.ogrid[:nz, :n, :n]
-    for (cz, cy, cx), r, value in balls:
-        vol[((z * dz - cz) ** 2 + (y * dy - cy) ** 2 + (x * dx - cx) ** 2) <= r * r] = value
-    vol = ndimage.gaussian_filter(vol, (0.4, 0.6, 0.6))
-    rng = np.random.default_rng(seed)
-    w = rng.standard_normal(vol.shape).astype(np.float32)
-    w = ndimage.gaussian_filter(w, (0.6, 0.9, 0.9)) - ndimage.gaussian_filter(w, (0.6, 2.2, 2.2))
-    vol = vol + w * (noise / w.std())
-    return Volume.from_array(vol.astype(np.float32), spacing_mm=(dz, dy, dx))
+    return _with_balls_and_noise(img, nz, balls, noise, seed, (dz, dy, dx))
 
 
 def test_two_threads_give_the_single_thread_record_and_labels(monkeypatch):
