@@ -344,9 +344,14 @@ def test_strided_insert_screen_finds_what_full_resolution_finds(monkeypatch):
     full = ttf.find_rod_inserts(vol, regions)
     assert len(strided) == len(full) == 4
     for a, b in zip(strided, full):
-        assert (a.z0, a.z1) == (b.z0, b.z1)
-        assert a.centre_yx_vox == pytest.approx(b.centre_yx_vox, abs=1e-9)
-        assert a.radius_mm == pytest.approx(b.radius_mm, abs=1e-9)
+        _assert_same_insert(a, b)
+
+
+def _assert_same_insert(a, b):
+    """Two inserts with the same slices, centre and radius (to 1e-9)."""
+    assert (a.z0, a.z1) == (b.z0, b.z1)
+    assert a.centre_yx_vox == pytest.approx(b.centre_yx_vox, abs=1e-9)
+    assert a.radius_mm == pytest.approx(b.radius_mm, abs=1e-9)
 
 
 # ------------------------------------------------------------------ one binning for the centred range
@@ -426,9 +431,7 @@ def test_inserts_of_a_run_at_once_equal_one_by_one(monkeypatch, near_border):
     alone = ttf.find_rod_inserts(vol, regions)
     assert len(together) == len(alone) == 4
     for a, b in zip(together, alone):
-        assert (a.z0, a.z1) == (b.z0, b.z1)
-        assert a.centre_yx_vox == pytest.approx(b.centre_yx_vox, abs=1e-9)
-        assert a.radius_mm == pytest.approx(b.radius_mm, abs=1e-9)
+        _assert_same_insert(a, b)
         np.testing.assert_array_equal(a.pixels[3], b.pixels[3])
 
 
