@@ -139,10 +139,11 @@ def stage_times(vol: Volume, regions, repeats: int = 3) -> dict[str, float]:
     (mean, noise), times["air statistics"] = _least_cpu(lambda: air.robust_mean_and_noise(sample, s["clip_sigma"]), repeats)
     _, times["body noise"] = _least_cpu(lambda: air.body_noise_hu(vol, regions), repeats)
     sums -= np.float32(mean) * counts
-    maps, times["matched filter"] = _least_cpu(
-        lambda: air.matched_filter_scales(sums, counts, base, vol.spacing_mm, s, s["min_air_noise_hu"], hu.shape[0]), repeats
+    (maps, per_scale, _), times["matched filter + per-scale hysteresis"] = _least_cpu(
+        lambda: air.scale_structures(sums, counts, base, vol.spacing_mm, s, s["min_air_noise_hu"], hu.shape[0]), repeats
     )
-    (lab0, base0, boxes0), times["hysteresis"] = _least_cpu(lambda: air.combine_scales_boxes(maps, s["grow_sigma"]), repeats)
+    (lab0, base0, boxes0), times["scales combined"] = _least_cpu(
+        lambda: air.combine_scales_boxes(maps, s["grow_sigma"], structures=per_scale), repeats)
     ctx = air.Context(regions, air._margin_px(vol, regions), hu.shape[0] == 1, hu.shape[0], grid_px=(max(base[1:]) + 1) // 2)
     found, times["refinement"] = _least_cpu(
         lambda: air.measure_structures(vol, mask, lab0, boxes0, base0, mean, noise, ctx, s, (sums, counts)), repeats

@@ -988,35 +988,6 @@ def _robust_sd(values: np.ndarray, max_samples: int = MAX_ROBUST_SAMPLES) -> tup
     return med, 1.4826 * order_median(np.abs(values - med))
 
 
-def matched_filter_scales(
-    sums: np.ndarray,
-    counts: np.ndarray,
-    base: tuple[int, int, int],
-    spacing_mm: tuple[float, float, float],
-    s: dict[str, Any],
-    noise_floor_hu: float,
-    nz: int,
-) -> list[ScaleMap]:
-    """Filtered contrast and significance of the air at every scale, on the coarse grid.
-
-    ``sums``: the contrast above the air (HU - air mean) summed over the air pixels of
-    each coarse block; ``counts``: the air pixels per block (:func:`coarse_air_grid`).
-    Each scale's grid is made from these by block sums (:func:`scale_levels`); the noise
-    of each filtered map is measured on that map (robust SD over the air), never derived
-    from the pixel noise.
-    """
-    levels = scale_levels(base, spacing_mm, s["scales_mm"], nz)
-    grids = _pyramid(sums, counts, [rel for rel, _ in levels])
-    maps = []
-    for k, (S, C) in enumerate(grids):
-        grids[k] = None  # the map owns its grid from here on (filtered in place)
-        m = scale_map(k, S, C, sums, base, spacing_mm, s, noise_floor_hu, nz)
-        del S, C
-        if m is not None:
-            maps.append(m)
-    return maps
-
-
 def scale_map(
     k: int,
     S: np.ndarray,
@@ -1028,7 +999,7 @@ def scale_map(
     noise_floor_hu: float,
     nz: int,
 ) -> ScaleMap | None:
-    """Scale ``k`` of ``s["scales_mm"]`` (see :func:`matched_filter_scales`) from its grid
+    """Scale ``k`` of ``s["scales_mm"]`` (see :func:`scale_structures`) from its grid
     ``S``, ``C`` (block sums of the coarse grid's ``sums`` and ``counts``; ``S`` is
     filtered in place unless it is ``sums`` itself). None when fewer than 20 cells of the
     grid can be measured.
@@ -1075,8 +1046,15 @@ def scale_structures(
     nz: int,
     side: list[Callable[[], Any]] = (),
 ) -> tuple[list[ScaleMap], list[tuple[np.ndarray, dict[int, float], list[tuple[slice, ...] | None]]], list[Any]]:
-    """The maps of :func:`matched_filter_scales` with the structures of each
-    (:func:`hysteresis_structures_boxes`), and the results of the calls ``side``.
+    """Filtered contrast and significance of the air at every scale, on the coarse grid
+    (:func:`scale_map`), with the structures of each (:func:`hysteresis_structures_boxes`),
+    and the results of the calls ``side``.
+
+    ``sums``: the contrast above the air (HU - air mean) summed over the air pixels of
+    each coarse block; ``counts``: the air pixels per block (:func:`coarse_air_grid`).
+    Each scale's grid is made from these by block sums (:func:`scale_levels`); the noise
+    of each filtered map is measured on that map (robust SD over the air), never derived
+    from the pixel noise.
 
     Lanes of work that share nothing but their inputs, on ``AIR_THREADS`` threads (one
     after the other on one, :func:`run_lanes`): the finest scale (its grid is the coarse
