@@ -54,16 +54,37 @@ class SeriesTask:
     threads: int = 0
 
 
-def _limit_threads(n: int) -> None:
-    """Keep the analyses that use threads to ``n`` in this process."""
-    if n > 0:
-        from . import pipeline, regions
-        from .analyses import air, streaks
+_THREAD_SETTINGS = (("pipeline", "ANALYSIS_THREADS"), ("regions", "REGIONS_THREADS"),
+                    ("analyses.streaks", "SCREEN_THREADS"), ("analyses.air", "AIR_THREADS"))
 
-        streaks.SCREEN_THREADS = n
-        air.AIR_THREADS = n
-        pipeline.ANALYSIS_THREADS = n
-        regions.REGIONS_THREADS = n
+
+def _thread_modules():
+    from . import pipeline, regions
+    from .analyses import air, streaks
+
+    return {"pipeline": pipeline, "regions": regions, "analyses.streaks": streaks, "analyses.air": air}
+
+
+def _limit_threads(n: int) -> None:
+    """Keep the analyses that use threads to ``n`` in this process (0: leave them be)."""
+    if n > 0:
+        modules = _thread_modules()
+        for mod, name in _THREAD_SETTINGS:
+            setattr(modules[mod], name, n)
+
+
+@contextlib.contextmanager
+def thread_budget(n: int):
+    """``_limit_threads(n)`` for the duration of the block, then the settings as they were
+    (a series checked in the calling process must not change its later analyses)."""
+    modules = _thread_modules()
+    saved = [(modules[mod], name, getattr(modules[mod], name)) for mod, name in _THREAD_SETTINGS]
+    try:
+        _limit_threads(n)
+        yield
+    finally:
+        for module, name, value in saved:
+            setattr(module, name, value)
 
 
 def series_id_for(description: str, key: str) -> str:
@@ -292,8 +313,8 @@ def run_dask(tasks: list[SeriesTask], on_done: Callable[[dict[str, Any]], None],
 def _safe_run(task: SeriesTask) -> dict[str, Any]:
     """run_series, turning any unexpected exception into an error record."""
     try:
-        _limit_threads(task.threads)
-        return run_series(task)
+        with thread_budget(task.threads):
+            return run_series(task)
     except Exception as exc:
         log.debug("%s failed:\n%s", task.series_id, traceback.format_exc())
         return error_record(task.series_id, str(task.source.source), task.source.series_uid, exc,

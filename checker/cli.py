@@ -68,7 +68,9 @@ def build_parser() -> argparse.ArgumentParser:
     c.add_argument("inputs", nargs="+", metavar="INPUT", help="DICOM folders/files, NIfTI/MHA/NRRD files, .npy")
     c.add_argument("--out", required=True, metavar="DIR", help="folder for results.json, results.csv, report.html")
     c.add_argument("--profile", metavar="TOML", help="site profile merged over the shipped default")
-    c.add_argument("--workers", type=int, default=None, metavar="N", help="local worker processes (default: cores)")
+    c.add_argument("--workers", type=int, default=None, metavar="N",
+                   help="cores the check may use: local worker processes, one series each "
+                   "(default: all cores; 1 keeps the check on one core)")
     c.add_argument("--scheduler", metavar="ADDRESS", help="send the series to a Dask scheduler instead")
     c.add_argument("--db", metavar="SQLITE", help="history database (default: $RECONAUDIT_HOME/history.sqlite)")
     c.add_argument("--no-history", action="store_true", help="neither read nor write the history database")

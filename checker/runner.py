@@ -198,19 +198,21 @@ def _trend_figures(history, records: list[dict[str, Any]], out_dir: Path) -> dic
 
 def _worker_count(opts: CheckOptions, n_tasks: int, cores: int) -> int:
     """Local worker processes: as asked (default: the cores), never more than the tasks
-    (a lone series runs in this process and keeps every core for its analyses)."""
+    (a lone series runs in this process and keeps the run's cores for its analyses)."""
     return max(1, min(opts.workers or cores, n_tasks))
 
 
 def _threads_per_task(opts: CheckOptions, workers: int, cores: int) -> int:
     """Threads an analysis may use: 1 on a Dask cluster (its workers share their
-    machines), else the cores left to each local worker (0, the analyses' own default,
-    when one process has them all)."""
+    machines); else the cores the run may use (``--workers``, default all of them)
+    shared among its local processes, so ``--workers 1`` keeps a check on one core.
+    0 (the analyses' own default) when one process has every core."""
     if opts.scheduler:
         return 1
-    if workers <= 1:
+    budget = min(opts.workers or cores, cores)
+    if workers <= 1 and budget >= cores:
         return 0
-    return max(1, cores // workers)
+    return max(1, budget // max(1, workers))
 
 
 def check(opts: CheckOptions, progress_factory: Callable[[int], Any] | None = None) -> CheckOutcome:

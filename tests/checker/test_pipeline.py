@@ -81,3 +81,40 @@ def test_threads_follow_the_task_budget():
     finally:
         pipeline.ANALYSIS_THREADS, streaks.SCREEN_THREADS, regions.REGIONS_THREADS, air.AIR_THREADS = saved
     assert np.isfinite(pipeline._cores())
+
+
+def test_workers_is_the_core_budget_of_a_run():
+    from pathlib import Path
+
+    from reconaudit.checker.runner import CheckOptions, _threads_per_task, _worker_count
+
+    def plan(workers, tasks, cores, scheduler=None):
+        opts = CheckOptions(inputs=[Path(".")], out_dir=Path("."), workers=workers, scheduler=scheduler)
+        n = _worker_count(opts, tasks, cores)
+        return n, _threads_per_task(opts, n, cores)
+
+    assert plan(None, 1, 2) == (1, 0)  # a lone series, every core: the analyses' default
+    assert plan(None, 8, 2) == (2, 1)
+    assert plan(1, 8, 2) == (1, 1)  # --workers 1 keeps the check on one core
+    assert plan(1, 1, 4) == (1, 1)
+    assert plan(2, 1, 4) == (1, 2)  # a lone series keeps the two cores it was given
+    assert plan(2, 8, 4) == (2, 1)
+    assert plan(4, 8, 2) == (4, 1)  # more processes than cores: one thread each
+    assert plan(None, 8, 2, scheduler="tcp://127.0.0.1:1") == (2, 1)
+
+
+def test_a_series_checked_in_process_leaves_the_thread_settings_as_they_were():
+    from reconaudit.checker import batch, regions
+    from reconaudit.checker.analyses import air, streaks
+
+    def settings():
+        return pipeline.ANALYSIS_THREADS, streaks.SCREEN_THREADS, regions.REGIONS_THREADS, air.AIR_THREADS
+
+    before = settings()
+    with batch.thread_budget(1):
+        assert settings() == (1, 1, 1, 1)
+    assert settings() == before
+    with pytest.raises(RuntimeError):
+        with batch.thread_budget(3):
+            raise RuntimeError("an analysis failed")
+    assert settings() == before
