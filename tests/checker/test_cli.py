@@ -167,3 +167,24 @@ def test_the_command_module_sets_it_before_numpy_is_imported():
             "cli.prefer_small_pages()\n"
             "sys.exit(0 if not early and os.environ['NUMPY_MADVISE_HUGEPAGE'] == '0' else 1)\n")
     assert subprocess.run([_sys.executable, "-c", code], timeout=120).returncode == 0
+
+
+def test_a_check_with_figures_off_does_not_import_matplotlib(two_series, tmp_path):
+    out = tmp_path / "out"
+    code = ("import sys\n"
+            "from reconaudit.checker.cli import main\n"
+            f"rc = main(['check', {str(two_series)!r}, '--out', {str(out)!r}, '--no-figures', '--no-history',"
+            " '--workers', '1'])\n"
+            "sys.exit(3 if 'matplotlib' in sys.modules else rc)\n")
+    done = subprocess.run([sys.executable, "-c", code], timeout=300, capture_output=True, text=True)
+    assert done.returncode in (0, 1), done.stderr[-2000:]
+    assert (out / "report.html").exists() and (out / "results.json").exists()
+
+
+def test_the_figures_are_there_when_asked_for():
+    from reconaudit.checker import report
+
+    assert callable(report.render_series_figures) and callable(report.draw_trend_chart)
+    assert report.figures.choose_slice is report.choose_slice
+    with pytest.raises(AttributeError):
+        report.no_such_thing  # noqa: B018

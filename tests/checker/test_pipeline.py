@@ -118,3 +118,19 @@ def test_a_series_checked_in_process_leaves_the_thread_settings_as_they_were():
         with batch.thread_budget(3):
             raise RuntimeError("an analysis failed")
     assert settings() == before
+
+
+def test_workers_are_forked_with_the_enabled_analyses_already_imported():
+    import subprocess
+    import sys
+
+    code = ("import sys\n"
+            "from reconaudit.checker import batch\n"
+            "batch.preload_worker_modules(['streaks', 'air', 'no-such-analysis'])\n"
+            "names = ('reconaudit.checker.analyses.streaks', 'reconaudit.checker.analyses.air',\n"
+            "         'reconaudit.checker.load', 'reconaudit.checker.pipeline')\n"
+            "ok = all(n in sys.modules for n in names) and 'reconaudit.checker.analyses.ttf' not in sys.modules\n"
+            "ok = ok and 'matplotlib' not in sys.modules\n"
+            "batch.preload_worker_modules([], figures=True)\n"
+            "sys.exit(0 if ok and 'matplotlib' in sys.modules else 1)\n")
+    assert subprocess.run([sys.executable, "-c", code], timeout=300).returncode == 0
