@@ -348,3 +348,26 @@ def test_fit_removal_over_several_products_equals_detrend():
     stack -= stack.mean(axis=(1, 2), keepdims=True)
     res, _ = nps._remove_fit_in_place(stack.astype(np.float32), "poly2")
     assert np.abs(res - nps.detrend_rois(stack, "poly2")).max() < 1e-3
+
+
+@pytest.mark.parametrize("shape, spacing", [((64, 64), (0.45, 0.45)), ((63, 64), (0.8, 0.8)),
+                                            ((40, 33), (0.5, 0.7)), ((17, 20), (1.0, 0.6))])
+def test_radial_nps_from_the_half_spectrum_equals_the_whole_spectrum(shape, spacing):
+    """The variance and radial NPS taken from the real DFT's half spectrum equal the sum
+    and :func:`nps.radial_average` of the whole centred 2-D NPS (the reference), for even
+    and odd, square and rectangular ROIs, white and band-pass noise; a change of the
+    noise changes them (the comparison can fail)."""
+    rng = np.random.default_rng(41)
+    for blur in (0.0, 1.5):
+        w = rng.normal(0.0, 12.0, (20, *shape))
+        res = ndimage.gaussian_filter(w, (0, blur, blur)) if blur else w
+        res = res - res.mean(axis=(1, 2), keepdims=True)
+        variance, f, curve = nps._radial_nps_of_residuals(res, spacing)
+        full, fy, fx = nps._nps_2d_of_residuals(res, spacing)
+        f_ref, curve_ref = nps.radial_average(full, fy, fx)
+        assert variance == pytest.approx(float(full.sum() * abs(fy[1] - fy[0]) * abs(fx[1] - fx[0])), rel=1e-12)
+        assert variance == pytest.approx(float(np.mean(res**2)), rel=1e-9)  # Parseval
+        assert np.array_equal(f, f_ref)
+        assert np.allclose(curve, curve_ref, rtol=1e-12, atol=0.0)
+        other = nps._radial_nps_of_residuals(res * np.linspace(0.5, 1.5, shape[1]), spacing)[2]
+        assert not np.allclose(other[1:], curve[1:], rtol=1e-3)
