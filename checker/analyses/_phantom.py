@@ -221,13 +221,30 @@ def disc_stats(masks: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray, n
     cy = (row_counts @ np.arange(ny)) / safe
     cx = (as_int.sum(axis=1, dtype=count_type).astype(np.int64) @ np.arange(nx)) / safe
     first = np.argmax(masks, axis=2)
-    last = nx - 1 - np.argmax(masks[:, :, ::-1], axis=2)
+    last = _last_true_index(masks)
     dx2 = np.maximum((first - cx[:, None]) ** 2, (last - cx[:, None]) ** 2)
     d2 = np.where(row_counts > 0, (np.arange(ny)[None, :] - cy[:, None]) ** 2 + dx2, 0.0)
     r_max = np.sqrt(d2.max(axis=1)) + 0.5
     empty = n == 0
     fill = np.where(empty, 0.0, n / (np.pi * r_max**2))
     return np.where(empty, np.nan, cy), np.where(empty, np.nan, cx), np.sqrt(n / np.pi), fill
+
+
+def _last_true_index(masks: np.ndarray) -> np.ndarray:
+    """Index of the last True of every row of a contiguous (z, y, x) boolean stack (0
+    for a row with none), as ``nx - 1 - argmax(masks[:, :, ::-1], axis=2)``.
+
+    When a row is a whole number of 8-byte words, the rows are reversed by reversing
+    the order of their words and the bytes in each word (one contiguous copy), so the
+    search runs forwards on contiguous memory (several times faster than on the
+    reversed view). The same indices.
+    """
+    nx = masks.shape[2]
+    if nx % 8 or not masks.flags.c_contiguous:
+        return nx - 1 - np.argmax(masks[:, :, ::-1], axis=2)
+    words = masks.view(np.uint8).view(np.uint64)
+    reversed_rows = words[:, :, ::-1].byteswap().view(bool)  # byteswap: a new array
+    return nx - 1 - np.argmax(reversed_rows, axis=2)
 
 
 def _inner_discs(

@@ -719,10 +719,11 @@ def _square_roi(z0: int, z1: int, cy: float, cx: float, n: int, label: str) -> R
 
 
 def _inside_disc(roi: Roi, cy: float, cx: float, r: float) -> bool:
-    ys = np.array([roi.y0, roi.y1 - 1], float)
-    xs = np.array([roi.x0, roi.x1 - 1], float)
-    d2 = (ys[:, None] - cy) ** 2 + (xs[None, :] - cx) ** 2
-    return bool(d2.max() <= r * r)
+    """Every corner pixel centre of ``roi`` lies within ``r`` of (cy, cx) (the farther
+    row and the farther column: the same squared distances in double precision)."""
+    dy2 = max((float(roi.y0) - cy) ** 2, (float(roi.y1 - 1) - cy) ** 2)
+    dx2 = max((float(roi.x0) - cx) ** 2, (float(roi.x1 - 1) - cx) ** 2)
+    return bool(dy2 + dx2 <= r * r)
 
 
 def _overlaps(a: Roi, b: Roi) -> bool:

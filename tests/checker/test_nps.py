@@ -371,3 +371,22 @@ def test_radial_nps_from_the_half_spectrum_equals_the_whole_spectrum(shape, spac
         assert np.allclose(curve, curve_ref, rtol=1e-12, atol=0.0)
         other = nps._radial_nps_of_residuals(res * np.linspace(0.5, 1.5, shape[1]), spacing)[2]
         assert not np.allclose(other[1:], curve[1:], rtol=1e-3)
+
+
+def test_roi_inside_disc_test_equals_every_corner_distance():
+    """An ROI is inside the usable disc exactly when each of its four corner pixel
+    centres is (the reference: the squared distances of all four corners, numpy),
+    for ROIs inside, crossing and outside the disc."""
+    from reconaudit.checker.results import Roi
+
+    rng = np.random.default_rng(5)
+    seen = set()
+    for _ in range(400):
+        y0, x0, n = int(rng.integers(0, 200)), int(rng.integers(0, 200)), int(rng.integers(1, 70))
+        roi = Roi(0, 3, y0, x0, y0 + n, x0 + n, "t")
+        cy, cx, r = 130.0 + rng.normal(0, 3), 128.0 + rng.normal(0, 3), float(rng.uniform(20, 110))
+        ys, xs = np.array([y0, y0 + n - 1], float), np.array([x0, x0 + n - 1], float)
+        expected = bool((((ys[:, None] - cy) ** 2 + (xs[None, :] - cx) ** 2)).max() <= r * r)
+        assert nps._inside_disc(roi, cy, cx, r) is expected
+        seen.add(expected)
+    assert seen == {True, False}

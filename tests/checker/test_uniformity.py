@@ -508,3 +508,33 @@ def test_clipped_level_and_scale_of_pure_noise_and_of_a_mixture():
     level, scale = _phantom.clipped_level_and_scale(mixed, inner)
     assert np.all(plain_level > 3.0) and np.all(plain_scale > 14.0)
     assert np.all(np.abs(level) < 1.5) and np.all(np.abs(scale / 10.0 - 1.0) < 0.15)
+
+
+def test_last_true_index_of_whole_word_rows_equals_the_reversed_search():
+    """The last True of each row, found on rows reversed word by word (widths that are a
+    whole number of 8-byte words) or on the reversed view (other widths), equals numpy's
+    search of the reversed rows (the reference), rows with none and full rows included;
+    disc_stats on such masks still gives disc_of's numbers slice by slice."""
+    rng = np.random.default_rng(17)
+    for nx in (8, 64, 72, 90, 128):
+        masks = rng.random((5, 9, nx)) > 0.9
+        masks[0, 0] = False
+        masks[1, 2] = True
+        masks[2, 3] = False
+        masks[2, 3, nx - 1] = True
+        masks[3, 4] = False
+        masks[3, 4, 0] = True
+        expected = nx - 1 - np.argmax(masks[:, :, ::-1], axis=2)
+        got = _phantom._last_true_index(masks)
+        assert np.array_equal(got, expected), nx
+        assert got[2, 3] == nx - 1 and got[3, 4] == 0
+    yy, xx = np.mgrid[:96, :128]
+    masks = np.zeros((3, 96, 128), dtype=bool)
+    masks[0] = (yy - 47.2) ** 2 + (xx - 70.9) ** 2 <= 30**2
+    masks[1] = ((yy - 40) / 20.0) ** 2 + ((xx - 60) / 50.0) ** 2 <= 1
+    masks[2] = rng.random((96, 128)) > 0.7
+    cy, cx, r, fill = _phantom.disc_stats(masks)
+    for z in range(3):
+        (ey, ex), er, ef = _phantom.disc_of(masks[z])
+        assert (cy[z], cx[z], r[z], fill[z]) == pytest.approx((ey, ex, er, ef), rel=1e-12)
+    assert fill[1] < 0.6 < fill[0]  # the ellipse is told from the disc
