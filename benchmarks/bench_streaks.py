@@ -9,7 +9,12 @@ array of such a series), the whole-analysis time is printed as a ratio to it (ta
 ``--torso`` uses the harness's torso-like benchmark volume (the phantom of the cached
 benchmark series, built in memory) instead of the synthetic ellipse.
 
-Run: python benchmarks/bench_streaks.py [--slices 400] [--repeats 3] [--threads 2] [--torso]
+``--stages`` also prints the wall and CPU medians of the first screen's stages run
+alone over the volume's tasks (slab binning, slab masks, texture, FFT and cell sums), on
+one thread and on ``--threads`` threads, alternating stages and thread counts so that a
+load change does not skew one stage; the stage inputs are formed once beforehand.
+
+Run: python benchmarks/bench_streaks.py [--slices 400] [--repeats 3] [--threads 2] [--torso] [--stages]
 """
 from __future__ import annotations
 
@@ -18,6 +23,7 @@ import resource
 import statistics
 import sys
 import time
+from collections.abc import Callable
 from pathlib import Path
 
 import numpy as np
@@ -98,12 +104,87 @@ def timed_runs(fn, repeats: int) -> tuple[float, float, object]:
     return statistics.median(walls), statistics.median(cpus), result
 
 
+def first_screen_stages(vol: Volume, regions) -> dict[str, Callable[[int], None]] | None:
+    """The first screen's stages as functions of a task index (None when there is no first screen).
+
+    Each stage runs alone on one task (``SCREEN_STACK`` first-screen slabs): binning
+    (:func:`streaks.bin_slab`), masks (:meth:`streaks.AllowedMasks.slab_stack`), texture
+    (:func:`streaks.screen_textures`) and the FFT with the cell sums
+    (:func:`streaks.profiles_of_textures`); the later stages read the outputs of the
+    earlier ones, formed once here.
+    """
+    cfg = streaks.resolve_settings(None)
+    nz, ny, nx = vol.shape
+    slab = streaks.slab_size(vol.spacing_mm[0], cfg)
+    first = streaks.first_screen_size(vol.spacing_mm[0], slab, cfg)
+    if first <= slab or nz <= first:
+        return None
+    f = streaks.screen_factor((ny, nx), int(cfg["screen_max_px"]))
+    shape_b = (ny // f, nx // f)
+    bins = streaks.spectral_bins(shape_b, tuple(cfg["band_cycles_per_px"]), float(cfg["angle_bin_deg"]))
+    masks = streaks.AllowedMasks(regions, f, shape_b, cfg)
+    n_slabs = nz // first
+    per_task = streaks.SCREEN_STACK
+    tasks = [(a, min(a + per_task, n_slabs)) for a in range(0, n_slabs, per_task)]
+    means = np.empty((n_slabs,) + shape_b, np.float32)
+    allowed = np.empty((n_slabs,) + shape_b, bool)
+    textures = np.empty((n_slabs,) + shape_b, np.float32)
+
+    def binning(i: int) -> None:
+        ws = streaks.thread_workspace()
+        for j in range(*tasks[i]):
+            streaks.bin_slab(vol.hu, list(range(j * first, (j + 1) * first)), f, out=means[j], ws=ws)
+
+    def slab_masks(i: int) -> None:
+        a, b = tasks[i]
+        allowed[a:b] = masks.slab_stack(a * first, b * first, first, streaks.thread_workspace())
+
+    def texture(i: int) -> None:
+        a, b = tasks[i]
+        tex, _ = streaks.screen_textures(means[a:b], allowed[a:b], cfg, np.ones(b - a, bool),
+                                         streaks.thread_workspace())
+        textures[a:b] = tex
+
+    def fft_cells(i: int) -> None:
+        a, b = tasks[i]
+        streaks.profiles_of_textures(textures[a:b].copy(), [True] * (b - a), bins, streaks.thread_workspace())
+
+    stages = {"binning": binning, "masks": slab_masks, "texture": texture, "FFT + cells": fft_cells}
+    for fn in stages.values():  # inputs of the later stages
+        streaks.map_slices(fn, len(tasks), 1)
+    stages["_tasks"] = len(tasks)  # type: ignore[assignment]
+    return stages
+
+
+def print_stages(vol: Volume, regions, threads: int, repeats: int) -> None:
+    """Wall and CPU medians of each first-screen stage on 1 and ``threads`` threads (alternating)."""
+    stages = first_screen_stages(vol, regions)
+    if stages is None:
+        print("stages: no first screen at this slice spacing")
+        return
+    n_tasks = stages.pop("_tasks")
+    counts = sorted({1, max(1, threads)})
+    times: dict[tuple[str, int], list[tuple[float, float]]] = {}
+    for _ in range(max(1, repeats)):
+        for th in counts:
+            for name, fn in stages.items():
+                t0, c0 = time.perf_counter(), time.process_time()
+                streaks.map_slices(fn, n_tasks, th)
+                times.setdefault((name, th), []).append((time.perf_counter() - t0, time.process_time() - c0))
+    for th in counts:
+        parts = ", ".join(f"{name} {statistics.median(w for w, _ in times[(name, th)]) * 1e3:.1f}/"
+                          f"{statistics.median(c for _, c in times[(name, th)]) * 1e3:.1f}"
+                          for name in stages)
+        print(f"first-screen stages, {th} thread(s), median of {repeats}, wall/CPU ms: {parts}")
+
+
 def main() -> None:
     parser = argparse.ArgumentParser(description=__doc__)
     parser.add_argument("--slices", type=int, default=400)
     parser.add_argument("--repeats", type=int, default=3)
     parser.add_argument("--threads", type=int, default=None, help="threads of the screen (default: the module's)")
     parser.add_argument("--torso", action="store_true", help="the harness's torso-like volume instead of the ellipse")
+    parser.add_argument("--stages", action="store_true", help="also time the first screen's stages alone")
     args = parser.parse_args()
     if args.threads is not None:
         streaks.SCREEN_THREADS = max(1, args.threads)
@@ -129,6 +210,8 @@ def main() -> None:
         print(f"read limit {limit:.2f} s -> ratio wall {wall / limit:.3f}, CPU {cpu / limit:.3f} (target <= 0.25)")
     else:
         print("benchmarks/harness.py read_limit not available; absolute times only")
+    if args.stages:
+        print_stages(vol, regions, streaks.SCREEN_THREADS, max(args.repeats, 5))
 
 
 if __name__ == "__main__":
