@@ -10,6 +10,7 @@ A series whose worker dies is retried once, then recorded as an error.
 from __future__ import annotations
 
 import contextlib
+import gc
 import json
 import logging
 import os
@@ -282,9 +283,13 @@ def _pool_round(tasks: list[SeriesTask], on_done: Callable[[dict[str, Any]], Non
                 marks: str) -> list[tuple[SeriesTask, str, bool]]:
     """Run ``tasks`` in one pool; return (task, reason, started) for those lost with the pool.
 
-    Once every result is in, the pool is shut down without waiting for its idle
-    processes to exit (they have nothing left to do; waiting only delays the outputs)."""
+    The objects of this process are frozen out of the garbage collector while the pool
+    runs, so a forked worker's collections do not write to (and copy) every page it
+    inherited (``gc.freeze``, Python documentation). Once every result is in, the pool is
+    shut down without waiting for its idle processes to exit (they have nothing left to
+    do; waiting only delays the outputs)."""
     lost = []
+    gc.freeze()
     pool = ProcessPoolExecutor(max_workers=min(workers, len(tasks)))
     try:
         futures = {pool.submit(_marked_run, task, marks): task for task in tasks}
@@ -300,6 +305,8 @@ def _pool_round(tasks: list[SeriesTask], on_done: Callable[[dict[str, Any]], Non
     except BaseException:
         pool.shutdown(wait=True, cancel_futures=True)
         raise
+    finally:
+        gc.unfreeze()
     pool.shutdown(wait=False)
     for task, _, _ in lost:
         with contextlib.suppress(FileNotFoundError):

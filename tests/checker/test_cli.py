@@ -188,3 +188,16 @@ def test_the_figures_are_there_when_asked_for():
     assert report.figures.choose_slice is report.choose_slice
     with pytest.raises(AttributeError):
         report.no_such_thing  # noqa: B018
+
+
+def test_a_two_worker_check_gives_the_one_worker_results_and_unfreezes_the_collector(two_series, tmp_path):
+    import gc
+
+    for workers in ("1", "2"):
+        _run(["check", str(two_series), "--out", str(tmp_path / workers), "--no-history", "--no-figures",
+              "--workers", workers])
+    assert gc.get_freeze_count() == 0
+    one, two = (json.loads((tmp_path / w / "results.json").read_text())["series"] for w in ("1", "2"))
+    assert [s["id"] for s in one] == [s["id"] for s in two]
+    assert [s["nps"] for s in one] == [s["nps"] for s in two]
+    assert [s["verdict"] for s in one] == [s["verdict"] for s in two]
