@@ -55,31 +55,27 @@ class SeriesTask:
     threads: int = 0
 
 
-_THREAD_SETTINGS = (("pipeline", "ANALYSIS_THREADS"), ("regions", "REGIONS_THREADS"),
-                    ("analyses.streaks", "SCREEN_THREADS"), ("analyses.air", "AIR_THREADS"))
-
-
-def _thread_modules():
+def _thread_settings() -> tuple[tuple[Any, str], ...]:
+    """(module, name) of every module-level thread limit of the stages that use threads."""
     from . import pipeline, regions
     from .analyses import air, streaks
 
-    return {"pipeline": pipeline, "regions": regions, "analyses.streaks": streaks, "analyses.air": air}
+    return ((pipeline, "ANALYSIS_THREADS"), (regions, "REGIONS_THREADS"), (streaks, "SCREEN_THREADS"),
+            (air, "AIR_THREADS"))
 
 
 def _limit_threads(n: int) -> None:
     """Keep the analyses that use threads to ``n`` in this process (0: leave them be)."""
     if n > 0:
-        modules = _thread_modules()
-        for mod, name in _THREAD_SETTINGS:
-            setattr(modules[mod], name, n)
+        for module, name in _thread_settings():
+            setattr(module, name, n)
 
 
 @contextlib.contextmanager
 def thread_budget(n: int):
     """``_limit_threads(n)`` for the duration of the block, then the settings as they were
     (a series checked in the calling process must not change its later analyses)."""
-    modules = _thread_modules()
-    saved = [(modules[mod], name, getattr(modules[mod], name)) for mod, name in _THREAD_SETTINGS]
+    saved = [(module, name, getattr(module, name)) for module, name in _thread_settings()]
     try:
         _limit_threads(n)
         yield
