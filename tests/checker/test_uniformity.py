@@ -122,6 +122,15 @@ def test_every_tolerance_has_a_source():
 
 
 # ------------------------------------------------------- the phantom finder's helpers
+def _disc_stats_match_disc_of(masks, slices):
+    """disc_stats of the stack equals disc_of on each of ``slices``; returns the stack's values."""
+    cy, cx, r, fill = _phantom.disc_stats(masks)
+    for z in slices:
+        (ey, ex), er, ef = _phantom.disc_of(masks[z])
+        assert (cy[z], cx[z], r[z], fill[z]) == pytest.approx((ey, ex, er, ef), rel=1e-12)
+    return cy, cx, r, fill
+
+
 def test_disc_stats_agrees_with_disc_of_slice_by_slice():
     """The stack version gives disc_of's centre, radius and fill on every slice
     (including an empty slice: NaN centre, zero radius and fill)."""
@@ -131,10 +140,7 @@ def test_disc_stats_agrees_with_disc_of_slice_by_slice():
     masks[0] = (yy - 30.3) ** 2 + (xx - 41.7) ** 2 <= 20**2
     masks[1] = ((yy - 35) / 12.0) ** 2 + ((xx - 45) / 30.0) ** 2 <= 1
     masks[2] = rng.random((70, 90)) > 0.6
-    cy, cx, r, fill = _phantom.disc_stats(masks)
-    for z in range(3):
-        (ey, ex), er, ef = _phantom.disc_of(masks[z])
-        assert (cy[z], cx[z], r[z], fill[z]) == pytest.approx((ey, ex, er, ef), rel=1e-12)
+    cy, cx, r, fill = _disc_stats_match_disc_of(masks, range(3))
     assert np.isnan(cy[3]) and np.isnan(cx[3]) and r[3] == 0 and fill[3] == 0
 
 
@@ -533,8 +539,5 @@ def test_last_true_index_of_whole_word_rows_equals_the_reversed_search():
     masks[0] = (yy - 47.2) ** 2 + (xx - 70.9) ** 2 <= 30**2
     masks[1] = ((yy - 40) / 20.0) ** 2 + ((xx - 60) / 50.0) ** 2 <= 1
     masks[2] = rng.random((96, 128)) > 0.7
-    cy, cx, r, fill = _phantom.disc_stats(masks)
-    for z in range(3):
-        (ey, ex), er, ef = _phantom.disc_of(masks[z])
-        assert (cy[z], cx[z], r[z], fill[z]) == pytest.approx((ey, ex, er, ef), rel=1e-12)
+    fill = _disc_stats_match_disc_of(masks, range(3))[3]
     assert fill[1] < 0.6 < fill[0]  # the ellipse is told from the disc
