@@ -607,32 +607,58 @@ _TABLES: list[_PatternTables] = []
 
 
 def pattern_tables() -> _PatternTables:
-    """The block look-up tables, built once (one ``ndimage.label`` of all 65536 patterns).
+    """The block look-up tables, built once per process.
+
+    The 4-connected pieces of all 65536 patterns are grown at once in 16-bit words: a
+    piece starts at the lowest set pixel not yet in a piece and grows by one pixel step
+    (left, right, up, down inside the block, kept within the pattern) until it stops
+    changing; so the pieces are numbered in raster order of their first pixel, as
+    ``ndimage.label`` numbers them (the tests compare both for every pattern).
 
     References
     ----------
     .. [1] Common practice, no source (look-up tables over the bit patterns of small blocks
-       in connected-component labelling).
+       in connected-component labelling; flood fill by bit shifts).
     """
     if _TABLES:
         return _TABLES[0]
     n = 1 << (BLOCK * BLOCK)
-    codes = np.arange(n, dtype="<u2").view(np.uint8).reshape(n, 2)
-    pixels = np.unpackbits(codes, axis=1, bitorder="little").view(bool)  # bit k of a pattern: pixel k
-    st = np.zeros((3, 3, 3), dtype=bool)
-    st[1] = ndimage.generate_binary_structure(2, 1)
-    lab = np.empty((n, BLOCK, BLOCK), dtype=np.int32)
-    ndimage.label(pixels.reshape(n, BLOCK, BLOCK), structure=st, output=lab)  # pieces never span patterns
-    lab = lab.reshape(n, 16)
-    first = lab[np.arange(n), pixels.argmax(axis=1)]  # labels run in raster order: the first set pixel's is the least
-    sub = lab - (first - 1)[:, None]
-    sub *= pixels
-    sub = sub.astype(np.uint8)
-    submask = np.stack([np.packbits(sub == k + 1, axis=1, bitorder="little").view("<u2")[:, 0]
-                        for k in range(8)], axis=1).astype(np.uint16)
-    tables = _PatternTables(pixels, pixels.sum(axis=1, dtype=np.uint8), sub, sub.max(axis=1), submask)
+    codes = np.arange(n, dtype=np.uint32).astype(np.uint16)
+    pixels = np.unpackbits(codes.astype("<u2").view(np.uint8).reshape(n, 2), axis=1, bitorder="little").view(bool)
+    submask = _pieces_of_patterns(codes)
+    in_piece = np.unpackbits(submask.astype("<u2").view(np.uint8), axis=1, bitorder="little").reshape(n, 8, 16)
+    sub = np.einsum("nkp,k->np", in_piece, np.arange(1, 9, dtype=np.uint8))  # 1 + piece of each set pixel, 0 where unset
+    nsub = np.count_nonzero(submask, axis=1).astype(np.uint8)
+    tables = _PatternTables(pixels, pixels.sum(axis=1, dtype=np.uint8), sub, nsub, submask)
     _TABLES.append(tables)
     return tables
+
+
+#: Pixels of a 4 x 4 block that have a left (column - 1) / right (column + 1) neighbour.
+_HAS_LEFT = np.uint16(0xEEEE)
+_HAS_RIGHT = np.uint16(0x7777)
+
+
+def _pieces_of_patterns(codes: np.ndarray) -> np.ndarray:
+    """(n, 8) uint16: the 4-connected pieces of each 4 x 4 pattern (bit 4 r + c), ordered
+    by their lowest pixel; 0 past the last piece (a 4 x 4 block holds at most 8)."""
+    submask = np.zeros((codes.size, 8), dtype=np.uint16)
+    remaining = codes.copy()
+    for k in range(8):
+        rows = np.flatnonzero(remaining)
+        if rows.size == 0:
+            break
+        left, pattern = remaining[rows], codes[rows]
+        piece = left & (~left + np.uint16(1))  # the lowest set pixel
+        while True:
+            grown = piece | ((piece << 1) & _HAS_LEFT) | ((piece >> 1) & _HAS_RIGHT) | (piece << 4) | (piece >> 4)
+            grown &= pattern
+            if np.array_equal(grown, piece):
+                break
+            piece = grown
+        submask[rows, k] = piece
+        remaining[rows] = left & ~piece
+    return submask
 
 
 def block_patterns(hu: np.ndarray, fov2d: np.ndarray, threshold_hu: float, chunk: int = 8) -> np.ndarray:

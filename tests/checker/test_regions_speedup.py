@@ -429,6 +429,29 @@ def test_pattern_tables_equal_labelling_each_pattern_alone() -> None:
         assert t.submask[code].tolist() == expected
 
 
+def test_pattern_tables_equal_one_ndimage_label_of_every_pattern() -> None:
+    """All 65536 rows of the tables equal ``ndimage.label`` (4-connected, each 4 x 4 block
+    alone) of the stacked patterns: the pieces grown by bit shifts are the same pieces,
+    numbered the same way."""
+    from reconaudit.checker.regions import pattern_tables
+
+    t = pattern_tables()
+    n = 65536
+    pix = ((np.arange(n)[:, None] >> np.arange(16)) & 1).astype(bool)
+    st = np.zeros((3, 3, 3), dtype=bool)
+    st[1] = ndimage.generate_binary_structure(2, 1)
+    lab, _ = ndimage.label(pix.reshape(n, 4, 4), structure=st)
+    lab = lab.reshape(n, 16)
+    first = lab[np.arange(n), pix.argmax(axis=1)]
+    local = np.where(pix, lab - (first - 1)[:, None], 0)  # labels 1.. within each pattern
+    assert np.array_equal(t.pixels, pix)
+    assert np.array_equal(t.sub, local)
+    assert np.array_equal(t.nsub, local.max(axis=1))
+    for k in range(8):
+        weights = (local == k + 1) * (1 << np.arange(16))
+        assert np.array_equal(t.submask[:, k], weights.sum(axis=1))
+
+
 @pytest.mark.parametrize("table_lookup", [False, True])
 def test_count_and_centroid_of_patterns_equal_the_unpacked_mask(table_lookup: bool, monkeypatch) -> None:
     """Voxel count and centre of mass from the block patterns (population counts of block
