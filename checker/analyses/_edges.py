@@ -16,6 +16,7 @@ from __future__ import annotations
 import functools
 import math
 from dataclasses import dataclass, field
+from typing import Sequence
 
 import numpy as np
 from scipy import ndimage
@@ -23,6 +24,10 @@ from scipy.optimize import isotonic_regression
 
 #: ESF conditioning methods understood by :func:`condition_esf`.
 CONDITIONING = ("auto", "none", "monotone")
+
+#: Default zero-padded length (mm) of the LSF before its FFT (:func:`ttf_from_esf`): sets
+#: the frequency step, 1 / 80 mm.
+PAD_TO_MM = 80.0
 
 
 @dataclass
@@ -264,7 +269,7 @@ def esf_shape(esf: BinnedEsf, smooth_mm: float = 0.4) -> EsfShape:
     return esf.shape_of_smoothed(_smoothing_bins(esf, smooth_mm))
 
 
-def _smoothing_bins(esf: BinnedEsf, smooth_mm: float) -> int:
+def _smoothing_bins(esf: "BinnedEsf | BinnedEsfs", smooth_mm: float) -> int:
     """Odd number of bins (at least 3) of the running mean of ``smooth_mm``."""
     return max(3, int(round(smooth_mm / esf.bin_mm)) | 1)
 
@@ -313,12 +318,15 @@ def lsf_window(position_mm: np.ndarray, centre_mm: float, half_width_mm: float, 
     raised cosine beyond, so the LSF core is not weighted at all (no bias), while the
     noise in the far tails is cut.
 
+    ``centre_mm`` and ``half_width_mm`` may be arrays that broadcast against
+    ``position_mm`` (e.g. one centre and half-width per row of several ESFs' positions).
+
     References
     ----------
     Harris FJ. On the use of windows for harmonic analysis with the discrete Fourier
     transform. Proc IEEE 66(1):51-83, 1978 (Tukey window).
     """
-    u = np.abs(np.asarray(position_mm, dtype=float) - centre_mm) / max(half_width_mm, 1e-12)
+    u = np.abs(np.asarray(position_mm, dtype=float) - centre_mm) / np.maximum(half_width_mm, 1e-12)
     w = np.ones_like(u)
     flat = 1.0 - taper
     edge = (u > flat) & (u < 1.0)
@@ -354,7 +362,7 @@ def ttf_from_esf(
     *,
     window_widths: float = 3.0,
     max_frequency_per_mm: float | None = None,
-    pad_to_mm: float = 80.0,
+    pad_to_mm: float = PAD_TO_MM,
 ) -> TtfCurve:
     """TTF from an oversampled ESF.
 
@@ -397,7 +405,7 @@ def ttf_from_esf(
         half = reach
         notes.append(f"LSF window limited to +/-{reach:.2f} mm by the ESF range")
     lsf_w = lsf * lsf_window(pos, centre, half)
-    n = max(int(2 ** np.ceil(np.log2(max(pad_to_mm / dr, lsf_w.size)))), 8)
+    n = _fft_length(pad_to_mm, dr, lsf_w.size)
     spectrum = np.abs(np.fft.rfft(lsf_w, n=n))
     freq, safe_correction, usable = _frequency_grid(n, float(dr))
     if spectrum[0] <= 0:
@@ -428,6 +436,357 @@ def _frequency_grid(n: int, dr: float) -> tuple[np.ndarray, np.ndarray, np.ndarr
     for a in out:
         a.flags.writeable = False
     return out
+
+
+# ------------------------------------------------------------------ several ESFs at once
+# The rods of a phantom are measured together: their ESFs are binned with one bincount
+# (EsfAccumulators), and described, conditioned, differentiated, windowed and Fourier
+# transformed as the rows of 2-D arrays (BinnedEsfs). Rows may differ in length (each
+# rod's range is its own): each row is padded on the right with its last value, every
+# step reads only a row's own bins, and each row's result is that of the one-ESF
+# function (esf_shape, esf_overshoot, condition_esf, ttf_from_esf) for that ESF alone up
+# to the order of the additions of a few sums over a row (tests/checker/test_ttf.py).
+@dataclass
+class EsfShapes:
+    """:class:`EsfShape` of each row of :class:`BinnedEsfs` (arrays of one value a row)."""
+
+    low_hu: np.ndarray
+    high_hu: np.ndarray
+    centre_mm: np.ndarray
+    width_10_90_mm: np.ndarray
+
+
+@dataclass
+class BinnedEsfs:
+    """Several oversampled ESFs of one bin width, one a row (left-aligned).
+
+    Attributes
+    ----------
+    position_mm, esf_hu : ndarray (k, n)
+        As :class:`BinnedEsf`, row by row; row j's bins are its first ``lengths[j]``,
+        beyond them the positions go on by the bin width and ``esf_hu`` repeats its last
+        bin (so a running mean with ``mode="nearest"`` of the row is the one of its bins).
+    counts : ndarray of int (k, n)
+        Pixels in each bin (0 beyond a row's length).
+    bin_mm : float
+    lengths : ndarray of int (k,)
+        Bins of each row.
+    """
+
+    position_mm: np.ndarray
+    esf_hu: np.ndarray
+    counts: np.ndarray
+    bin_mm: float
+    lengths: np.ndarray
+    _smoothed: dict = field(default_factory=dict, init=False, repr=False, compare=False)
+
+    @classmethod
+    def stack(cls, esfs: "Sequence[BinnedEsf]") -> "BinnedEsfs":
+        """The ESFs (of one bin width) as the rows of one :class:`BinnedEsfs`."""
+        lengths = np.array([e.esf_hu.size for e in esfs], dtype=np.int64)
+        n = int(lengths.max())
+        pos, esf, counts = np.empty((len(esfs), n)), np.empty((len(esfs), n)), np.zeros((len(esfs), n), dtype=np.int64)
+        for j, e in enumerate(esfs):
+            m = e.esf_hu.size
+            pos[j, :m], pos[j, m:] = e.position_mm, e.position_mm[-1] + np.arange(1, n - m + 1) * e.bin_mm
+            esf[j, :m], esf[j, m:] = e.esf_hu, e.esf_hu[-1]
+            counts[j, :m] = e.counts
+        return cls(pos, esf, counts, esfs[0].bin_mm, lengths)
+
+    def __len__(self) -> int:
+        return self.esf_hu.shape[0]
+
+    def row(self, j: int) -> BinnedEsf:
+        """Row ``j`` as a :class:`BinnedEsf` (views of this one's arrays)."""
+        n = int(self.lengths[j])
+        return BinnedEsf(self.position_mm[j, :n], self.esf_hu[j, :n], self.counts[j, :n], self.bin_mm)
+
+    def in_row(self) -> np.ndarray:
+        """(k, n) bool: which entries are bins of their row."""
+        return np.arange(self.esf_hu.shape[1])[None, :] < self.lengths[:, None]
+
+    def last(self, values: np.ndarray) -> np.ndarray:
+        """The entry of each row of ``values`` (k, n) at the row's last bin."""
+        return values[np.arange(values.shape[0]), self.lengths - 1]
+
+    def smoothed(self, size: int) -> np.ndarray:
+        """:meth:`BinnedEsf.smoothed` of every row (one running mean along the rows)."""
+        y = self._smoothed.get(size)
+        if y is None:
+            y = self._smoothed[size] = ndimage.uniform_filter1d(self.esf_hu, size=size, axis=-1, mode="nearest")
+        return y
+
+    def shapes_of_smoothed(self, size: int) -> EsfShapes:
+        """:meth:`BinnedEsf.shape_of_smoothed` of every row, computed once."""
+        key = ("shape", size)
+        shape = self._smoothed.get(key)
+        if shape is None:
+            shape = self._smoothed[key] = _shapes_of_smoothed(self.smoothed(size), self.position_mm, self.lengths)
+        return shape
+
+
+class EsfAccumulators:
+    """Several :class:`EsfAccumulator` of one bin width whose bins lie end to end in one
+    array, so that pixels of all of them are binned with one ``np.bincount``.
+
+    Accumulator ``j`` covers ``lo_mm[j]`` .. ``hi_mm[j]`` with as many bins as an
+    :class:`EsfAccumulator` of that range; each pixel says which accumulator it belongs
+    to, and its bin index is offset by the bins of the accumulators before it. Each
+    accumulator's counts and sums are those it would have alone (the same pixels in the
+    same order, so the same additions).
+
+    References
+    ----------
+    Richard et al., Med Phys 39(7):4115-4122, 2012 (radial ESF from every pixel,
+    oversampled and binned).
+    """
+
+    def __init__(self, *, bin_mm: float, lo_mm: Sequence[float], hi_mm: Sequence[float]) -> None:
+        self.bin_mm = float(bin_mm)
+        self.lo_mm = np.asarray(lo_mm, dtype=float)
+        self.hi_mm = np.asarray(hi_mm, dtype=float)
+        self.n_bins = np.array([max(int(np.floor((h - lo) / self.bin_mm)), 1)
+                                for lo, h in zip(self.lo_mm.tolist(), self.hi_mm.tolist())], dtype=np.int64)
+        self.first_bin = np.concatenate([[0], np.cumsum(self.n_bins)[:-1]]).astype(np.int64)
+        total = int(self.n_bins.sum())
+        self.counts = np.zeros(total, dtype=np.int64)
+        self.sums = np.zeros(total)
+
+    def add(self, which: np.ndarray, distance_mm: np.ndarray, values: np.ndarray, mask: np.ndarray | None = None,
+            *, multiplicity: np.ndarray | None = None) -> None:
+        """:meth:`EsfAccumulator.add` of one batch of pixels of several accumulators:
+        ``which`` (same shape, int) says whose each pixel is; ``multiplicity`` (same
+        shape, optional) as there."""
+        j = np.asarray(which, dtype=np.intp).ravel()
+        d = np.asarray(distance_mm, dtype=float).ravel()
+        v = np.asarray(values, dtype=float).ravel()
+        lo = self.lo_mm[j]
+        keep = (d >= lo) & (d < self.hi_mm[j]) & np.isfinite(v)
+        if mask is not None:
+            keep &= np.asarray(mask, dtype=bool).ravel()
+        total = self.counts.size
+        with np.errstate(invalid="ignore"):
+            idx = np.minimum(((d - lo) / self.bin_mm).astype(np.int64), self.n_bins[j] - 1) + self.first_bin[j]
+        idx = np.where(keep, idx, total)
+        if multiplicity is None:
+            self.counts += np.bincount(idx, minlength=total + 1)[:total]
+        else:
+            m = np.asarray(multiplicity, dtype=float).ravel()
+            self.counts += np.rint(np.bincount(idx, weights=m, minlength=total + 1)[:total]).astype(np.int64)
+        self.sums += np.bincount(idx, weights=np.where(keep, v, 0.0), minlength=total + 1)[:total]
+
+    def binned_ranges(self, starts: Sequence[int], lengths: Sequence[int],
+                      offsets_mm: Sequence[float] | None = None) -> BinnedEsfs:
+        """:meth:`EsfAccumulator.binned_range` (``starts[j]``, ``lengths[j]``,
+        ``offsets_mm[j]``) of every accumulator j, as the rows of one :class:`BinnedEsfs`."""
+        st = np.asarray(starts, dtype=np.int64)
+        ns = np.asarray(lengths, dtype=np.int64)
+        off = np.zeros(st.size) if offsets_mm is None else np.asarray(offsets_mm, dtype=float)
+        if (ns < 1).any() or (st < 0).any() or (st + ns > self.n_bins).any():
+            raise ValueError(f"bins {st.tolist()} + {ns.tolist()} outside the accumulators' {self.n_bins.tolist()}")
+        cols = np.arange(int(ns.max()))
+        bins = st[:, None] + cols
+        position = (self.lo_mm - off)[:, None] + (bins + 0.5) * self.bin_mm
+        inside = cols[None, :] < ns[:, None]
+        at = np.minimum(bins, (st + ns - 1)[:, None]) + self.first_bin[:, None]  # beyond a row: its last bin
+        counts, sums = np.where(inside, self.counts[at], 0), self.sums[at]
+        filled = counts > 0
+        with np.errstate(invalid="ignore", divide="ignore"):
+            esf = np.where(filled | ~inside, sums / self.counts[at], np.nan)
+        n_filled = filled.sum(axis=1)
+        for i in np.flatnonzero((n_filled >= 2) & (n_filled < ns)):  # empty bins: interpolated
+            n, f = int(ns[i]), filled[i]
+            esf[i, :n] = np.interp(position[i, :n], position[i][f], esf[i][f])
+            esf[i, n:] = esf[i, n - 1]
+        return BinnedEsfs(position, esf, counts, self.bin_mm, ns)
+
+
+def esf_shapes(esfs: BinnedEsfs, smooth_mm: float = 0.4) -> EsfShapes:
+    """:func:`esf_shape` of every row of ``esfs``."""
+    return esfs.shapes_of_smoothed(_smoothing_bins(esfs, smooth_mm))
+
+
+def _row_medians(values: np.ndarray, counts: np.ndarray) -> np.ndarray:
+    """:func:`_median` of the first ``counts[j]`` entries of every row j of ``values``
+    (NaN for a row holding a NaN there)."""
+    k, m = values.shape
+    v = np.sort(np.where(np.arange(m)[None, :] < counts[:, None], values, np.inf), axis=1)
+    r = np.arange(k)
+    a, b = v[r, (counts - 1) // 2], v[r, counts // 2]
+    med = np.where(counts % 2 == 1, a, (a + b) / 2.0)
+    return np.where(np.isnan(v[:, -1]), np.nan, med)
+
+
+def _shapes_of_smoothed(y: np.ndarray, pos: np.ndarray, lengths: np.ndarray) -> EsfShapes:
+    """:func:`_shape_of_smoothed` of every row of ``y`` (k, n) at the positions ``pos``
+    (k, n), row j of ``lengths[j]`` bins."""
+    k, n = y.shape
+    r = np.arange(k)
+    cols = np.arange(n)
+    m = np.maximum(lengths // 10, 1)
+    if n < 2:  # no crossing in one bin
+        nan = np.full(k, np.nan)
+        return EsfShapes(y[:, 0].copy(), y[:, 0].copy(), nan, nan.copy())
+    mm = int(m.max())
+    first = _row_medians(y[:, :mm], m)
+    last = _row_medians(y[r[:, None], np.minimum((lengths - m)[:, None] + cols[:mm], n - 1)], m)
+    pos_last = pos[r, lengths - 1]
+    with np.errstate(invalid="ignore", divide="ignore"):
+        ok = (first != last) & np.isfinite(first + last)
+        t = (y - first[:, None]) / (last - first)[:, None]
+        cross = (t[:, :-1] < 0.5) & (t[:, 1:] >= 0.5) & (cols[None, :-1] < (lengths - 1)[:, None]) & ok[:, None]
+        middle = 0.5 * (pos[:, 0] + pos_last)
+        # the crossing nearest the middle (the first of equally near ones, as argmin over the crossings)
+        near = np.where(cross, np.abs(pos[:, :-1] - middle[:, None]), np.inf)
+        i = np.argmin(near, axis=1)
+        has = near[r, i] < np.inf
+        ti, ti1, pi, pi1 = t[r, i], t[r, i + 1], pos[r, i], pos[r, i + 1]
+        centre = np.where(has, pi + (0.5 - ti) * (pi1 - pi) / (ti1 - ti), np.nan)
+    left = (t <= 0.1) & (cols[None, :] <= i[:, None])  # the last of them is the 10 % point
+    right = (t >= 0.9) & (cols[None, :] >= i[:, None]) & (cols[None, :] < lengths[:, None])  # the first: 90 %
+    lo = n - 1 - np.argmax(left[:, ::-1], axis=1)
+    hi = np.argmax(right, axis=1)
+    width = np.where(has & left[r, lo] & right[r, hi], pos[r, hi] - pos[r, lo], np.nan)
+    return EsfShapes(first, last, centre, width)
+
+
+def esf_overshoots(esfs: BinnedEsfs, smooth_mm: float = 0.4, floor: float = 0.03) -> np.ndarray:
+    """:func:`esf_overshoot` of every row of ``esfs``."""
+    size = _smoothing_bins(esfs, smooth_mm)
+    y = esfs.smoothed(size)
+    shape = esfs.shapes_of_smoothed(size)
+    inside = esfs.in_row()
+    n = esfs.lengths
+    with np.errstate(invalid="ignore", divide="ignore"):
+        contrast = shape.high_hu - shape.low_hu
+        valid = np.isfinite(contrast) & (contrast != 0)
+        t = (y - shape.low_hu[:, None]) / contrast[:, None]
+        over = np.maximum(np.maximum(np.where(inside, t, -np.inf).max(axis=1) - 1.0,
+                                     -np.where(inside, t, np.inf).min(axis=1)), 0.0)
+        mean_count = esfs.counts.sum(axis=1) / n
+        n_per_window = np.maximum(mean_count * size, 1.0)
+        resid = np.where(inside, esfs.esf_hu - y, 0.0)
+        dev = np.where(inside, resid - (resid.sum(axis=1) / n)[:, None], 0.0)
+        se = np.sqrt((dev * dev).sum(axis=1) / n) * np.sqrt(np.maximum(mean_count, 1.0)) / np.sqrt(n_per_window)
+        limit = np.maximum(floor, 4.0 * se / np.abs(contrast))
+    return np.where(valid & (over > limit), over, 0.0)
+
+
+def condition_esfs(esfs: BinnedEsfs, method: str = "auto") -> tuple[BinnedEsfs, list[str]]:
+    """:func:`condition_esf` of every row of ``esfs``: the conditioned ESFs and the
+    method used for each row (the monotone fit is one isotonic regression a row)."""
+    if method not in CONDITIONING:
+        raise ValueError(f"ESF conditioning {method!r} unknown; expected one of {CONDITIONING}")
+    k = len(esfs)
+    if method == "auto":
+        used = ["none" if o > 0 else "monotone" for o in esf_overshoots(esfs).tolist()]
+    else:
+        used = [method] * k
+    used = [u if n >= 3 else "none" for u, n in zip(used, esfs.lengths.tolist())]
+    if "monotone" not in used:
+        return esfs, used
+    fit = esfs.esf_hu.copy()
+    rising = esfs.last(esfs.esf_hu) >= esfs.esf_hu[:, 0]
+    weights = np.maximum(esfs.counts.astype(float), 0.5)
+    for j in (j for j, u in enumerate(used) if u == "monotone"):
+        n = int(esfs.lengths[j])
+        fit[j, :n] = isotonic_regression(esfs.esf_hu[j, :n], weights=weights[j, :n], increasing=bool(rising[j])).x
+        fit[j, n:] = fit[j, n - 1]
+    return BinnedEsfs(esfs.position_mm, fit, esfs.counts, esfs.bin_mm, esfs.lengths), used
+
+
+def first_crossings(frequency: np.ndarray, ttf: np.ndarray, level: float) -> np.ndarray:
+    """:func:`first_crossing` of every row of ``ttf`` (k, f) at the frequencies ``frequency`` (f,)."""
+    if ttf.shape[1] == 0:
+        return np.full(ttf.shape[0], np.nan)
+    below = ttf <= level
+    i = np.argmax(below, axis=1)
+    r = np.arange(ttf.shape[0])
+    ok = below[r, i] & (i > 0)
+    j = np.maximum(i - 1, 0)
+    f0, f1, t0, t1 = frequency[j], frequency[i], ttf[r, j], ttf[r, i]
+    with np.errstate(invalid="ignore", divide="ignore"):
+        out = np.where(t0 != t1, f0 + (t0 - level) * (f1 - f0) / (t0 - t1), f1)
+    return np.where(ok, out, np.nan)
+
+
+def _fft_length(pad_to_mm: float, dr: float, n: int) -> int:
+    """Zero-padded length of the LSF FFT of :func:`ttf_from_esf`."""
+    return max(int(2 ** np.ceil(np.log2(max(pad_to_mm / dr, n)))), 8)
+
+
+def ttf_from_esfs(
+    esfs: BinnedEsfs,
+    *,
+    window_widths: float = 3.0,
+    max_frequency_per_mm: float | None = None,
+    pad_to_mm: float = PAD_TO_MM,
+) -> list[TtfCurve]:
+    """:func:`ttf_from_esf` of every row of ``esfs``: the central differences, windows,
+    zero-padded FFTs (one ``rfft`` along the rows), normalisation, finite-difference and
+    bin corrections and f50 / f10 crossings of all rows at once. Every row must have the
+    same FFT length (``ValueError`` otherwise; it does when ``pad_to_mm`` spans the
+    longest row, as at the defaults).
+
+    References
+    ----------
+    Cunningham IA, Fenster A. Med Phys 14(4):533-537, 1987. Richard et al., Med Phys
+    39(7), 2012.
+    """
+    dr = esfs.bin_mm
+    y = esfs.esf_hu
+    k, n = y.shape
+    lengths = esfs.lengths
+    if (lengths < 2).any():
+        raise ValueError("at least two ESF bins are needed for the LSF")
+    nfft = _fft_length(pad_to_mm, dr, int(lengths.max()))
+    if _fft_length(pad_to_mm, dr, int(lengths.min())) != nfft:
+        raise ValueError("the ESFs' FFT lengths differ: transform them one by one")
+    r = np.arange(k)
+    inside = esfs.in_row()
+    lsf = np.empty(y.shape, dtype=float)
+    lsf[:, 1:-1] = (y[:, 2:] - y[:, :-2]) / (2.0 * dr)
+    lsf[:, 0] = (y[:, 1] - y[:, 0]) / dr
+    lsf[r, lengths - 1] = (y[r, lengths - 1] - y[r, lengths - 2]) / dr
+    lsf = np.where(inside, lsf, 0.0)
+    lsf = np.where((lsf.sum(axis=1) < 0)[:, None], -lsf, lsf)
+    shape = esf_shapes(esfs)
+    width = shape.width_10_90_mm
+    pos = esfs.position_mm
+    pos_last = pos[r, lengths - 1]
+    span = 0.5 * (pos_last - pos[:, 0])
+    has_width = np.isfinite(width)
+    centre = np.where(np.isfinite(shape.centre_mm), shape.centre_mm, 0.5 * (pos[:, 0] + pos_last))
+    reach = np.minimum(centre - pos[:, 0], pos_last - centre)
+    half = np.where(has_width, window_widths * width, span)
+    limited = half > reach
+    half = np.where(limited, reach, half)
+    spectrum = np.abs(np.fft.rfft(lsf * lsf_window(pos, centre[:, None], half[:, None]), n=nfft, axis=-1))
+    freq, safe_correction, usable = _frequency_grid(nfft, float(dr))
+    zero = spectrum[:, 0] <= 0
+    with np.errstate(invalid="ignore", divide="ignore"):
+        ttf = np.where(usable, (spectrum / spectrum[:, :1]) / safe_correction, np.nan)
+    f50 = first_crossings(freq[usable], ttf[:, usable], 0.5)
+    f10 = first_crossings(freq[usable], ttf[:, usable], 0.1)
+    if max_frequency_per_mm is not None:
+        keep = freq <= max_frequency_per_mm + 1e-12
+        kept_freq, kept = freq[keep], ttf[:, keep]
+    else:
+        kept_freq, kept = freq.copy(), ttf
+    curves = []
+    for j in range(k):
+        notes: list[str] = []
+        if not has_width[j]:
+            notes.append("ESF 10-90 % width not measurable; the LSF window spans the whole ESF")
+        if limited[j]:
+            notes.append(f"LSF window limited to +/-{reach[j]:.2f} mm by the ESF range")
+        if zero[j]:
+            nan = np.full_like(freq, np.nan)
+            curves.append(TtfCurve(freq.copy(), nan, float("nan"), float("nan"), float(2 * half[j]),
+                                   notes + ["LSF integrates to zero"]))
+        else:
+            curves.append(TtfCurve(kept_freq, kept[j], float(f50[j]), float(f10[j]), float(2 * half[j]), notes))
+    return curves
 
 
 # ------------------------------------------------------------------ straight edges

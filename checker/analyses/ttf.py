@@ -16,7 +16,8 @@ f50, f10 and curve). Three kinds of edge:
 
 Every ESF goes through :func:`reconaudit.checker.analyses._edges.ttf_from_esf`
 (conditioning, LSF, flat-topped window, FFT, normalisation at f = 0, finite-difference
-correction after Cunningham & Fenster 1987).
+correction after Cunningham & Fenster 1987); the rods of a series go through its
+several-rows form, :func:`reconaudit.checker.analyses._edges.ttf_from_esfs`, together.
 
 Speed (method choices, documented so that a reader knows the records are estimates):
 the skin edge is measured on a fixed budget of outline normals (``skin_normals_per_slice``
@@ -55,7 +56,11 @@ edge by whole bins, so it is centred on the edge to half a bin (0.05 px) instead
 being binned again about each new radius (:func:`_centred_esf`). The rods found in a
 series are measured together only where that saves work without changing a value: the
 centre refinement of all their sub-stack mean images runs as one vectorised iteration
-(:func:`measure_circular_edges`; each image reaches its own fixed point). Values in
+(:func:`measure_circular_edges`; each image reaches its own fixed point), their pixels
+are binned with one ``np.bincount`` into bins offset rod by rod, and their ESFs (each of
+its own length) are described, conditioned, differentiated, windowed and transformed as
+the rows of 2-D arrays (:func:`_centred_esfs`, :func:`_ttf_curves`; each rod's record is
+the one it gets alone, up to the order of a few sums). Values in
 the records may therefore differ from a full-resolution, slice-by-slice pass by their
 estimation error: the lead's decision is that record values are estimates and may
 change, while the record keys, types and meaning do not, the checks of
@@ -88,7 +93,7 @@ from ..regions import Regions
 from ..results import AnalysisResult, Finding, Overlays, Point, Roi, Severity
 from ..volume import Volume
 from . import _edges, _phantom
-from ._edges import BinnedEsf, TtfCurve, bin_esf, condition_esf, esf_shape, ttf_from_esf
+from ._edges import BinnedEsf, BinnedEsfs, TtfCurve, bin_esf, condition_esf, ttf_from_esf
 from ._phantom import PHANTOM_DEFAULTS, _grid_step, disc_of, disc_stats, find_phantom
 
 NAME = "ttf"
@@ -863,10 +868,14 @@ def measure_circular_edges(
     allowed: np.ndarray | None = None,
     others: Sequence[Insert] = (),
 ) -> list[EdgeMeasurement]:
-    """:func:`measure_circular_edge` of several rods: each rod is measured on its own,
-    except that the centre refinement of all their sub-stack mean images runs as one
-    vectorised iteration (:func:`reconaudit.checker.analyses._edges.refine_circle_centres_of_stacks`;
-    the same fixed point for each image as refined alone).
+    """:func:`measure_circular_edge` of several rods, measured together: the centre
+    refinement of all their sub-stack mean images runs as one vectorised iteration
+    (:func:`reconaudit.checker.analyses._edges.refine_circle_centres_of_stacks`; the same
+    fixed point for each image as refined alone), their ESFs are binned with one
+    ``np.bincount`` (:func:`_centred_esfs`), and their ESFs are conditioned,
+    differentiated, windowed and Fourier transformed as the rows of 2-D arrays
+    (:func:`_ttf_curves`). Each rod's record is the one it gets measured alone (the same
+    arithmetic row by row, up to the order of a few sums; tests/checker/test_ttf.py).
 
     ``allowed`` applies to every rod (pass None for rods the user placed).
 
@@ -889,19 +898,52 @@ def measure_circular_edges(
                                   r_px + half_mm / px + 3)
         c_local = (insert.centre_yx_vox[0] - y0, insert.centre_yx_vox[1] - x0)
         prepared.append((insert, y0, x0, crop, half_mm, _run_images(crop, c_local, r_px, px)))
+    if not prepared:
+        return []
     runs = [p[5] for p in prepared]
     per_rod = _edges.refine_circle_centres_of_stacks(
         [ri.images for ri in runs], [ri.start for ri in runs], [ri.r_px for ri in runs],
         [ri.inside_hu for ri in runs], [ri.outside_hu for ri in runs], [ri.reach_px for ri in runs])
-    return [_measure_rod(volume, insert, y0, x0, crop, half_mm, ri, per, s, allowed, others)
+    rods = [_rod_geometry(volume, insert, y0, x0, crop, half_mm, ri, per, s, allowed, others)
             for (insert, y0, x0, crop, half_mm, ri), per in zip(prepared, per_rod)]
+    group, radii = _centred_esfs([r.pool for r in rods], [r.free for r in rods], [r.insert.radius_mm for r in rods],
+                                 [r.half_mm for r in rods], px * float(s["bin_fraction"]))
+    esfs = [group.row(j) for j in range(len(rods))]
+    curves = _ttf_curves(group, s, 0.5 / px)
+    out = []
+    for rod, esf, radius_mm, (used, curve) in zip(rods, esfs, radii.tolist(), curves):
+        contrast, noise = _contrast_and_noise(rod.crop, rod.pool, rod.free, radius_mm, rod.half_mm, px)
+        mean_yx = rod.centres.mean(axis=0)
+        centre_zyx = (0.5 * (rod.insert.z0 + rod.insert.z1), float(mean_yx[0]) + rod.y0, float(mean_yx[1]) + rod.x0)
+        extra = {"radius_mm": round(radius_mm, 3), "source": rod.insert.source}
+        out.append(_edge_record("circular", volume, esf, used, curve, contrast,
+                                rod.ri.inside_hu if contrast else float("nan"), noise,
+                                (rod.insert.z0, rod.insert.z1), centre_zyx, s, rod.problems, extra))
+    return out
 
 
-def _measure_rod(volume: Volume, insert: Insert, y0: int, x0: int, crop: np.ndarray, half_mm: float,
-                 ri: RunImages, per: np.ndarray, s: dict[str, Any], allowed: np.ndarray | None,
-                 others: Sequence[Insert]) -> EdgeMeasurement:
-    """The rest of :func:`measure_circular_edge` once the run centres ``per`` are known:
-    centre line, pooling, ESF about the measured radius, contrast, noise and record."""
+@dataclass
+class RodGeometry:
+    """What a rod's ESF is binned from (:func:`_rod_geometry`)."""
+
+    insert: Insert
+    y0: int  # the crop's first row and column in the image
+    x0: int
+    crop: np.ndarray  # (z, y, x) the rod's slices about it
+    ri: "RunImages"
+    centres: np.ndarray  # (z, 2) every slice's centre (crop indices)
+    pool: "PooledSlices"
+    free: np.ndarray  # (y, x) pixels the ESF may use
+    half_mm: float  # half range of the ESF
+    problems: list[str]
+
+
+def _rod_geometry(volume: Volume, insert: Insert, y0: int, x0: int, crop: np.ndarray, half_mm: float,
+                  ri: RunImages, per: np.ndarray, s: dict[str, Any], allowed: np.ndarray | None,
+                  others: Sequence[Insert]) -> RodGeometry:
+    """A rod once its run centres ``per`` are known: centre line, pooled slices, free
+    pixels and the ESF's half range (shortened, with a problem when too short, where the
+    free region ends before it)."""
     sy, sx = volume.spacing_mm[1], volume.spacing_mm[2]
     px = 0.5 * (sy + sx)
     free = _free_mask(crop.shape[1:], (y0, x0), volume.hu.shape[1:], insert, others, allowed, px)
@@ -916,53 +958,97 @@ def _measure_rod(volume: Volume, insert: Insert, y0: int, x0: int, crop: np.ndar
                 f"{max(reach_mm, 0):.1f} mm free beyond the edge, {s['min_half_range_mm']:g} mm needed"
             )
         half_mm = max(reach_mm, px)
-    esf, radius_mm = _centred_esf(pool, free, insert.radius_mm, half_mm, px * float(s["bin_fraction"]))
-    contrast, noise = _contrast_and_noise(crop, pool, free, radius_mm, half_mm, px)
-    mean_yx = centres.mean(axis=0)
-    centre_zyx = (0.5 * (insert.z0 + insert.z1), float(mean_yx[0]) + y0, float(mean_yx[1]) + x0)
-    extra = {"radius_mm": round(radius_mm, 3), "source": insert.source}
-    return _edge_result("circular", volume, esf, contrast, ri.inside_hu if contrast else float("nan"), noise,
-                        (insert.z0, insert.z1), centre_zyx, s, problems, extra)
+    return RodGeometry(insert, y0, x0, crop, ri, centres, pool, free, half_mm, problems)
 
 
 def _centred_esf(pool: PooledSlices, free: np.ndarray, radius_mm: float, half_mm: float,
                  bin_mm: float) -> tuple[BinnedEsf, float]:
     """The rod's ESF over +/- ``half_mm`` about its measured edge radius, from one
-    binning, and that radius.
-
-    The pixels within 1.5 ``half_mm`` of ``radius_mm`` are binned once, on bins aligned
-    with those of the range about ``radius_mm`` and reaching half a range (rounded up to
-    whole bins) beyond it on both sides. The ESF of the range about ``radius_mm`` gives
-    the edge's offset; the range is then moved by that offset rounded to whole bins (so
-    its bins are bins of the one binning, at most half a bin from a range centred
-    exactly) and its ESF's own centre corrects the radius. An offset of more than half
-    the range keeps the first range and radius. A method choice for speed (one binning
-    instead of one per range): the ESF window is placed on the edge to half a bin (a
-    twentieth of a pixel), the radius is measured to the same precision as before.
+    binning, and that radius (:func:`_centred_esfs` of one rod).
 
     References
     ----------
     Richard et al., Med Phys 39(7) 2012 (radial ESF about the edge radius).
     """
-    n = max(int(math.floor((half_mm - (-half_mm)) / bin_mm)), 1)  # the bins of the range, as EsfAccumulator counts them
-    extra = int(math.ceil(0.5 * half_mm / bin_mm))
-    wide = _edges.EsfAccumulator(bin_mm=bin_mm, lo_mm=-half_mm - extra * bin_mm,
-                                 hi_mm=-half_mm + (n + extra) * bin_mm)
-    near = free[None] & (np.abs(pool.dist - radius_mm) < 1.5 * half_mm)
-    if pool.n_slices.size == 1:  # one group: one multiplicity for every pixel
-        n_near: np.ndarray | int = int(pool.n_slices[0])
-    else:
-        n_near = np.broadcast_to(pool.n_slices[:, None, None], near.shape)[near]
-    wide.add(pool.dist[near] - radius_mm, pool.sums[near], multiplicity=n_near)
-    esf = wide.binned_range(extra, n)
-    shift = _esf_centre_or_zero(esf)
-    if abs(shift) > 0.5 * half_mm:
-        return esf, radius_mm
-    q = max(-extra, min(extra, int(round(shift / bin_mm))))
-    esf = wide.binned_range(extra + q, n, offset_mm=q * bin_mm)
-    radius_mm += q * bin_mm
-    shift = _esf_centre_or_zero(esf)
-    return esf, radius_mm + shift if abs(shift) <= 0.5 * half_mm else radius_mm
+    esfs, radii = _centred_esfs([pool], [free], [radius_mm], [half_mm], bin_mm)
+    return esfs.row(0), float(radii[0])
+
+
+def _centred_esfs(pools: Sequence[PooledSlices], frees: Sequence[np.ndarray], radii_mm: Sequence[float],
+                  halves_mm: Sequence[float], bin_mm: float) -> tuple[BinnedEsfs, np.ndarray]:
+    """Each rod's ESF over +/- its ``halves_mm`` about its measured edge radius, all
+    from one binning (row j: rod j), and those radii.
+
+    For each rod, the pixels within 1.5 ``half_mm`` of ``radius_mm`` are binned once, on
+    bins aligned with those of the range about ``radius_mm`` and reaching half a range
+    (rounded up to whole bins) beyond it on both sides. The ESF of the range about
+    ``radius_mm`` gives the edge's offset; the range is then moved by that offset
+    rounded to whole bins (so its bins are bins of the one binning, at most half a bin
+    from a range centred exactly) and its ESF's own centre corrects the radius. An
+    offset of more than half the range keeps the first range and radius. A method choice
+    for speed (one binning instead of one per range): the ESF window is placed on the
+    edge to half a bin (a twentieth of a pixel), the radius is measured to the same
+    precision as before. The pixels of every rod (all its pooled groups) are laid end to
+    end and binned with one ``np.bincount`` into bins offset rod by rod
+    (:class:`reconaudit.checker.analyses._edges.EsfAccumulators`); the ranges, their
+    centres and the moves are computed for all rods at once (rows of
+    :class:`reconaudit.checker.analyses._edges.BinnedEsfs`, each of its rod's length).
+
+    References
+    ----------
+    Richard et al., Med Phys 39(7) 2012 (radial ESF about the edge radius).
+    """
+    k = len(pools)
+    half = np.asarray(halves_mm, dtype=float)
+    radii = np.asarray(radii_mm, dtype=float)
+    # the bins of each range, as EsfAccumulator counts them, and the bins beyond it on each side
+    ns = np.array([max(int(math.floor((h - (-h)) / bin_mm)), 1) for h in half.tolist()], dtype=np.int64)
+    extra = np.array([int(math.ceil(0.5 * h / bin_mm)) for h in half.tolist()], dtype=np.int64)
+    acc = _edges.EsfAccumulators(bin_mm=bin_mm, lo_mm=-half - extra * bin_mm, hi_mm=-half + (ns + extra) * bin_mm)
+    sizes = [p.dist.size for p in pools]
+    dist = np.concatenate([p.dist.ravel() for p in pools])
+    radius = np.repeat(radii, sizes)
+    near = np.concatenate([np.broadcast_to(f, p.dist.shape).ravel() for f, p in zip(frees, pools)])
+    near &= np.abs(dist - radius) < np.repeat(1.5 * half, sizes)
+    mult = np.concatenate([np.repeat(p.n_slices.astype(float), p.dist[0].size) for p in pools])
+    acc.add(np.repeat(np.arange(k), sizes), dist - radius, np.concatenate([p.sums.ravel() for p in pools]), near,
+            multiplicity=mult)
+    first = acc.binned_ranges(extra, ns)
+    shift = _esf_centres_or_zero(first)
+    moved = np.abs(shift) <= 0.5 * half
+    q = np.where(moved, np.clip(np.rint(shift / bin_mm), -extra, extra), 0).astype(np.int64)
+    second = acc.binned_ranges(extra + q, ns, offsets_mm=q * bin_mm)
+    rad_q = radii + q * bin_mm
+    shift = _esf_centres_or_zero(second)
+    rad_q = np.where(np.abs(shift) <= 0.5 * half, rad_q + shift, rad_q)
+    if moved.all():
+        return second, rad_q
+    m = moved[:, None]
+    esfs = BinnedEsfs(np.where(m, second.position_mm, first.position_mm), np.where(m, second.esf_hu, first.esf_hu),
+                      np.where(m, second.counts, first.counts), bin_mm, ns)
+    return esfs, np.where(moved, rad_q, radii)
+
+
+def _esf_centres_or_zero(esfs: BinnedEsfs) -> np.ndarray:
+    """The centre (mm, :func:`_edges.esf_shapes`) of every row's ESF, 0 where it has none."""
+    c = _edges.esf_shapes(esfs).centre_mm
+    return np.where(np.isfinite(c), c, 0.0)
+
+
+def _ttf_curves(esfs: BinnedEsfs, s: dict[str, Any], nyquist: float) -> list[tuple[str, TtfCurve]]:
+    """The conditioning used and the TTF of every row of ``esfs``, as :func:`_edge_result`
+    computes them for one ESF: all rows at once (:func:`_edges.condition_esfs`,
+    :func:`_edges.ttf_from_esfs`) when every row has at least 10 pixels and finite bins
+    and the rows' FFTs are of one length, else row by row."""
+    fft_lengths = {_edges._fft_length(_edges.PAD_TO_MM, esfs.bin_mm, int(n)) for n in (esfs.lengths.min(), esfs.lengths.max())}
+    regular = ((esfs.counts.sum(axis=1) >= 10).all() and np.isfinite(esfs.esf_hu).all() and (esfs.lengths >= 2).all()
+               and len(fft_lengths) == 1)
+    if not regular:
+        return [_ttf_curve(esfs.row(j), s, nyquist) for j in range(len(esfs))]
+    conditioned, used = _edges.condition_esfs(esfs, s["esf_conditioning"])
+    curves = _edges.ttf_from_esfs(conditioned, window_widths=float(s["lsf_window_widths"]),
+                                  max_frequency_per_mm=nyquist)
+    return list(zip(used, curves))
 
 
 #: Largest distance (in ESF bins) between the centres of two slices pooled into one group
@@ -1053,11 +1139,6 @@ def _radial_distance_stack(shape: tuple[int, int], centres: Sequence[tuple[float
     dy = (np.arange(shape[0])[None, :, None] - c[:, 0, None, None]) * spacing_yx_mm[0]
     dx = (np.arange(shape[1])[None, None, :] - c[:, 1, None, None]) * spacing_yx_mm[1]
     return np.sqrt(dy * dy + dx * dx)
-
-
-def _esf_centre_or_zero(esf: BinnedEsf) -> float:
-    c = esf_shape(esf).centre_mm
-    return float(c) if np.isfinite(c) else 0.0
 
 
 def _free_mask(shape: tuple[int, int], origin: tuple[int, int], full_shape: tuple[int, int], insert: Insert,
@@ -1314,10 +1395,24 @@ def _edge_result(kind: str, volume: Volume, esf: BinnedEsf, contrast: float, ins
                  slices: tuple[int, int], centre_zyx: tuple[float, float, float], s: dict[str, Any],
                  problems: list[str], extra: dict[str, Any]) -> EdgeMeasurement:
     """ESF -> TTF and the JSON record shared by all edge kinds."""
+    nyquist = 0.5 / (0.5 * (volume.spacing_mm[1] + volume.spacing_mm[2]))
+    used, curve = _ttf_curve(esf, s, nyquist)
+    return _edge_record(kind, volume, esf, used, curve, contrast, insert_hu, noise, slices, centre_zyx, s,
+                        problems, extra)
+
+
+def _ttf_curve(esf: BinnedEsf, s: dict[str, Any], nyquist: float) -> tuple[str, TtfCurve]:
+    """The conditioning used and the TTF of one ESF (:func:`_safe_ttf` of the conditioned ESF)."""
+    conditioned, used = condition_esf(esf, s["esf_conditioning"]) if esf.counts.sum() else (esf, "none")
+    return used, _safe_ttf(conditioned, s, nyquist)
+
+
+def _edge_record(kind: str, volume: Volume, esf: BinnedEsf, used: str, curve: TtfCurve, contrast: float,
+                 insert_hu: float, noise: float, slices: tuple[int, int], centre_zyx: tuple[float, float, float],
+                 s: dict[str, Any], problems: list[str], extra: dict[str, Any]) -> EdgeMeasurement:
+    """The JSON record of an edge whose ESF ``esf`` gave ``curve`` (conditioned by ``used``)."""
     px = 0.5 * (volume.spacing_mm[1] + volume.spacing_mm[2])
     nyquist = 0.5 / px
-    conditioned, used = condition_esf(esf, s["esf_conditioning"]) if esf.counts.sum() else (esf, "none")
-    curve = _safe_ttf(conditioned, s, nyquist)
     problems = list(problems) + _reliability_problems(contrast, noise, slices, esf, curve, s, nyquist)
     cnr = abs(contrast) / noise if noise and np.isfinite(noise) and noise > 0 else float("nan")
     label = _edge_label(kind, contrast, curve.f50_per_mm)

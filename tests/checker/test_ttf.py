@@ -9,7 +9,7 @@ import pytest
 from scipy import stats
 
 from reconaudit.checker.analyses import REGISTRY, get, ttf
-from reconaudit.checker.analyses._edges import bin_esf, condition_esf, first_crossing, lsf_window
+from reconaudit.checker.analyses._edges import BinnedEsf, bin_esf, condition_esf, first_crossing, lsf_window
 from reconaudit.checker.errors import ProfileError
 from reconaudit.checker.regions import find_regions
 from reconaudit.checker.results import Roi, dumps
@@ -693,3 +693,165 @@ def test_distinct_inserts_keeps_separate_rods_and_separate_slices():
     d = ttf.Insert(12, 20, (50.0, 50.0), 10.0, "auto")
     kept = ttf.distinct_inserts([b, a, c, d], 0.5)
     assert a in kept and b not in kept and c in kept and d in kept and len(kept) == 3
+
+
+# ------------------------------------------------------------------ rods measured together
+def _mixed_rod_phantom(nz=10, n=256, noise=12.0, seed=3):
+    """Invented water disc with six rods of different radii (3.9..9 mm) and contrasts,
+    two of them too faint for their noise (contrast-to-noise below 10)."""
+    yy, xx = np.indices((n, n), dtype=float)
+    c = n / 2 - 0.3
+    img = np.where(np.hypot(yy - c, xx - c) <= 110, 0.0, -1000.0)
+    for k, (hu, r_mm) in enumerate([(-1000.0, 7.0), (900.0, 5.0), (120.0, 9.0), (340.0, 4.0), (45.0, 8.0),
+                                    (-100.0, 6.5)]):
+        a = 2 * math.pi * k / 6 + 0.3
+        cy, cx = c + 65 * math.sin(a) + 0.17 * k, c + 65 * math.cos(a) - 0.11 * k
+        img[np.hypot(yy - cy, xx - cx) <= r_mm / PX] = hu
+    from scipy import ndimage
+
+    img = ndimage.gaussian_filter(img, 0.7 / PX)
+    st = img[None] + np.random.default_rng(seed).normal(0, noise, (nz, n, n))
+    return Volume.from_array(st.astype(np.float32), (1.0, PX, PX))
+
+
+#: Decimals each rounded number of a rod's record keeps (ttf._edge_record).
+_RECORD_DECIMALS = {"contrast_hu": 1, "insert_hu": 1, "noise_hu": 2, "contrast_to_noise": 2, "f50_per_mm": 4,
+                    "f10_per_mm": 4, "frequency_per_mm": 4, "ttf": 4, "center_mm": 3, "bin_mm": 5,
+                    "lsf_window_mm": 3, "radius_mm": 3}
+
+
+def test_rods_measured_together_equal_each_rod_measured_alone():
+    """The rods of a phantom measured together (one binning of all their pixels, their
+    ESFs of different lengths conditioned and transformed as the rows of 2-D arrays)
+    give each rod the record it gets measured alone: the same texts, flags and slices,
+    and every number the same up to float rounding (at most one unit of its last
+    rounded decimal). Case: six rods of 4..9 mm radius, -1000..+900 HU, two of them
+    unreliable (contrast-to-noise below 10)."""
+    vol = _mixed_rod_phantom()
+    regions = find_regions(vol)
+    inserts = ttf.find_rod_inserts(vol, regions)
+    assert len(inserts) == 6
+    s = ttf.resolve_settings({})
+    allowed = ttf._body_footprint(vol, regions, inserts, s)
+    together = ttf.measure_circular_edges(vol, inserts, s, allowed=allowed, others=inserts)
+    alone = [ttf.measure_circular_edge(vol, ins, s, allowed=allowed, others=inserts) for ins in inserts]
+    radii = [m.record["radius_mm"] for m in together]
+    assert max(radii) - min(radii) > 4.0  # ESF ranges of their own lengths (0.9 r below 8 mm)
+    reliable = [m.record["reliable"] for m in together]
+    assert reliable.count(False) == 2 and all("contrast-to-noise" in m.record["reason"]
+                                              for m in together if not m.record["reliable"])
+    for a, b in zip(together, alone):
+        assert a.record.keys() == b.record.keys()
+        for key, value in a.record.items():
+            if key in _RECORD_DECIMALS:
+                x = np.array(value if isinstance(value, list) else [value], dtype=float)
+                y = np.array(b.record[key] if isinstance(b.record[key], list) else [b.record[key]], dtype=float)
+                assert x.shape == y.shape, key
+                assert np.array_equal(np.isnan(x), np.isnan(y)), key
+                np.testing.assert_allclose(x, y, rtol=0, atol=1.01 * 10.0 ** -_RECORD_DECIMALS[key], err_msg=key)
+            else:
+                assert value == b.record[key], key
+        assert a.point_zyx_vox == pytest.approx(b.point_zyx_vox, abs=1e-6)
+        assert a.notes == b.notes
+
+
+def _esfs_of_several_kinds():
+    """Invented ESFs of one bin width and different lengths: rising and falling edges in
+    noise, an overshoot, a flat one (no crossing), one whose edge lies near the end of its
+    range (window limited), one with empty bins."""
+    rng = np.random.default_rng(5)
+    bin_mm = 0.045
+    out = []
+    for n, kind in [(235, "rising"), (234, "falling"), (236, "over"), (200, "flat"), (235, "near_end"),
+                    (221, "rising"), (180, "over")]:
+        pos = -0.5 * n * bin_mm + (np.arange(n) + 0.5) * bin_mm
+        if kind == "rising":
+            y = 100 * stats.norm.cdf(pos / 0.5) + rng.normal(0, 3, n)
+        elif kind == "falling":
+            y = -900 * stats.norm.cdf(pos / 0.4) + rng.normal(0, 2, n)
+        elif kind == "over":
+            y = 100 * stats.norm.cdf(pos / 0.5) + 30 * np.exp(-(((pos - 0.8) / 0.3) ** 2))
+        elif kind == "flat":
+            y = np.full(n, 5.0)
+        else:
+            y = 100 * stats.norm.cdf((pos - 0.35 * n * bin_mm) / 0.3)
+        out.append(BinnedEsf(pos, y, rng.integers(5, 40, n), bin_mm))
+    return out
+
+
+def test_rows_of_several_esfs_are_each_esf_alone():
+    """Shapes, overshoots, conditioning and TTF of ESFs of different lengths stacked as
+    rows equal esf_shape, esf_overshoot, condition_esf and ttf_from_esf of each ESF
+    alone (to 1e-12: only the order of a few sums over a row may differ), with the same
+    notes; the monotone fit is taken where there is no overshoot and the overshoot kept."""
+    from reconaudit.checker.analyses import _edges
+
+    esfs = _esfs_of_several_kinds()
+    rows = _edges.BinnedEsfs.stack(esfs)
+    shapes = _edges.esf_shapes(rows)
+    overshoots = _edges.esf_overshoots(rows)
+    conditioned, used = _edges.condition_esfs(rows)
+    curves = _edges.ttf_from_esfs(conditioned, max_frequency_per_mm=1.0)
+    assert used.count("none") == 2 and used.count("monotone") == 5  # the two overshoots kept
+    for j, e in enumerate(esfs):
+        alone = _edges.BinnedEsf(e.position_mm, e.esf_hu, e.counts, e.bin_mm)
+        shape = _edges.esf_shape(alone)
+        np.testing.assert_allclose([shapes.low_hu[j], shapes.high_hu[j], shapes.centre_mm[j], shapes.width_10_90_mm[j]],
+                                   [shape.low_hu, shape.high_hu, shape.centre_mm, shape.width_10_90_mm],
+                                   rtol=1e-12, atol=1e-12)
+        assert overshoots[j] == pytest.approx(_edges.esf_overshoot(alone), rel=1e-12, abs=1e-12)
+        cond, how = condition_esf(alone)
+        assert how == used[j]
+        np.testing.assert_allclose(conditioned.row(j).esf_hu, cond.esf_hu, rtol=1e-12, atol=1e-9)
+        ref = _edges.ttf_from_esf(cond, max_frequency_per_mm=1.0)
+        got = curves[j]
+        np.testing.assert_array_equal(got.frequency_per_mm, ref.frequency_per_mm)
+        np.testing.assert_allclose(got.ttf, ref.ttf, rtol=1e-12, atol=1e-12)
+        for a, b in [(got.f50_per_mm, ref.f50_per_mm), (got.f10_per_mm, ref.f10_per_mm),
+                     (got.lsf_window_mm, ref.lsf_window_mm)]:
+            assert (math.isnan(a) and math.isnan(b)) or a == pytest.approx(b, rel=1e-12)
+        assert got.notes == ref.notes
+    flat = [j for j, e in enumerate(esfs) if np.ptp(e.esf_hu) == 0]
+    assert flat and all(math.isnan(shapes.centre_mm[j]) and math.isnan(curves[j].f50_per_mm) for j in flat)
+    assert any("limited" in n for c in curves for n in c.notes)  # the edge near the end of its range
+
+
+def test_accumulators_end_to_end_equal_each_alone():
+    """Pixels of several accumulators binned with one bincount (EsfAccumulators) give each
+    the counts and sums of an EsfAccumulator of its own pixels (masked, out-of-range and
+    NaN pixels left out; multiplicities), and their ranges (with offsets, empty bins
+    interpolated, rows of different lengths) the ESFs binned_range gives; a range beyond
+    an accumulator raises ValueError."""
+    from reconaudit.checker.analyses._edges import EsfAccumulator, EsfAccumulators
+
+    rng = np.random.default_rng(9)
+    bin_mm = 0.05
+    lo, hi = [-3.0, -2.0, -2.5], [3.0, 2.0, 1.0]
+    which = rng.integers(0, 3, 3000)
+    d = rng.uniform(-3.5, 3.5, 3000) ** 3 / 10  # dense near 0, sparse (empty bins) far out
+    v = rng.normal(0, 10, 3000)
+    v[:9] = np.nan
+    mask = rng.random(3000) < 0.8
+    mult = rng.integers(1, 4, 3000).astype(float)
+    together = EsfAccumulators(bin_mm=bin_mm, lo_mm=lo, hi_mm=hi)
+    together.add(which, d, v, mask, multiplicity=mult)
+    alone = []
+    for j in range(3):
+        acc = EsfAccumulator(bin_mm=bin_mm, lo_mm=lo[j], hi_mm=hi[j])
+        sel = which == j
+        acc.add(d[sel], v[sel], mask[sel], multiplicity=mult[sel])
+        alone.append(acc)
+        part = slice(together.first_bin[j], together.first_bin[j] + together.n_bins[j])
+        assert np.array_equal(together.counts[part], acc.counts)
+        np.testing.assert_allclose(together.sums[part], acc.sums, rtol=1e-12, atol=1e-9)
+    starts, lengths, offsets = [10, 5, 0], [100, 60, 70], [0.3, -0.2, 0.0]
+    rows = together.binned_ranges(starts, lengths, offsets_mm=offsets)
+    assert (rows.counts == 0).any(axis=1).all()  # every row has empty bins (interpolated)
+    for j in range(3):
+        ref = alone[j].binned_range(starts[j], lengths[j], offset_mm=offsets[j])
+        got = rows.row(j)
+        assert np.array_equal(got.counts, ref.counts)
+        np.testing.assert_allclose(got.position_mm, ref.position_mm, rtol=0, atol=1e-12)
+        np.testing.assert_allclose(got.esf_hu, ref.esf_hu, rtol=1e-12, atol=1e-9)
+    with pytest.raises(ValueError):
+        together.binned_ranges([0, 0, 40], [100, 60, 70])
