@@ -582,7 +582,7 @@ class EsfAccumulators:
         st = np.asarray(starts, dtype=np.int64)
         ns = np.asarray(lengths, dtype=np.int64)
         off = np.zeros(st.size) if offsets_mm is None else np.asarray(offsets_mm, dtype=float)
-        if (ns < 1).any() or (st < 0).any() or (st + ns > self.n_bins).any():
+        if not all(n >= 1 and a >= 0 and a + n <= b for a, n, b in zip(st.tolist(), ns.tolist(), self.n_bins.tolist())):
             raise ValueError(f"bins {st.tolist()} + {ns.tolist()} outside the accumulators' {self.n_bins.tolist()}")
         cols = np.arange(int(ns.max()))
         bins = st[:, None] + cols
@@ -766,8 +766,8 @@ def ttf_from_esfs(
     zero = spectrum[:, 0] <= 0
     with np.errstate(invalid="ignore", divide="ignore"):
         ttf = np.where(usable, (spectrum / spectrum[:, :1]) / safe_correction, np.nan)
-    f50 = first_crossings(freq[usable], ttf[:, usable], 0.5)
-    f10 = first_crossings(freq[usable], ttf[:, usable], 0.1)
+    freq_u, ttf_u = freq[usable], ttf[:, usable]
+    f50, f10 = first_crossings(freq_u, ttf_u, 0.5), first_crossings(freq_u, ttf_u, 0.1)
     if max_frequency_per_mm is not None:
         keep = freq <= max_frequency_per_mm + 1e-12
         kept_freq, kept = freq[keep], ttf[:, keep]
@@ -937,7 +937,7 @@ def refine_circle_centres_of_stacks(
     Common practice, no source (centroid of a partial-volume weighted mask).
     """
     k = len(stacks)
-    out = [np.tile(np.array([float(c[0]), float(c[1])]), (st.shape[0], 1)) for st, c in zip(stacks, centres_yx)]
+    out = [np.full((st.shape[0], 2), (float(c[0]), float(c[1]))) for st, c in zip(stacks, centres_yx)]
     live = [j for j in range(k) if stacks[j].shape[0] and inside_hu[j] != outside_hu[j]]
     if not live:
         return out
@@ -949,10 +949,13 @@ def refine_circle_centres_of_stacks(
         # pixels within window - 2 of the start are inside the window of every centre the
         # iteration looks at (at most 2 px from the start): their sums are taken once
         core = (yy - centres_yx[j][0]) ** 2 + (xx - centres_yx[j][1]) ** 2 <= max(window - 2.0, 0.0) ** 2
-        wc = weights[:, core]
-        fixed = np.stack([wc.sum(axis=1), np.einsum("ij,j->i", wc, yy[core]), np.einsum("ij,j->i", wc, xx[core])],
+        # columns taken by index (C-ordered copies; boolean column indexing gives
+        # F-ordered ones, whose row sums are several times slower)
+        inner, outer = np.flatnonzero(core), np.flatnonzero(~core)
+        wc = weights.take(inner, axis=1)
+        fixed = np.stack([wc.sum(axis=1), np.einsum("ij,j->i", wc, yy[inner]), np.einsum("ij,j->i", wc, xx[inner])],
                          axis=1)  # no BLAS threads
-        parts.append((yy[~core], xx[~core], weights[:, ~core], window, fixed))
+        parts.append((yy[outer], xx[outer], weights.take(outer, axis=1), window, fixed))
     m = max(max(p[0].size for p in parts), 1)
     n = sum(stacks[j].shape[0] for j in live)
     far = 1e9  # never within a window of a centre
@@ -991,10 +994,11 @@ def refine_circle_centres_of_stacks(
         alone |= wandered & active
         active &= ~wandered
     row = 0
+    centres = np.stack([cy, cx], axis=1)
     for j in live:
         count = stacks[j].shape[0]
         rows = slice(row, row + count)
-        out[j] = np.stack([cy[rows], cx[rows]], axis=1)
+        out[j] = centres[rows]
         for i in np.flatnonzero(alone[rows]):
             out[j][i] = refine_circle_centre(stacks[j][i], centres_yx[j], radii_px[j], inside_hu[j], outside_hu[j],
                                              reach_px=reach_px[j], iterations=iterations)

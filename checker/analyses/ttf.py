@@ -906,17 +906,20 @@ def measure_circular_edges(
         [ri.inside_hu for ri in runs], [ri.outside_hu for ri in runs], [ri.reach_px for ri in runs])
     rods = [_rod_geometry(volume, insert, y0, x0, crop, half_mm, ri, per, s, allowed, others)
             for (insert, y0, x0, crop, half_mm, ri), per in zip(prepared, per_rod)]
-    group, radii = _centred_esfs([r.pool for r in rods], [r.free for r in rods], [r.insert.radius_mm for r in rods],
-                                 [r.half_mm for r in rods], px * float(s["bin_fraction"]))
-    esfs = [group.row(j) for j in range(len(rods))]
+    pixels = _rod_pixels([r.pool for r in rods], [r.free for r in rods])
+    radii_in = [r.insert.radius_mm for r in rods]
+    for rod, reach_mm in zip(rods, _free_reaches_mm(pixels, radii_in).tolist()):
+        _shorten_to_free_reach(rod, reach_mm, s, px)
+    halves = [r.half_mm for r in rods]
+    group, radii = _centred_esfs(pixels, radii_in, halves, px * float(s["bin_fraction"]))
     curves = _ttf_curves(group, s, 0.5 / px)
+    measured = _contrasts_and_noises([r.crop for r in rods], pixels, radii, halves, px)
     out = []
-    for rod, esf, radius_mm, (used, curve) in zip(rods, esfs, radii.tolist(), curves):
-        contrast, noise = _contrast_and_noise(rod.crop, rod.pool, rod.free, radius_mm, rod.half_mm, px)
+    for j, (rod, radius_mm, (used, curve), (contrast, noise)) in enumerate(zip(rods, radii.tolist(), curves, measured)):
         mean_yx = rod.centres.mean(axis=0)
         centre_zyx = (0.5 * (rod.insert.z0 + rod.insert.z1), float(mean_yx[0]) + rod.y0, float(mean_yx[1]) + rod.x0)
         extra = {"radius_mm": round(radius_mm, 3), "source": rod.insert.source}
-        out.append(_edge_record("circular", volume, esf, used, curve, contrast,
+        out.append(_edge_record("circular", volume, group.row(j), used, curve, contrast,
                                 rod.ri.inside_hu if contrast else float("nan"), noise,
                                 (rod.insert.z0, rod.insert.z1), centre_zyx, s, rod.problems, extra))
     return out
@@ -941,24 +944,62 @@ class RodGeometry:
 def _rod_geometry(volume: Volume, insert: Insert, y0: int, x0: int, crop: np.ndarray, half_mm: float,
                   ri: RunImages, per: np.ndarray, s: dict[str, Any], allowed: np.ndarray | None,
                   others: Sequence[Insert]) -> RodGeometry:
-    """A rod once its run centres ``per`` are known: centre line, pooled slices, free
-    pixels and the ESF's half range (shortened, with a problem when too short, where the
-    free region ends before it)."""
+    """A rod once its run centres ``per`` are known: centre line, pooled slices and free
+    pixels (the ESF's half range ``half_mm`` as asked; :func:`_shorten_to_free_reach`
+    shortens it where the free region ends before it)."""
     sy, sx = volume.spacing_mm[1], volume.spacing_mm[2]
     px = 0.5 * (sy + sx)
     free = _free_mask(crop.shape[1:], (y0, x0), volume.hu.shape[1:], insert, others, allowed, px)
     centres = _centre_line(ri, per, crop.shape[0])
     pool = _pool_slices(crop, centres, (sy, sx), float(s["bin_fraction"]), total=ri.total)
-    reach_mm = _free_reach_mm(pool.dist, free, insert.radius_mm)
-    problems: list[str] = []
-    if reach_mm < half_mm:
-        if reach_mm < float(s["min_half_range_mm"]):
-            problems.append(
-                f"the insert touches the border of its region (ROI, phantom or another insert): "
-                f"{max(reach_mm, 0):.1f} mm free beyond the edge, {s['min_half_range_mm']:g} mm needed"
-            )
-        half_mm = max(reach_mm, px)
-    return RodGeometry(insert, y0, x0, crop, ri, centres, pool, free, half_mm, problems)
+    return RodGeometry(insert, y0, x0, crop, ri, centres, pool, free, half_mm, [])
+
+
+@dataclass
+class RodPixels:
+    """Every rod's pooled pixels laid end to end, so that one pass of each operation
+    serves all rods: rod j's pixels (all its groups, each group's (y, x) image in
+    row-major order, as ``pool.dist[g].ravel()``) are ``starts[j]`` ..
+    ``starts[j] + sizes[j]`` - 1.
+
+    Attributes
+    ----------
+    which : ndarray of int (n,)
+        The rod of each pixel.
+    dist, sums, mult : ndarray (n,)
+        Distance (mm) to its group's centre, sum over its group's slices, and the group's
+        slice count (float).
+    free : ndarray of bool (n,)
+        Whether the pixel may be used (the rod's free mask, the same for all its groups).
+    starts, sizes : list of int
+    planes : list of int
+        Pixels of one group's image, rod by rod.
+    """
+
+    which: np.ndarray
+    dist: np.ndarray
+    sums: np.ndarray
+    mult: np.ndarray
+    free: np.ndarray
+    starts: list[int]
+    sizes: list[int]
+    planes: list[int]
+
+
+def _rod_pixels(pools: Sequence[PooledSlices], frees: Sequence[np.ndarray]) -> RodPixels:
+    """:class:`RodPixels` of the rods' pooled slices and free masks."""
+    sizes = [p.dist.size for p in pools]
+    planes = [p.dist[0].size for p in pools]
+    starts = [0]
+    for size in sizes[:-1]:
+        starts.append(starts[-1] + size)
+    return RodPixels(
+        which=np.repeat(np.arange(len(pools)), sizes),
+        dist=np.concatenate([p.dist.ravel() for p in pools]),
+        sums=np.concatenate([p.sums.ravel() for p in pools]),
+        mult=np.concatenate([np.repeat(p.n_slices.astype(float), plane) for p, plane in zip(pools, planes)]),
+        free=np.concatenate([np.broadcast_to(f, p.dist.shape).ravel() for f, p in zip(frees, pools)]),
+        starts=starts, sizes=sizes, planes=planes)
 
 
 def _centred_esf(pool: PooledSlices, free: np.ndarray, radius_mm: float, half_mm: float,
@@ -970,12 +1011,12 @@ def _centred_esf(pool: PooledSlices, free: np.ndarray, radius_mm: float, half_mm
     ----------
     Richard et al., Med Phys 39(7) 2012 (radial ESF about the edge radius).
     """
-    esfs, radii = _centred_esfs([pool], [free], [radius_mm], [half_mm], bin_mm)
+    esfs, radii = _centred_esfs(_rod_pixels([pool], [free]), [radius_mm], [half_mm], bin_mm)
     return esfs.row(0), float(radii[0])
 
 
-def _centred_esfs(pools: Sequence[PooledSlices], frees: Sequence[np.ndarray], radii_mm: Sequence[float],
-                  halves_mm: Sequence[float], bin_mm: float) -> tuple[BinnedEsfs, np.ndarray]:
+def _centred_esfs(pixels: RodPixels, radii_mm: Sequence[float], halves_mm: Sequence[float],
+                  bin_mm: float) -> tuple[BinnedEsfs, np.ndarray]:
     """Each rod's ESF over +/- its ``halves_mm`` about its measured edge radius, all
     from one binning (row j: rod j), and those radii.
 
@@ -988,8 +1029,8 @@ def _centred_esfs(pools: Sequence[PooledSlices], frees: Sequence[np.ndarray], ra
     offset of more than half the range keeps the first range and radius. A method choice
     for speed (one binning instead of one per range): the ESF window is placed on the
     edge to half a bin (a twentieth of a pixel), the radius is measured to the same
-    precision as before. The pixels of every rod (all its pooled groups) are laid end to
-    end and binned with one ``np.bincount`` into bins offset rod by rod
+    precision as before. The pixels of every rod (all its pooled groups, laid end to end
+    in ``pixels``) are binned with one ``np.bincount`` into bins offset rod by rod
     (:class:`reconaudit.checker.analyses._edges.EsfAccumulators`); the ranges, their
     centres and the moves are computed for all rods at once (rows of
     :class:`reconaudit.checker.analyses._edges.BinnedEsfs`, each of its rod's length).
@@ -998,21 +1039,16 @@ def _centred_esfs(pools: Sequence[PooledSlices], frees: Sequence[np.ndarray], ra
     ----------
     Richard et al., Med Phys 39(7) 2012 (radial ESF about the edge radius).
     """
-    k = len(pools)
+    k = len(pixels.sizes)
     half = np.asarray(halves_mm, dtype=float)
     radii = np.asarray(radii_mm, dtype=float)
     # the bins of each range, as EsfAccumulator counts them, and the bins beyond it on each side
     ns = np.array([max(int(math.floor((h - (-h)) / bin_mm)), 1) for h in half.tolist()], dtype=np.int64)
     extra = np.array([int(math.ceil(0.5 * h / bin_mm)) for h in half.tolist()], dtype=np.int64)
     acc = _edges.EsfAccumulators(bin_mm=bin_mm, lo_mm=-half - extra * bin_mm, hi_mm=-half + (ns + extra) * bin_mm)
-    sizes = [p.dist.size for p in pools]
-    dist = np.concatenate([p.dist.ravel() for p in pools])
-    radius = np.repeat(radii, sizes)
-    near = np.concatenate([np.broadcast_to(f, p.dist.shape).ravel() for f, p in zip(frees, pools)])
-    near &= np.abs(dist - radius) < np.repeat(1.5 * half, sizes)
-    mult = np.concatenate([np.repeat(p.n_slices.astype(float), p.dist[0].size) for p in pools])
-    acc.add(np.repeat(np.arange(k), sizes), dist - radius, np.concatenate([p.sums.ravel() for p in pools]), near,
-            multiplicity=mult)
+    d = pixels.dist - np.repeat(radii, pixels.sizes)
+    near = pixels.free & (np.abs(d) < np.repeat(1.5 * half, pixels.sizes))
+    acc.add(pixels.which, d, pixels.sums, near, multiplicity=pixels.mult)
     first = acc.binned_ranges(extra, ns)
     shift = _esf_centres_or_zero(first)
     moved = np.abs(shift) <= 0.5 * half
@@ -1169,12 +1205,24 @@ def _free_mask(shape: tuple[int, int], origin: tuple[int, int], full_shape: tupl
     return free & ~edge
 
 
-def _free_reach_mm(dist: np.ndarray, free: np.ndarray, radius_mm: float) -> float:
-    """How far beyond the edge (outwards) the region stays free, on every slice."""
-    blocked = ~free
-    if not blocked.any():
-        return float("inf")
-    return float(dist[:, blocked].min()) - radius_mm
+def _free_reaches_mm(pixels: RodPixels, radii_mm: Sequence[float]) -> np.ndarray:
+    """How far beyond its edge (outwards) each rod's region stays free, on every slice:
+    the least distance of a pixel that is not free, less the radius (inf where every
+    pixel is free); one minimum over each rod's pixels."""
+    blocked = np.where(pixels.free, np.inf, pixels.dist)
+    return np.minimum.reduceat(blocked, pixels.starts) - np.asarray(radii_mm, dtype=float)
+
+
+def _shorten_to_free_reach(rod: RodGeometry, reach_mm: float, s: dict[str, Any], px: float) -> None:
+    """Shorten the rod's ESF half range to ``reach_mm`` (at least a pixel) where the free
+    region ends before it, with a problem when less than ``min_half_range_mm`` is free."""
+    if reach_mm < rod.half_mm:
+        if reach_mm < float(s["min_half_range_mm"]):
+            rod.problems.append(
+                f"the insert touches the border of its region (ROI, phantom or another insert): "
+                f"{max(reach_mm, 0):.1f} mm free beyond the edge, {s['min_half_range_mm']:g} mm needed"
+            )
+        rod.half_mm = max(reach_mm, px)
 
 
 @dataclass
@@ -1246,11 +1294,10 @@ def _centre_line(ri: RunImages, per: np.ndarray, nz: int) -> np.ndarray:
     if len(per) >= 2:
         z = np.arange(nz, dtype=float)
         mid_z = np.array([float(r[0]) for r in ri.runs]) + 0.5 * (ri.sizes - 1.0)  # each run's mean slice, exactly
-        line = _line_along_z(mid_z, per, ri.sizes, z)
         if len(per) >= 3 and not _tilt_is_significant(mid_z, per, ri.sizes):
             mean = ri.sizes @ per / ri.sizes.sum()
             return np.repeat(mean[None], nz, axis=0)
-        return line
+        return _line_along_z(mid_z, per, ri.sizes, z)
     return np.concatenate([np.repeat(p[None], r.size, axis=0) for p, r in zip(per, ri.runs)])
 
 
@@ -1333,43 +1380,65 @@ def _line_along_z(zc: np.ndarray, yx: np.ndarray, weights: np.ndarray, z: np.nda
 
 
 #: Most slices of each pooled group whose side pixels enter the noise estimate of
-#: :func:`_contrast_and_noise` (evenly spread over the group).
+#: :func:`_contrasts_and_noises` (evenly spread over the group).
 NOISE_SLICES_PER_GROUP = 8
 
 
-def _contrast_and_noise(crop: np.ndarray, pool: PooledSlices, free: np.ndarray, radius_mm: float, half_mm: float,
-                        px: float) -> tuple[float, float]:
-    """Insert minus background mean, and the pooled per-slice pixel noise of both sides
-    (each slice's side about its own mean).
+def _contrasts_and_noises(crops: Sequence[np.ndarray], pixels: RodPixels, radii_mm: Sequence[float] | np.ndarray,
+                          halves_mm: Sequence[float], px: float) -> list[tuple[float, float]]:
+    """Each rod's insert minus background mean, and its pooled per-slice pixel noise of
+    both sides (each slice's side about its own mean).
 
     Both sides are taken at least two pixels and a third of the range away from the edge
     (distances to the centre of each slice's group, :func:`_pool_slices`). The contrast
     is the mean of every slice's side pixels, read from the groups' slice sums
-    (``pool.sums``). The noise is a subsampled statistic (a method choice for speed):
-    the side pixels of at most ``NOISE_SLICES_PER_GROUP`` slices of each group, evenly
-    spread, each slice about its own mean (about 1e4 pixels for a 12 mm rod, a relative
-    standard error of the noise below 1 %); the sums run in float64.
+    (``pixels.sums``; one ``np.bincount`` per side and sum serves all rods). The noise
+    is a subsampled statistic (a method choice for speed): the side pixels of at most
+    ``NOISE_SLICES_PER_GROUP`` slices of each group, evenly spread, each slice about
+    its own mean (about 1e4 pixels for a 12 mm rod, a relative standard error of the
+    noise below 1 %); the sums run in float64.
 
     References
     ----------
     AAPM TG-233 (2019) (contrast and noise of the insert and its background);
     common practice, no source (subsampled pixel standard deviation).
     """
-    gap = max(2 * px, half_mm / 3)
-    inner = free[None] & (pool.dist <= radius_mm - gap)
-    outer = free[None] & (pool.dist >= radius_mm + gap) & (pool.dist <= radius_mm + half_mm)
-    if not inner.any() or not outer.any():
-        return float("nan"), float("nan")
-    n_per = pool.n_slices.astype(float)[:, None, None]
-    means = []
+    k = len(crops)
+    radii = np.asarray(radii_mm, dtype=float)
+    half = np.asarray(halves_mm, dtype=float)
+    gap = np.maximum(2 * px, half / 3)
+    d = pixels.dist
+    inner = pixels.free & (d <= np.repeat(radii - gap, pixels.sizes))
+    outer = pixels.free & (d >= np.repeat(radii + gap, pixels.sizes)) & (d <= np.repeat(radii + half, pixels.sizes))
+    sums = []
     for side in (inner, outer):
-        count = float((side * n_per).sum())
-        means.append(float(pool.sums[side].sum()) / count if count else float("nan"))
-    contrast = means[0] - means[1]
+        sums.append((np.bincount(pixels.which, weights=np.where(side, pixels.mult, 0.0), minlength=k).tolist(),
+                     np.bincount(pixels.which, weights=np.where(side, pixels.sums, 0.0), minlength=k).tolist()))
+    out = []
+    for j in range(k):
+        (n_in, s_in), (n_out, s_out) = ((c[j], t[j]) for c, t in sums)
+        if not n_in or not n_out:
+            out.append((float("nan"), float("nan")))
+            continue
+        start, plane = pixels.starts[j], pixels.planes[j]
+        out.append((s_in / n_in - s_out / n_out,
+                    _side_noise(crops[j], inner[start : start + pixels.sizes[j]].reshape(-1, plane),
+                                outer[start : start + pixels.sizes[j]].reshape(-1, plane),
+                                pixels.mult[start : start + pixels.sizes[j] : plane])))
+    return out
+
+
+def _side_noise(crop: np.ndarray, inner: np.ndarray, outer: np.ndarray, n_slices: np.ndarray) -> float:
+    """Pooled per-slice pixel noise of a rod's two sides: ``inner`` and ``outer`` (groups,
+    y * x) are each group's side pixels, ``n_slices`` each group's slice count; at most
+    ``NOISE_SLICES_PER_GROUP`` slices of each group, evenly spread, each slice's side
+    about its own mean (see :func:`_contrasts_and_noises`)."""
     ss, n = 0.0, 0
-    for g in range(pool.starts.size):
+    start = 0
+    for g, count in enumerate(n_slices.astype(int).tolist()):
         sides = (np.flatnonzero(inner[g]), np.flatnonzero(outer[g]))
-        rows = crop[_spread_slices(pool.slices(g), NOISE_SLICES_PER_GROUP)]
+        rows = crop[_spread_slices(slice(start, start + count), NOISE_SLICES_PER_GROUP)]
+        start += count
         flat = rows.reshape(rows.shape[0], -1)  # a copy of these slices only when the crop is a view
         both = flat.take(np.concatenate(sides), axis=1).astype(float, copy=False)  # one gather
         for j, idx in enumerate(sides):
@@ -1380,7 +1449,7 @@ def _contrast_and_noise(crop: np.ndarray, pool: PooledSlices, free: np.ndarray, 
             dev = v - (v.sum(axis=1) / m)[:, None]
             ss += float(np.einsum("ij,ij->", dev, dev))  # no BLAS threads
             n += v.size
-    return contrast, float(np.sqrt(ss / n)) if n > 1 else float("nan")
+    return float(np.sqrt(ss / n)) if n > 1 else float("nan")
 
 
 def _spread_slices(group: slice, most: int) -> slice:
