@@ -123,9 +123,11 @@ and the fill value and the robust noise scale from regular sub-grids of about
 edges and the spectrum stay on the screen grid (the band is in cycles per pixel of
 that grid). Slabs go through in stacks of ``SCREEN_STACK`` (``SCREEN_STACK`` times the
 slab size slices per task, so thin slices give each thread larger tasks): each slice is
-binned once (the one full-resolution pass over the volume), the coarse-grid work is
-done for the stack at once, the full-grid filters, the FFT and the cell sums slab by
-slab (their temporaries stay small); each slab's outcome depends on that slab only.
+binned once (the one full-resolution pass over the volume), the texture's steps run
+on the whole stack at once (one array operation per step for all its slabs; the
+Gaussian blurs as banded matrix products, :func:`banded_blur`, which read the image
+once per axis instead of once per tap), the FFT and the cell sums slab by slab; each
+slab's outcome depends on that slab only.
 Slabs of two slices (1.25 mm) halve the screen's work after the binning. The coarse
 grids and sub-grids give estimates of the same quantities, so the indices differ
 slightly from a full-grid computation (a documented method choice); the record's keys,
@@ -135,7 +137,8 @@ per 4 kB on first touch: about a quarter of the screen's CPU time before); a sla
 full-resolution sum is formed in row blocks and binned once, and the masks are binned
 from contiguous 16-bit column pairs and their outlines eroded on 64-bit words. These
 implementation steps compute the same numbers (tested against fresh arrays and scipy's
-filters); they are not method changes.
+filters, up to float32 rounding where the order of the sums changes); they are not
+method changes.
 Dense-pair lines and the localisation of flagged slices use the full-grid texture
 (:func:`slice_texture`).
 
@@ -383,15 +386,15 @@ class Workspace:
     """
 
     #: buffers of the screen's steps that are never alive at the same time, one name each:
-    #: binning, the high-pass blur and edge test of a slab, the soft weight, the squares,
-    #: the noise gain, the weight's upsampling, the cell sums (see :func:`screen_textures`;
-    #: a test checks lent results against fresh arrays)
+    #: binning, the masks, the high-pass blur and edge test of a stack, the soft weight,
+    #: the squares, the noise gain, the weight's upsampling, the cell sums (see
+    #: :func:`screen_textures`; a test checks lent results against fresh arrays)
     SHARED = {
-        **dict.fromkeys(("slab_total", "blur-2ext", "edge_gy", "tex_slice", "cell_sq", "gain_weighted", "inner_shift"), "A"),
-        **dict.fromkeys(("bin_rows", "blur-2out", "wtyout", "cell_power", "gain_upyout"), "B"),
-        **dict.fromkeys(("blur-2pair", "edge_gx", "sqr1", "wtxout"), "C"),
-        **dict.fromkeys(("blur-1ext", "fracr1", "wtydiff"), "D"),
-        **dict.fromkeys(("blur-1pair", "wtyscaled"), "E"),
+        **dict.fromkeys(("slab_total", "edge_gy", "tex_squared", "cell_sq", "gain_weighted", "inner_shift"), "A"),
+        **dict.fromkeys(("bin_rows", "tex_rows", "wtyout", "cell_power", "gain_upyout"), "B"),
+        **dict.fromkeys(("edge_gx", "sqr1", "wtxout"), "C"),
+        **dict.fromkeys(("tex_blur_cols", "fracr1", "wtydiff"), "D"),
+        **dict.fromkeys(("tex_blur_out", "wtyscaled"), "E"),
     }
 
     def __init__(self) -> None:
@@ -853,6 +856,173 @@ def _shift_add_axis(ext: np.ndarray, taps: tuple[float, ...], axis: int, n: int,
     return buf.reshape(ext.shape)[..., :n]
 
 
+#: output columns per block of :func:`banded_blur`'s products along x (16 was the fastest
+#: of 4, 8, 16, 32 and 64 on rows of 256 pixels; larger blocks waste more products on zeros)
+BLUR_BLOCK_COLS = 16
+#: largest m * n * k of one matrix product and m * n of one matrix-vector product handed to
+#: the BLAS library by :func:`segment_products` and :func:`correlate_rows`: OpenBLAS computes
+#: products up to about 65536 * 4 and 2304 * 4 on the calling thread (its threading
+#: thresholds, from memory) and may hand larger ones to threads of its own, which would
+#: compete with the screen's threads; these limits stay well below
+BLAS_SERIAL_MNK = 1 << 17
+BLAS_SERIAL_MN = 1 << 13
+
+
+def banded_blur(image: np.ndarray, sigma_px: float, truncate: float, mode: str = "reflect",
+                ws: "Workspace | None" = None, tag: str = "band") -> np.ndarray:
+    """Separable sampled-Gaussian blur over the last two axes by banded matrix products.
+
+    The same kernel (:func:`gaussian_taps`) and border rules ("reflect" as
+    ``scipy.ndimage.gaussian_filter``'s default, ``d c b a | a b c d``, or "constant",
+    zeros outside) as :func:`shift_add_blur`; equal to scipy's filter of each slice up to
+    float32 rounding (the products sum the taps in another order). Along y each output
+    row is the taps times the ``2r + 1`` rows around it: one vector-matrix product per row
+    on a strided view of the row-extended image (no copies of shifted rows); along x
+    every block of :data:`BLUR_BLOCK_COLS` outputs is a row segment of ``block + 2r``
+    samples times a fixed ``(block + 2r, block)`` band matrix. The image is read once
+    per axis instead of once per tap. With a :class:`Workspace` ``ws`` the result is one
+    of its buffers (names from ``tag``) until the next call with that tag.
+
+    References
+    ----------
+    .. [1] scipy.ndimage.gaussian_filter (the same sampled kernel and border rules).
+    """
+    img = np.asarray(image, dtype=np.float32)
+    taps = gaussian_taps(float(sigma_px), float(truncate))
+    r = len(taps) // 2
+    ny = img.shape[-2]
+    rows = scratch(ws, tag + "_rows", img.shape[:-2] + (ny + 2 * r, img.shape[-1]))
+    rows[..., r : r + ny, :] = img
+    return blur_extended(rows, taps, mode, ws, tag)
+
+
+def blur_extended(rows: np.ndarray, taps: tuple[float, ...], mode: str = "reflect",
+                  ws: "Workspace | None" = None, tag: str = "band") -> np.ndarray:
+    """:func:`banded_blur` of the image ``rows[..., r:-r, :]`` held with ``r = len(taps) // 2``
+    spare rows on either side (filled here by ``mode``), so that a caller can write the
+    image straight into its place. A kernel longer than a side falls back to
+    ``scipy.ndimage.correlate1d`` (the mirror would need more than one reflection).
+    The result is C-contiguous when the width is a multiple of :data:`BLUR_BLOCK_COLS`.
+    """
+    r = len(taps) // 2
+    ny, nx = rows.shape[-2] - 2 * r, rows.shape[-1]
+    img = rows[..., r : r + ny, :]
+    if r == 0:
+        return img.copy()
+    if r > ny or r > nx:
+        out = ndimage.correlate1d(img, np.asarray(taps), axis=-2, mode=mode)
+        return ndimage.correlate1d(out, np.asarray(taps), axis=-1, mode=mode, output=out)
+    _fill_border(rows, r, ny, -2, mode)
+    block = BLUR_BLOCK_COLS
+    width = -(-nx // block) * block
+    lead = rows.shape[:-2]
+    cols = scratch(ws, tag + "_cols", lead + (ny, width + 2 * r))
+    correlate_rows(rows, taps, cols[..., r : r + nx])
+    _fill_border(cols[..., : nx + 2 * r], r, nx, -1, mode)
+    cols[..., nx + 2 * r :] = 0.0  # past the border: their outputs are dropped
+    out = scratch(ws, tag + "_out", lead + (ny, width))
+    correlate_cols(cols, taps, out, block)
+    return out if width == nx else out[..., :nx]
+
+
+def _fill_border(ext: np.ndarray, radius: int, n: int, axis: int, mode: str) -> None:
+    """The ``radius`` samples on either side of ``ext``'s middle ``n`` along ``axis`` (in place):
+    mirrored (``d c b a | a b c d``) for "reflect", zeros for "constant"."""
+    nd = ext.ndim
+    lo, hi = _along(axis, slice(0, radius), nd), _along(axis, slice(radius + n, 2 * radius + n), nd)
+    if mode == "constant":
+        ext[lo] = 0.0
+        ext[hi] = 0.0
+        return
+    stop = radius - 1
+    ext[lo] = ext[_along(axis, slice(2 * radius - 1, stop if stop >= 0 else None, -1), nd)]
+    ext[hi] = ext[_along(axis, slice(radius + n - 1, n - 1 if n >= 1 else None, -1), nd)]
+
+
+def correlate_rows(ext: np.ndarray, taps: tuple[float, ...], out: np.ndarray) -> np.ndarray:
+    """``out[..., i, :] = sum_d taps[d] * ext[..., i + d, :]`` for the rows of ``out``.
+
+    One vector-matrix product per output row, on a view of ``ext`` whose row ``i`` holds
+    rows ``i .. i + 2r`` (overlapping strides, nothing copied); ``ext``'s rows must be
+    contiguous. Columns go in chunks of at most ``BLAS_SERIAL_MN // len(taps)``.
+    """
+    t = np.asarray(taps, dtype=np.float32)
+    n, width = out.shape[-2:]
+    s = ext.strides
+    chunk = max(1, BLAS_SERIAL_MN // t.size)
+    for c0 in range(0, width, chunk):
+        c1 = min(c0 + chunk, width)
+        part = ext[..., c0:c1]
+        view = np.lib.stride_tricks.as_strided(part, part.shape[:-2] + (n, t.size, c1 - c0),
+                                               s[:-2] + (s[-2], s[-2], s[-1]), writeable=False)
+        np.matmul(t, view, out=out[..., c0:c1])
+    return out
+
+
+@functools.lru_cache(maxsize=16)
+def band_matrix(taps: tuple[float, ...], block: int) -> np.ndarray:
+    """``(block + 2r, block)`` float32 matrix ``M`` with ``M[j + d, j] = taps[d]`` (read-only):
+    a row segment of ``block + 2r`` samples times ``M`` is its correlation with the taps at
+    the ``block`` positions that have all their samples."""
+    t = np.asarray(taps, dtype=np.float32)
+    m = np.zeros((block + t.size - 1, block), dtype=np.float32)
+    for j in range(block):
+        m[j : j + t.size, j] = t
+    m.flags.writeable = False
+    return m
+
+
+def correlate_cols(ext: np.ndarray, taps: tuple[float, ...], out: np.ndarray, block: int = BLUR_BLOCK_COLS) -> np.ndarray:
+    """``out[..., j] = sum_d taps[d] * ext[..., j + d]`` for the columns of ``out`` (a multiple of ``block``).
+
+    Block ``b`` of the outputs is the segments ``ext[..., b * block : (b + 1) * block + 2r]``
+    of every row times :func:`band_matrix` (:func:`segment_products`).
+    """
+    return segment_products(ext, band_matrix(tuple(taps), block), block, out)
+
+
+def segment_products(ext: np.ndarray, matrix: np.ndarray, step: int, out: np.ndarray) -> np.ndarray:
+    """``out[..., b * q : (b + 1) * q] = ext[..., b * step : b * step + p] @ matrix`` for every block ``b``.
+
+    ``matrix`` is ``(p, q)``; ``out``'s last axis is a whole number of blocks of ``q`` and
+    ``ext``'s holds every segment. One matrix product per block and per chunk of rows,
+    on strided views of ``ext`` and ``out`` (nothing copied; rows must be contiguous).
+    The rows of all leading indices are taken as one matrix when both arrays are laid
+    out so (the workspace's buffers are), in chunks of at most ``BLAS_SERIAL_MNK / (p q)``
+    rows.
+    """
+    p, q = matrix.shape
+    nb = out.shape[-1] // q
+    if ext.ndim > 2 and _rows_merge(ext) and _rows_merge(out):
+        ext, out_rows = ext.reshape(-1, ext.shape[-1]), out.reshape(-1, out.shape[-1])
+    else:
+        out_rows = out
+    n_rows = out_rows.shape[-2]
+    chunk = max(1, BLAS_SERIAL_MNK // (p * q))
+    se, so = ext.strides, out_rows.strides
+    for r0 in range(0, n_rows, chunk):
+        r1 = min(r0 + chunk, n_rows)
+        src, dst = ext[..., r0:r1, :], out_rows[..., r0:r1, :]
+        segments = np.lib.stride_tricks.as_strided(src, src.shape[:-2] + (nb, r1 - r0, p),
+                                                   se[:-2] + (step * se[-1], se[-2], se[-1]), writeable=False)
+        blocks = np.lib.stride_tricks.as_strided(dst, dst.shape[:-2] + (nb, r1 - r0, q),
+                                                 so[:-2] + (q * so[-1], so[-2], so[-1]))
+        np.matmul(segments, matrix, out=blocks)
+    return out
+
+
+def _rows_merge(a: np.ndarray) -> bool:
+    """Whether the rows of every leading index of ``a`` form one evenly strided run (so that
+    ``a.reshape(-1, a.shape[-1])`` is a view)."""
+    stride = a.strides[-2]
+    size = a.shape[-2]
+    for dim in range(a.ndim - 3, -1, -1):
+        if a.shape[dim] > 1 and a.strides[dim] != stride * size:
+            return False
+        stride, size = a.strides[dim], a.shape[dim]
+    return True
+
+
 def block_mean_even(values: np.ndarray, factor: int, pad: str, ws: "Workspace | None" = None,
                     tag: str = "bme") -> np.ndarray:
     """Means over ``factor`` x ``factor`` blocks of the last two axes, sides padded to multiples.
@@ -955,7 +1125,7 @@ def coarse_soft_weight(bad_fraction: np.ndarray, reach_px: float, ws: "Workspace
     """
     f = WEIGHT_BLOCK_PX
     var = (0.5 * reach_px) ** 2 - (f * f - 1) / 12.0 - f * f / 6.0
-    blur = shift_add_blur(bad_fraction, math.sqrt(max(var, 0.01)) / f, 2.5, ws=ws, tag="blur")
+    blur = banded_blur(bad_fraction, math.sqrt(max(var, 0.01)) / f, 2.5, ws=ws, tag="wblur")
     blur *= np.float32(-20.0)
     blur += np.float32(1.0)
     np.clip(blur, 0.0, 1.0, out=blur)
@@ -1050,9 +1220,15 @@ def strong_edges_stack(smoothed: np.ndarray, step_hu: float, sigma_px: float, ws
     gy = scratch(ws, "edge_gy", smoothed.shape)
     gx = scratch(ws, "edge_gx", smoothed.shape)
     gy[..., 0, :] = gy[..., -1, :] = 0.0
-    gx[..., 0] = gx[..., -1] = 0.0
     np.subtract(smoothed[..., 2:, :], smoothed[..., :-2, :], out=gy[..., 1:-1, :])
-    np.subtract(smoothed[..., 2:], smoothed[..., :-2], out=gx[..., 1:-1])
+    if smoothed.flags.c_contiguous and smoothed.size > 2:
+        # along x as one flat line (contiguous operands); the differences that straddle two
+        # rows land on the first and last columns, which are zeroed below
+        flat = smoothed.reshape(-1)
+        np.subtract(flat[2:], flat[:-2], out=gx.reshape(-1)[1:-1])
+    else:
+        np.subtract(smoothed[..., 2:], smoothed[..., :-2], out=gx[..., 1:-1])
+    gx[..., 0] = gx[..., -1] = 0.0
     gy *= gy
     gx *= gx
     gy += gx  # 4 x the squared gradient magnitude
@@ -1076,39 +1252,29 @@ def screen_textures(images: np.ndarray, allowed: np.ndarray, cfg: dict[str, Any]
     With a :class:`Workspace` ``ws`` the textures are one of its buffers (valid until
     its next stack).
     """
-    k = images.shape[0]
-    min_count = cfg["min_weight_fraction"] * images[0].size
+    k, ny, nx = images.shape
+    min_count = cfg["min_weight_fraction"] * ny * nx
     if all_finite is None:
         all_finite = np.isfinite(images.reshape(k, -1).max(axis=1)) & np.isfinite(images.reshape(k, -1).min(axis=1))
-    valid = allowed if all(all_finite) else allowed & np.isfinite(images)
-    n_valid = np.count_nonzero(valid.reshape(k, -1), axis=1)
+    finite = bool(np.all(all_finite))
+    valid = allowed if finite else allowed & np.isfinite(images)
+    n_valid = count_per_slice(valid)
     usable = n_valid >= min_count
-    img = images
-    residual = scratch(ws, "tex_residual", images.shape)
-    if int(n_valid.min()) < valid[0].size:
-        fill = np.zeros((k, 1, 1), dtype=np.float32)
-        for i in range(k):
-            if usable[i] and n_valid[i] < valid[i].size:
-                sample = grid_subsample(images[i], valid[i], FILL_SAMPLES)
-                fill[i] = sample_median(sample) if sample.size else np.median(images[i][valid[i]])
-        if all(all_finite):  # the fill everywhere, then the valid pixels (the residual replaces it below)
-            img = residual
-            img[...] = fill
-            np.copyto(img, images, where=valid)
-        else:
-            img = np.where(valid, images, fill)
     sigma = float(cfg["highpass_sigma_px"])
+    taps = gaussian_taps(sigma, 3.0)
+    r = len(taps) // 2
+    # the filled image is written straight between the spare rows of the high-pass blur
+    rows = scratch(ws, "tex_rows", (k, ny + 2 * r, nx))
+    img = rows[:, r : r + ny]
+    fill_masked(images, valid, n_valid, usable, finite, img)
+    smoothed = blur_extended(rows, taps, "reflect", ws, "tex_blur")
+    residual = np.subtract(img, smoothed, out=scratch(ws, "tex_residual", images.shape))
+    edges = strong_edges_stack(smoothed, float(cfg["edge_step_hu"]), sigma, ws)
+    bad = np.less_equal(valid, edges, out=edges)  # an edge or not valid (booleans)
     f = WEIGHT_BLOCK_PX
-    fraction = scratch(ws, "tex_fraction", (k,) + tuple(-(-n // f) for n in img.shape[-2:]))
-    for i in range(k):  # slice by slice: the full-grid arrays of one slice stay in cache
-        smoothed = shift_add_blur(img[i], sigma, 3.0, ws=ws, tag="blur")  # reads img[i] first
-        np.subtract(img[i], smoothed, out=residual[i])
-        edges = strong_edges_stack(smoothed, float(cfg["edge_step_hu"]), sigma, ws)
-        bad = np.less_equal(valid[i], edges, out=edges)  # an edge or not valid (booleans)
-        fraction[i] = block_mean_even(bad.view(np.uint8), f, "edge", ws, "frac")
-    weight = coarse_soft_weight(fraction, 2.0 * sigma + 2.0, ws)
+    weight = coarse_soft_weight(block_mean_even(bad.view(np.uint8), f, "edge", ws, "frac"), 2.0 * sigma + 2.0, ws)
     inside = weight > 0.5
-    n_inside = np.count_nonzero(inside.reshape(k, -1), axis=1)
+    n_inside = count_per_slice(inside)
     scale = np.ones(k, dtype=np.float64)
     for i in range(k):
         usable[i] &= n_inside[i] * f * f >= min_count
@@ -1121,14 +1287,42 @@ def screen_textures(images: np.ndarray, allowed: np.ndarray, cfg: dict[str, Any]
     np.clip(residual, -limit, limit, out=residual)
     reach_eq = float(cfg["noise_equalise_sigma_px"])
     if reach_eq > 0:
-        squares = scratch(ws, "tex_squares", weight.shape)
-        for i in range(k):  # slice by slice (full-grid temporaries of one slice)
-            one = np.multiply(residual[i], residual[i], out=scratch(ws, "tex_slice", residual.shape[-2:]))
-            squares[i] = block_mean_even(one, f, "edge", ws, "sq")
-        weight *= coarse_noise_gain(squares, weight, scale, reach_eq, ws)
-    for i in range(k):
-        residual[i] *= upsample_linear(weight[i], f, residual.shape[-2:], ws, "wt")
+        squared = np.multiply(residual, residual, out=scratch(ws, "tex_squared", residual.shape))
+        weight *= coarse_noise_gain(block_mean_even(squared, f, "edge", ws, "sq"), weight, scale, reach_eq, ws)
+    residual *= upsample_linear(weight, f, (ny, nx), ws, "wt")
     return residual, usable
+
+
+def count_per_slice(mask: np.ndarray) -> np.ndarray:
+    """True pixels of each slice of a boolean stack (``count_nonzero`` slice by slice: its
+    whole-array count is much faster than the reduction along an axis)."""
+    return np.array([np.count_nonzero(m) for m in mask], dtype=np.int64)
+
+
+def fill_masked(images: np.ndarray, valid: np.ndarray, n_valid: np.ndarray, usable: np.ndarray, finite: bool,
+                out: np.ndarray) -> np.ndarray:
+    """``images`` with the pixels outside ``valid`` replaced by their slice's fill value, into ``out``.
+
+    The fill of a slice is the median of its valid pixels on a sub-grid of about
+    :data:`FILL_SAMPLES` points (all its valid pixels if the sub-grid holds none); slices
+    with every pixel valid are copied, unusable ones get 0 outside ``valid``. ``finite``
+    says that ``images`` hold no NaN or infinity.
+    """
+    k = images.shape[0]
+    if int(n_valid.min()) == valid[0].size:
+        np.copyto(out, images)
+        return out
+    fill = np.zeros((k, 1, 1), dtype=np.float32)
+    for i in range(k):
+        if usable[i] and n_valid[i] < valid[i].size:
+            sample = grid_subsample(images[i], valid[i], FILL_SAMPLES)
+            fill[i] = sample_median(sample) if sample.size else np.median(images[i][valid[i]])
+    if finite:  # the fill everywhere, then the valid pixels
+        out[...] = fill
+        np.copyto(out, images, where=valid)
+    else:
+        np.copyto(out, np.where(valid, images, fill))
+    return out
 
 
 def screen_texture(image: np.ndarray, allowed: np.ndarray, cfg: dict[str, Any]) -> np.ndarray | None:

@@ -476,6 +476,45 @@ def test_shift_add_blur_equals_scipy_on_slices_of_a_stack(mode, sigma):
         assert np.max(np.abs(got[i] - expected)) <= 1e-5 * np.max(np.abs(stack[i]))
 
 
+@pytest.mark.parametrize("mode", ["reflect", "constant"])
+@pytest.mark.parametrize("sigma", [1.5, 0.6, 2.5, 1.155])
+@pytest.mark.parametrize("shape", [(3, 37, 41), (2, 64, 64), (1, 300, 520), (40, 33), (4, 6)])
+def test_banded_blur_equals_scipy_and_the_shifted_adds(mode, sigma, shape):
+    """The banded matrix products compute scipy.ndimage.gaussian_filter's blur (the same
+    sampled kernel and border rule) slice by slice, up to float32 rounding; widths that
+    are not whole blocks, more rows and columns than one product takes and kernels longer
+    than a side included; a workspace gives the same values as fresh arrays."""
+    from scipy import ndimage
+
+    rng = np.random.default_rng(15)
+    stack = (rng.normal(size=shape) * 50.0 + 1000.0).astype(np.float32)
+    flat = stack.reshape((-1,) + shape[-2:])
+    got = streaks.banded_blur(stack, sigma, 3.0, mode)
+    lent = streaks.banded_blur(stack, sigma, 3.0, mode, streaks.Workspace())
+    shifted = streaks.shift_add_blur(stack, sigma, 3.0, mode)
+    assert got.shape == shape and got.dtype == np.float32
+    assert np.array_equal(got, lent)
+    for i, got_i in enumerate(got.reshape(flat.shape)):
+        expected = ndimage.gaussian_filter(flat[i], sigma, truncate=3.0, mode=mode)
+        assert np.max(np.abs(got_i - expected)) <= 1e-5 * np.max(np.abs(flat[i]))
+    assert np.max(np.abs(got - shifted)) <= 1e-5 * np.max(np.abs(stack))
+
+
+def test_segment_products_equal_the_segments_times_the_matrix():
+    """Each block of outputs is its segment of the input rows times the matrix (numpy's
+    product of the copied segments), for stacked and plain 2-D rows."""
+    rng = np.random.default_rng(16)
+    matrix = rng.random((7, 4)).astype(np.float32)
+    for shape in [(3, 9, 3 * 5 + 7), (9, 2 * 5 + 7)]:
+        ext = rng.random(shape).astype(np.float32)
+        nb = (shape[-1] - 7) // 3 + 1
+        out = np.empty(shape[:-1] + (nb * 4,), np.float32)
+        streaks.segment_products(ext, matrix, 3, out)
+        for b in range(nb):
+            expected = ext[..., 3 * b : 3 * b + 7] @ matrix
+            assert np.allclose(out[..., 4 * b : 4 * b + 4], expected, rtol=1e-6, atol=1e-6)
+
+
 def test_gaussian_matrix_equals_constant_mode_correlation():
     from scipy import ndimage
 
