@@ -13,7 +13,9 @@ With ``--torso N`` the cached 512 x 512 x N torso benchmark series of
 Times are the median (and the best) of ``--repeats`` runs (wall and CPU), each cold: the
 phantom search's shared answer (``_phantom``'s cache, which the noise analyses of the same
 volume would also use) is cleared before every run. The machine may be shared, so compare
-CPU medians and minima.
+CPU medians and minima. The parts list also times the rods measured one at a time (each as
+``measure_circular_edge`` alone) beside the rods measured together, as the analysis does,
+and prints the ratio of the two.
 
 Usage: ``python benchmarks/bench_ttf.py [--slices 120] [--torso 400] [--repeats 5]``
 """
@@ -96,8 +98,12 @@ def _print_parts(vol: Volume, regions, repeats: int) -> None:
     parts["insert search"] = lambda: ttf.find_rod_inserts(vol, regions, s, phantom=found)
     inserts = ttf.find_rod_inserts(vol, regions, s, phantom=found)
     allowed = ttf._body_footprint(vol, regions, inserts, s)
-    parts[f"measuring {len(inserts)} rods"] = lambda: ttf.measure_circular_edges(  # as analyse measures them
+    together = f"measuring {len(inserts)} rods"
+    parts[together] = lambda: ttf.measure_circular_edges(  # as analyse measures them
         vol, inserts, s, allowed=allowed, others=inserts)
+    parts["  the same rods one at a time"] = lambda: [  # each rod alone: what measuring them together saves
+        ttf.measure_circular_edge(vol, ins, s, allowed=allowed, others=inserts) for ins in inserts]
+    medians = {}
     for name, fn in parts.items():
         cpus = []
         for _ in range(max(1, repeats)):
@@ -105,7 +111,10 @@ def _print_parts(vol: Volume, regions, repeats: int) -> None:
             c0 = time.process_time()
             fn()
             cpus.append(time.process_time() - c0)
-        print(f"    {name}: CPU median {1e3 * float(np.median(cpus)):.1f} ms, best {1e3 * min(cpus):.1f} ms")
+        medians[name] = float(np.median(cpus))
+        print(f"    {name}: CPU median {1e3 * medians[name]:.1f} ms, best {1e3 * min(cpus):.1f} ms")
+    alone = medians["  the same rods one at a time"]
+    print(f"    rods together / one at a time: {medians[together] / alone:.2f} (CPU medians)")
 
 
 def main() -> None:
