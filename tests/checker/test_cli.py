@@ -201,3 +201,26 @@ def test_a_two_worker_check_gives_the_one_worker_results_and_unfreezes_the_colle
     assert [s["id"] for s in one] == [s["id"] for s in two]
     assert [s["nps"] for s in one] == [s["nps"] for s in two]
     assert [s["verdict"] for s in one] == [s["verdict"] for s in two]
+
+
+def test_the_largest_series_is_handed_out_first_and_the_outputs_stay_sorted(tmp_path, monkeypatch):
+    """Three series of 2, 9 and 5 slices: the tasks go out 9, 5, 2 slices (largest
+    first); results.json still lists the series by id."""
+    from reconaudit.checker import runner
+
+    root = tmp_path / "in"
+    for name, nz in (("a-short", 2), ("b-long", 9), ("c-mid", 5)):
+        write_ct_series(_water_cylinder(nz, n=nz, size=64), root / name, series_description=f"Fernhollow {name}",
+                        uid_seed=f"order-{name}")
+    handed_out: list[int] = []
+    real_run_local = runner.run_local
+
+    def recording(tasks, on_done, **kw):
+        handed_out.extend(len(t.source.files) for t in tasks)
+        return real_run_local(tasks, on_done, **kw)
+
+    monkeypatch.setattr(runner, "run_local", recording)
+    _run(["check", str(root), "--out", str(tmp_path / "out"), "--no-history", "--no-figures", "--workers", "1"])
+    assert handed_out == [9, 5, 2]
+    ids = [r["id"] for r in json.loads((tmp_path / "out" / "results.json").read_text())["series"]]
+    assert ids == sorted(ids) and len(ids) == 3
