@@ -606,44 +606,58 @@ def esf_shapes(esfs: BinnedEsfs, smooth_mm: float = 0.4) -> EsfShapes:
     return esfs.shapes_of_smoothed(_smoothing_bins(esfs, smooth_mm))
 
 
-def _row_medians(values: np.ndarray, counts: np.ndarray) -> np.ndarray:
+def _row_medians(values: np.ndarray, counts: list[int]) -> np.ndarray:
     """:func:`_median` of the first ``counts[j]`` entries of every row j of ``values``
     (NaN for a row holding a NaN there)."""
     k, m = values.shape
-    v = np.sort(np.where(np.arange(m)[None, :] < counts[:, None], values, np.inf), axis=1)
-    r = np.arange(k)
-    a, b = v[r, (counts - 1) // 2], v[r, counts // 2]
-    med = np.where(counts % 2 == 1, a, (a + b) / 2.0)
-    return np.where(np.isnan(v[:, -1]), np.nan, med)
+    if min(counts) == m:  # every row's entries: one sort, the middle column(s)
+        v = np.sort(values, axis=1)
+        med = v[:, m // 2] if m % 2 else (v[:, m // 2 - 1] + v[:, m // 2]) / 2.0
+    else:
+        c = np.asarray(counts)
+        v = np.sort(np.where(np.arange(m)[None, :] < c[:, None], values, np.inf), axis=1)
+        r = np.arange(k)
+        a, b = v[r, (c - 1) // 2], v[r, c // 2]
+        med = np.where(c % 2 == 1, a, (a + b) / 2.0)
+    return np.where(v[:, -1] != v[:, -1], np.nan, med)  # NaN sorts last
 
 
 def _shapes_of_smoothed(y: np.ndarray, pos: np.ndarray, lengths: np.ndarray) -> EsfShapes:
     """:func:`_shape_of_smoothed` of every row of ``y`` (k, n) at the positions ``pos``
     (k, n), row j of ``lengths[j]`` bins."""
     k, n = y.shape
-    r = np.arange(k)
-    cols = np.arange(n)
-    m = np.maximum(lengths // 10, 1)
     if n < 2:  # no crossing in one bin
         nan = np.full(k, np.nan)
         return EsfShapes(y[:, 0].copy(), y[:, 0].copy(), nan, nan.copy())
-    mm = int(m.max())
+    ns = lengths.tolist()
+    m = [max(length // 10, 1) for length in ns]
+    mm = max(m)
+    r = np.arange(k)
     first = _row_medians(y[:, :mm], m)
-    last = _row_medians(y[r[:, None], np.minimum((lengths - m)[:, None] + cols[:mm], n - 1)], m)
+    if min(ns) == n:  # rows of one length: the last bins are the last columns
+        last = _row_medians(y[:, n - mm :], m) if min(m) == mm else _row_medians(
+            y[r[:, None], np.minimum((lengths - np.asarray(m))[:, None] + np.arange(mm), n - 1)], m)
+    else:
+        last = _row_medians(y[r[:, None], np.minimum((lengths - np.asarray(m))[:, None] + np.arange(mm), n - 1)], m)
+    ok = (first != last) & np.isfinite(first + last)
+    scale = np.where(ok, last - first, 1.0)
+    cols = np.arange(n)
+    beyond = cols[None, :] >= lengths[:, None]
+    # t of the bins of each row; NaN beyond a row's bins and on rows without two plateaus,
+    # so that no comparison holds there
+    t = np.where(beyond | ~ok[:, None], np.nan, (y - first[:, None]) / scale[:, None])
+    cross = (t[:, :-1] < 0.5) & (t[:, 1:] >= 0.5)
     pos_last = pos[r, lengths - 1]
-    with np.errstate(invalid="ignore", divide="ignore"):
-        ok = (first != last) & np.isfinite(first + last)
-        t = (y - first[:, None]) / (last - first)[:, None]
-        cross = (t[:, :-1] < 0.5) & (t[:, 1:] >= 0.5) & (cols[None, :-1] < (lengths - 1)[:, None]) & ok[:, None]
-        middle = 0.5 * (pos[:, 0] + pos_last)
-        # the crossing nearest the middle (the first of equally near ones, as argmin over the crossings)
-        near = np.where(cross, np.abs(pos[:, :-1] - middle[:, None]), np.inf)
-        i = np.argmin(near, axis=1)
-        has = near[r, i] < np.inf
-        ti, ti1, pi, pi1 = t[r, i], t[r, i + 1], pos[r, i], pos[r, i + 1]
-        centre = np.where(has, pi + (0.5 - ti) * (pi1 - pi) / (ti1 - ti), np.nan)
+    middle = 0.5 * (pos[:, 0] + pos_last)
+    # the crossing nearest the middle (the first of equally near ones, as argmin over the crossings)
+    near = np.where(cross, np.abs(pos[:, :-1] - middle[:, None]), np.inf)
+    i = np.argmin(near, axis=1)
+    has = near[r, i] < np.inf
+    ti, ti1, pi, pi1 = t[r, i], t[r, i + 1], pos[r, i], pos[r, i + 1]
+    step = np.where(has, ti1 - ti, 1.0)
+    centre = np.where(has, pi + (0.5 - ti) * (pi1 - pi) / step, np.nan)
     left = (t <= 0.1) & (cols[None, :] <= i[:, None])  # the last of them is the 10 % point
-    right = (t >= 0.9) & (cols[None, :] >= i[:, None]) & (cols[None, :] < lengths[:, None])  # the first: 90 %
+    right = (t >= 0.9) & (cols[None, :] >= i[:, None])  # the first of them is the 90 % point
     lo = n - 1 - np.argmax(left[:, ::-1], axis=1)
     hi = np.argmax(right, axis=1)
     width = np.where(has & left[r, lo] & right[r, hi], pos[r, hi] - pos[r, lo], np.nan)
