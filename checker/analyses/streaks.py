@@ -1335,18 +1335,19 @@ def cell_powers(spectra: np.ndarray, bins: SpectralBins, ws: Workspace | None = 
     """Summed |F|^2 of the in-band samples per (ring, orientation) cell: ``(k, n_rings, n_bins)``.
 
     ``spectra`` are rfft2 spectra ``(k, ny, nx // 2 + 1)`` (or a sequence of ``k`` such
-    2-D spectra); one sparse product per spectrum with the
-    cell-membership matrix of ``bins`` (float64 sums of the float32 powers, which are
-    written as float64 so that the product needs no converted copy). ``ws`` lends the
-    squares and the powers.
+    2-D spectra); the powers of all of them are formed at once, then one sparse product
+    per spectrum with the cell-membership matrix of ``bins`` (float64 sums of the float32
+    powers, which are written as float64 so that the product needs no converted copy).
+    ``ws`` lends the squares and the powers.
     """
+    spectra = spectra if isinstance(spectra, np.ndarray) else np.stack(spectra)
     out = np.empty((len(spectra), bins.n_rings, bins.n_bins), dtype=np.float64)
-    for i, spectrum in enumerate(spectra):
-        v = spectrum.view(np.float32)
-        sq = np.multiply(v, v, out=scratch(ws, "cell_sq", v.shape))
-        power = scratch(ws, "cell_power", spectrum.shape, np.float64)
-        np.add(sq[:, 0::2], sq[:, 1::2], out=power, dtype=np.float32)
-        out[i] = (bins.cell_matrix @ power.ravel()).reshape(bins.n_rings, bins.n_bins)
+    v = spectra.view(np.float32)
+    sq = np.multiply(v, v, out=scratch(ws, "cell_sq", v.shape))
+    power = scratch(ws, "cell_power", spectra.shape, np.float64)
+    np.add(sq[..., 0::2], sq[..., 1::2], out=power, dtype=np.float32)
+    for i in range(len(spectra)):
+        out[i] = (bins.cell_matrix @ power[i].ravel()).reshape(bins.n_rings, bins.n_bins)
     return out
 
 
@@ -1356,13 +1357,21 @@ def profile_of_cells(cells: np.ndarray, bins: SpectralBins) -> np.ndarray | None
     The ring means and the whitened sums per orientation follow from that small table
     (the same sums as :func:`angular_profile`, in another order).
     """
-    ring_mean = cells.sum(axis=1) / np.maximum(bins.ring_count, 1)
-    if not np.all(np.isfinite(ring_mean)) or ring_mean.max() <= 0:
-        return None
-    inv = np.where(ring_mean > 0, 1.0 / np.where(ring_mean > 0, ring_mean, 1.0), 0.0)
-    profile = (inv @ cells) / np.maximum(bins.bin_count, 1)
-    mean = profile.mean()
-    return profile / mean if mean > 0 else None
+    return profiles_of_cells(cells[None], bins)[0]
+
+
+def profiles_of_cells(cells: np.ndarray, bins: SpectralBins) -> list[np.ndarray | None]:
+    """:func:`profile_of_cells` of each ``(n_rings, n_bins)`` table of a ``(k, n_rings, n_bins)``
+    stack, computed for the stack at once (None where the ring means are not finite and
+    positive somewhere, or the profile's mean is not positive)."""
+    ring_mean = cells.sum(axis=2) / np.maximum(bins.ring_count, 1)
+    ok = np.isfinite(ring_mean).all(axis=1) & (ring_mean.max(axis=1) > 0)
+    positive = ring_mean > 0
+    inv = np.where(positive, 1.0 / np.where(positive, ring_mean, 1.0), 0.0)
+    with np.errstate(invalid="ignore", over="ignore"):
+        profiles = np.matmul(inv[:, None, :], cells)[:, 0, :] / np.maximum(bins.bin_count, 1)
+        means = profiles.mean(axis=1)
+    return [profiles[i] / means[i] if ok[i] and means[i] > 0 else None for i in range(len(cells))]
 
 
 # --------------------------------------------------------------------------- directions
@@ -2074,13 +2083,12 @@ def screen_slabs(volume: Volume, masks: "AllowedMasks", factor: int, bins: Spect
 
     Each range ``(z0, z1)`` starts at a multiple of ``slab``, so its slabs are those of
     the whole volume (slab ``j`` holds slices ``j * slab`` to ``(j + 1) * slab - 1``).
-    Tasks of :data:`SCREEN_STACK` slabs go to :data:`SCREEN_THREADS` threads; each
-    slab's outcome depends on that slab only. ``slab_masks`` takes each slab's mask
+    Tasks of at most :data:`SCREEN_STACK` slabs (:func:`screen_tasks`) go to
+    :data:`SCREEN_THREADS` threads; each slab's outcome depends on that slab only. ``slab_masks`` takes each slab's mask
     from :meth:`AllowedMasks.slab_stack` (the first screen) instead of intersecting
     the masks of its usable slices.
     """
-    per_task = SCREEN_STACK * slab
-    tasks = [(a, min(a + per_task, z1)) for z0, z1 in ranges for a in range(z0, z1, per_task)]
+    tasks = screen_tasks(ranges, slab, SCREEN_STACK, SCREEN_THREADS)
     per_slab = slab_masks and slab > 1
 
     def one(i: int) -> list[np.ndarray | str]:
@@ -2094,6 +2102,28 @@ def screen_slabs(volume: Volume, masks: "AllowedMasks", factor: int, bins: Spect
     out: dict[int, np.ndarray | str] = {}
     for (z0, z1), found in zip(tasks, map_slices(one, len(tasks), SCREEN_THREADS)):
         out.update(zip(range(z0, z1), found))
+    return out
+
+
+def screen_tasks(ranges: list[tuple[int, int]], slab: int, stack: int, threads: int) -> list[tuple[int, int]]:
+    """Slice ranges of the screen's tasks: whole slabs of ``slab`` slices, at most ``stack`` per task.
+
+    Each range ``(z0, z1)`` (starting at a multiple of ``slab``) is split into the fewest
+    tasks of at most ``stack`` slabs, their number rounded up to a multiple of
+    ``threads`` and the slabs shared out evenly, so that the threads get about equal
+    work (100 slabs on 2 threads: 14 tasks of 7 or 8 slabs rather than 12 of 8 and one
+    of 4).
+    """
+    out = []
+    for z0, z1 in ranges:
+        n = -(-(z1 - z0) // slab)
+        if n <= 0:
+            continue
+        count = -(-n // max(1, stack))
+        if threads > 1 and count > 1:
+            count = min(n, -(-count // threads) * threads)
+        for j in range(count):
+            out.append((z0 + j * n // count * slab, min(z0 + (j + 1) * n // count * slab, z1)))
     return out
 
 
@@ -2295,14 +2325,15 @@ def screen_stack(images: np.ndarray, allowed: np.ndarray, factor: int, bins: Spe
 
 def profiles_of_textures(textures: np.ndarray, usable: Any, bins: SpectralBins,
                          ws: Workspace | None = None) -> list[tuple[int, np.ndarray]]:
-    """(index, angular profile) of every usable texture of a stack that has one: the FFT
-    of each usable texture (one at a time, the spectrum stays small), its cells summed
-    into its profile."""
+    """(index, angular profile) of every usable texture of a stack that has one: the FFTs
+    of the usable textures (one call for all of them), their cells summed into their
+    profiles."""
     good = [j for j in range(len(textures)) if usable[j]]
     if not good:
         return []
-    cells = cell_powers([sfft.rfft2(textures[j], overwrite_x=True) for j in good], bins, ws)
-    found = [(j, profile_of_cells(c, bins)) for j, c in zip(good, cells)]
+    batch = textures if len(good) == len(textures) else textures[good]
+    cells = cell_powers(sfft.rfft2(batch, overwrite_x=True), bins, ws)
+    found = zip(good, profiles_of_cells(cells, bins))
     return [(j, profile) for j, profile in found if profile is not None]
 
 

@@ -515,6 +515,26 @@ def test_segment_products_equal_the_segments_times_the_matrix():
             assert np.allclose(out[..., 4 * b : 4 * b + 4], expected, rtol=1e-6, atol=1e-6)
 
 
+def test_screen_tasks_cover_whole_slabs_evenly():
+    """Tasks cover every slice of the ranges once, in whole slabs starting at multiples of
+    the slab size, at most ``stack`` slabs each; with several threads their number is a
+    multiple of the thread count where there is more than one task, and their sizes
+    differ by at most one slab."""
+    for ranges, slab, stack, threads in [([(0, 400)], 4, 8, 2), ([(0, 401)], 4, 8, 2), ([(0, 37)], 1, 8, 1),
+                                         ([(0, 12), (20, 90)], 2, 8, 2), ([(6, 8)], 2, 8, 2), ([(0, 400)], 4, 8, 3)]:
+        tasks = streaks.screen_tasks(ranges, slab, stack, threads)
+        covered = [z for a, b in tasks for z in range(a, b)]
+        assert covered == [z for z0, z1 in ranges for z in range(z0, z1)]
+        assert all(a % slab == 0 and -(-(b - a) // slab) <= stack for a, b in tasks)
+        for z0, z1 in ranges:
+            part = [(a, b) for a, b in tasks if z0 <= a < z1]
+            sizes = [-(-(b - a) // slab) for a, b in part]
+            assert max(sizes) - min(sizes) <= 1
+            if threads > 1 and len(part) > 1:
+                assert len(part) % threads == 0
+    assert len(streaks.screen_tasks([(0, 400)], 4, 8, 2)) == 14  # 100 slabs: 14 tasks of 7 or 8
+
+
 def test_gaussian_matrix_equals_constant_mode_correlation():
     from scipy import ndimage
 
