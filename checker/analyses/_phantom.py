@@ -38,9 +38,11 @@ threshold any slice has (the same answer). The CT numbers are
 read only inside the bounding box of the inner discs of the slices that pass, and the
 inner discs' masks are made only at the grids the tests read (2 x 2 blocks, every
 fourth pixel; whole masks only for a slice whose sum is not finite), the same masks.
-The grid is read eight slices at a time and turned at once into what the tests use
-(block means, every fourth pixel, each slice's sum) while it is in the processor
-cache; the whole grid is never kept (the same values). Centre
+The grid is read in pieces of some 2 MB of whole slices and each piece turned at once
+into what the tests use (block means, every fourth pixel, each slice's sum) while it
+is in the processor cache; the whole grid is never kept (the same values). Runs of
+equal body masks get their disc numbers once, and the medians of slices with few
+distinct pixel counts come from partitions instead of a sort (the same numbers). Centre
 and radius are therefore estimates on that grid (within a fraction of a working pixel
 for a phantom of tens of working pixels), and the slice median and the noise scale
 (MAD) are those of the inner pixels on every fourth row and column of the grid (some
@@ -206,11 +208,37 @@ def disc_stats(masks: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray, n
         Area over the area of the circle about the centroid through the farthest mask
         pixel (0 for an empty slice).
 
+    A slice equal to the one before it shares that slice's numbers: they are computed
+    once per run of equal slices (a cylinder's masks repeat slice after slice).
+
     References
     ----------
     Common practice, no source (equal-area radius and fill ratio of a disc).
     """
     masks = np.ascontiguousarray(masks, dtype=bool)
+    first = _first_of_equal_runs(masks)
+    if first.size < masks.shape[0]:
+        run = np.cumsum(np.isin(np.arange(masks.shape[0]), first)) - 1  # each slice's run
+        return tuple(v[run] for v in _disc_stats_of(masks[first]))  # type: ignore[return-value]
+    return _disc_stats_of(masks)
+
+
+def _first_of_equal_runs(masks: np.ndarray) -> np.ndarray:
+    """Indices of the slices of a contiguous (z, y, x) boolean stack that differ from the
+    slice before (slice 0 always): compared as whole 8-byte words when the slice is a
+    whole number of them."""
+    nz = masks.shape[0]
+    if nz < 2:
+        return np.arange(nz)
+    flat = masks.reshape(nz, -1).view(np.uint8)
+    if flat.shape[1] % 8 == 0:
+        flat = flat.view(np.uint64)
+    same = (flat[1:] == flat[:-1]).all(axis=1)
+    return np.flatnonzero(np.r_[True, ~same])
+
+
+def _disc_stats_of(masks: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
+    """:func:`disc_stats` of every slice of a contiguous boolean stack, one by one."""
     nz, ny, nx = masks.shape
     as_int = masks.view(np.uint8)
     # counts of one row or column fit in 16 bits for grids up to 65535 pixels a side
@@ -349,16 +377,45 @@ def _finite_inside(values: np.ndarray, masks: np.ndarray) -> np.ndarray:
 
 def _medians_of(values: np.ndarray, masks: np.ndarray, step: int = 4, masks_at_step: bool = False) -> np.ndarray:
     """Median of the masked values on every ``step``-th row and column, slice by slice
-    (NaN where none): one sort of the whole stack. ``masks_at_step``: ``masks`` are
-    already those of every ``step``-th row and column."""
+    (NaN where none): one sort of the whole stack, or, when the slices have at most
+    :data:`_PARTITION_COUNTS` distinct counts of masked values and no value is NaN, one
+    partition per count (:func:`_medians_by_partition`, the same medians).
+    ``masks_at_step``: ``masks`` are already those of every ``step``-th row and column."""
     nz = values.shape[0]
     sub = (masks if masks_at_step else masks[:, ::step, ::step]).reshape(nz, -1)
     v = np.where(sub, values[:, ::step, ::step].reshape(nz, -1), np.float32(np.inf))
-    v.sort(axis=1)
     count = np.count_nonzero(sub, axis=1)
+    counts = np.unique(count)
+    if counts.size <= _PARTITION_COUNTS and v.shape[1] and not np.isnan(v).any():
+        return _medians_by_partition(v, count, counts)
+    v.sort(axis=1)
     k = np.arange(nz)
     lo, hi = v[k, np.maximum(count - 1, 0) // 2], v[k, np.minimum(count // 2, v.shape[1] - 1)]
     return np.where(count > 0, 0.5 * (lo.astype(np.float64) + hi), np.nan)
+
+
+def _medians_by_partition(v: np.ndarray, count: np.ndarray, counts: np.ndarray) -> np.ndarray:
+    """The medians of :func:`_medians_of` from rows ``v`` (z, n) whose first ``count``
+    order statistics are the masked values (the rest +inf; no NaN): for each distinct
+    count c, one partition at c // 2 of the rows with that count (the c // 2-th order
+    statistic in place, the smaller values before it) instead of a sort; the lower
+    middle value of an even count is the largest of those before. The same two order
+    statistics, so the same medians."""
+    out = np.full(v.shape[0], np.nan)
+    for c in counts:
+        if c == 0:
+            continue
+        rows = np.flatnonzero(count == c)
+        part = np.partition(v[rows], int(c) // 2, axis=1)
+        hi = part[:, int(c) // 2]
+        lo = hi if c % 2 else part[:, : int(c) // 2].max(axis=1)
+        out[rows] = 0.5 * (lo.astype(np.float64) + hi)
+    return out
+
+
+#: Most distinct counts of masked values for which :func:`_medians_of` partitions the
+#: rows of each count instead of sorting them all.
+_PARTITION_COUNTS = 4
 
 
 def _strided(a: np.ndarray, f: int, rows: slice = slice(None), cols: slice = slice(None),
@@ -868,17 +925,18 @@ def _grid_reads(hu: np.ndarray, f: int, rows: slice, cols: slice, zs: np.ndarray
                 ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     """What the water and insert tests need of the working grid ``hu[zs, rows, cols]``
     (every ``f``-th pixel): the float32 sum of each slice, every fourth row and column,
-    and the 2 x 2 block means (:func:`block_means_2x2`), read :data:`_READ_SLICES`
-    slices at a time so that each piece of the grid is used while it is in the
-    processor cache (the whole grid is never kept). The same values as from one copy of
-    the grid."""
+    and the 2 x 2 block means (:func:`block_means_2x2`), read :data:`_READ_BYTES` of
+    grid at a time (whole slices) so that each piece of the grid is used while it is in
+    the processor cache (the whole grid is never kept). The same values as from one
+    copy of the grid."""
     n = zs.size
     h, w = len(range(rows.start, rows.stop, f)), len(range(cols.start, cols.stop, f))
     sums = np.empty(n, dtype=np.float32)
     every4 = np.empty((n, (h + 3) // 4, (w + 3) // 4), dtype=np.float32)
     blocks = np.empty((n, h // 2, w // 2), dtype=np.float32)
-    for a in range(0, n, _READ_SLICES):
-        b = min(n, a + _READ_SLICES)
+    per_piece = max(1, _READ_BYTES // max(1, 4 * h * w))
+    for a in range(0, n, per_piece):
+        b = min(n, a + per_piece)
         piece = _strided(hu, f, rows, cols, zs[a:b])
         sums[a:b] = piece.reshape(b - a, -1).sum(axis=1, dtype=np.float32)
         every4[a:b] = piece[:, ::4, ::4]
@@ -886,9 +944,10 @@ def _grid_reads(hu: np.ndarray, f: int, rows: slice, cols: slice, zs: np.ndarray
     return sums, every4, blocks
 
 
-#: Slices of the working grid :func:`_grid_reads` reads at a time (some 300 KB for a
-#: 512 x 512 series: they stay in the processor's cache).
-_READ_SLICES = 8
+#: Bytes of float32 grid :func:`_grid_reads` reads at a time (whole slices, at least
+#: one): a piece stays in the processor's cache (57 slices of the grid of a 512 x 512
+#: series: few pieces, few calls).
+_READ_BYTES = 2048 * 1024
 
 
 def _find_phantom(volume: Volume, regions: Regions, s: dict[str, float]) -> Phantom:

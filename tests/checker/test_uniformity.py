@@ -541,3 +541,84 @@ def test_last_true_index_of_whole_word_rows_equals_the_reversed_search():
     masks[2] = rng.random((96, 128)) > 0.7
     fill = _disc_stats_match_disc_of(masks, range(3))[3]
     assert fill[1] < 0.6 < fill[0]  # the ellipse is told from the disc
+
+
+def test_disc_stats_of_runs_of_equal_slices_equals_disc_of_on_each():
+    """disc_stats computes each run of equal slices once (a cylinder's masks repeat); the
+    numbers of every slice still equal disc_of on that slice (the reference): runs at
+    the start, middle and end, single slices between them, an empty slice in a run,
+    widths that are and are not a whole number of 8-byte words."""
+    rng = np.random.default_rng(23)
+    for nx in (64, 90):
+        yy, xx = np.mgrid[:60, :nx]
+        disc = (yy - 28.4) ** 2 + (xx - nx / 2.0) ** 2 <= 22**2
+        ellipse = ((yy - 30) / 12.0) ** 2 + ((xx - nx / 2.0) / 28.0) ** 2 <= 1
+        masks = np.stack([disc, disc, disc, ellipse, disc, rng.random((60, nx)) > 0.5, disc, disc,
+                          np.zeros_like(disc), np.zeros_like(disc), ellipse, ellipse])
+        assert list(_phantom._first_of_equal_runs(masks)) == [0, 3, 4, 5, 6, 8, 10]
+        cy, cx, r, fill = _disc_stats_match_disc_of(masks, [0, 1, 2, 3, 4, 5, 6, 7, 10, 11])
+        assert np.isnan(cy[8:10]).all() and (r[8:10] == 0).all() and (fill[8:10] == 0).all()
+        assert fill[3] < 0.7 < fill[1]
+        moved = masks.copy()
+        moved[1, 5, 5] = True  # one pixel differs: slice 1 is its own run
+        assert list(_phantom._first_of_equal_runs(moved)) == [0, 1, 2, 3, 4, 5, 6, 8, 10]
+        _disc_stats_match_disc_of(moved, range(8))
+
+
+def test_medians_of_by_partition_equal_the_median_of_the_sorted_values():
+    """With few distinct counts of masked values per slice, the medians come from one
+    partition per count; they equal numpy.median of the masked values (the reference:
+    the mean of the two middle values, in double) on stacks with one count (a disc
+    repeated), two counts, odd and even counts, ties, infinities among the values and
+    slices with no masked value; with a NaN among the values, or many distinct counts,
+    the sorted path is taken and the NaN slice has the median of the sorted values
+    (NaN sorted last, after the +inf filling)."""
+    rng = np.random.default_rng(31)
+    yy, xx = np.mgrid[:24, :26]
+    disc = (yy - 11.5) ** 2 + (xx - 12.2) ** 2 <= 9**2
+    cases = {
+        "one count": np.broadcast_to(disc, (6, 24, 26)).copy(),
+        "two counts": np.stack([disc, disc, disc & (xx > 3), disc, disc & (xx > 3), disc]),
+        "with empty": np.stack([disc, np.zeros_like(disc), disc]),
+        "many counts": rng.random((9, 24, 26)) < 0.5,
+    }
+    for name, masks in cases.items():
+        for rounded in (False, True):
+            values = rng.normal(0, 10, masks.shape).astype(np.float32)
+            if rounded:
+                values = np.round(values / 4.0)  # many ties
+            values[0, 11, 12] = np.inf
+            values[-1, 11, 13] = -np.inf
+            got = _phantom._medians_of(values, masks, step=1)
+            for z in range(masks.shape[0]):
+                sub = values[z][masks[z]]
+                expected = np.median(sub.astype(np.float64)) if sub.size else np.nan
+                assert np.array_equal(got[z], expected, equal_nan=True), (name, rounded, z, got[z], expected)
+    masks = np.broadcast_to(disc, (3, 24, 26)).copy()
+    values = rng.normal(0, 10, masks.shape).astype(np.float32)
+    values[1, 11, 12] = np.nan
+    got = _phantom._medians_of(values, masks, step=1)
+    for z in range(3):
+        row = np.sort(np.where(masks[z], values[z], np.float32(np.inf)).ravel())
+        c = int(masks[z].sum())
+        expected = 0.5 * (float(row[(c - 1) // 2]) + float(row[c // 2]))
+        assert got[z] == expected, (z, got[z], expected)
+    assert got[0] == np.median(values[0][masks[0]].astype(np.float64))
+
+
+def test_grid_reads_in_several_pieces_equal_one_piece(monkeypatch):
+    """The grid read a few slices at a time (the piece size cut to one, then three
+    slices) gives the values of one read of the whole grid: sums, every fourth row and
+    column, block means."""
+    rng = np.random.default_rng(37)
+    hu = rng.normal(0.0, 20.0, (13, 61, 58)).astype(np.float32)
+    rows, cols = slice(2, 59), slice(4, 57)
+    zs = np.array([0, 1, 2, 5, 6, 7, 8, 12])
+    monkeypatch.setattr(_phantom, "_READ_BYTES", 1 << 30)
+    whole = _phantom._grid_reads(hu, 2, rows, cols, zs)
+    per_slice = 4 * len(range(2, 59, 2)) * len(range(4, 57, 2))
+    for slices in (1, 3):
+        monkeypatch.setattr(_phantom, "_READ_BYTES", slices * per_slice)
+        pieces = _phantom._grid_reads(hu, 2, rows, cols, zs)
+        for a, b in zip(whole, pieces):
+            assert np.array_equal(a, b)
