@@ -1051,18 +1051,13 @@ def _centred_esfs(pixels: RodPixels, radii_mm: Sequence[float], halves_mm: Seque
     acc.add(pixels.which, d, pixels.sums, near, multiplicity=pixels.mult)
     first = acc.binned_ranges(extra, ns)
     shift = _esf_centres_or_zero(first)
-    moved = np.abs(shift) <= 0.5 * half
-    q = np.where(moved, np.clip(np.rint(shift / bin_mm), -extra, extra), 0).astype(np.int64)
+    # a range whose edge is more than half the range away stays (q = 0): its second range
+    # is its first, whose centre is as far, so its radius stays too
+    q = np.where(np.abs(shift) <= 0.5 * half, np.clip(np.rint(shift / bin_mm), -extra, extra), 0).astype(np.int64)
     second = acc.binned_ranges(extra + q, ns, offsets_mm=q * bin_mm)
-    rad_q = radii + q * bin_mm
     shift = _esf_centres_or_zero(second)
-    rad_q = np.where(np.abs(shift) <= 0.5 * half, rad_q + shift, rad_q)
-    if moved.all():
-        return second, rad_q
-    m = moved[:, None]
-    esfs = BinnedEsfs(np.where(m, second.position_mm, first.position_mm), np.where(m, second.esf_hu, first.esf_hu),
-                      np.where(m, second.counts, first.counts), bin_mm, ns)
-    return esfs, np.where(moved, rad_q, radii)
+    radii = radii + q * bin_mm
+    return second, np.where(np.abs(shift) <= 0.5 * half, radii + shift, radii)
 
 
 def _esf_centres_or_zero(esfs: BinnedEsfs) -> np.ndarray:

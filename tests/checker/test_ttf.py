@@ -720,26 +720,18 @@ _RECORD_DECIMALS = {"contrast_hu": 1, "insert_hu": 1, "noise_hu": 2, "contrast_t
                     "lsf_window_mm": 3, "radius_mm": 3}
 
 
-def test_rods_measured_together_equal_each_rod_measured_alone():
-    """The rods of a phantom measured together (one binning of all their pixels, their
-    ESFs of different lengths conditioned and transformed as the rows of 2-D arrays)
-    give each rod the record it gets measured alone: the same texts, flags and slices,
-    and every number the same up to float rounding (at most one unit of its last
-    rounded decimal). Case: six rods of 4..9 mm radius, -1000..+900 HU, two of them
-    unreliable (contrast-to-noise below 10)."""
-    vol = _mixed_rod_phantom()
-    regions = find_regions(vol)
-    inserts = ttf.find_rod_inserts(vol, regions)
-    assert len(inserts) == 6
-    s = ttf.resolve_settings({})
-    allowed = ttf._body_footprint(vol, regions, inserts, s)
-    together = ttf.measure_circular_edges(vol, inserts, s, allowed=allowed, others=inserts)
-    alone = [ttf.measure_circular_edge(vol, ins, s, allowed=allowed, others=inserts) for ins in inserts]
-    radii = [m.record["radius_mm"] for m in together]
-    assert max(radii) - min(radii) > 4.0  # ESF ranges of their own lengths (0.9 r below 8 mm)
-    reliable = [m.record["reliable"] for m in together]
-    assert reliable.count(False) == 2 and all("contrast-to-noise" in m.record["reason"]
-                                              for m in together if not m.record["reliable"])
+def _mixed_rod_centres(nz=10, n=256):
+    """[z, y, x] of the six rods of :func:`_mixed_rod_phantom` (its middle slice)."""
+    c = n / 2 - 0.3
+    return [[nz // 2, c + 65 * math.sin(2 * math.pi * k / 6 + 0.3) + 0.17 * k,
+             c + 65 * math.cos(2 * math.pi * k / 6 + 0.3) - 0.11 * k] for k in range(6)]
+
+
+def _assert_same_records(together, alone):
+    """Each rod's record measured together equals its record measured alone: the same
+    texts, flags and slices, every number the same up to float rounding (at most one
+    unit of its last rounded decimal), the same overlay point and notes."""
+    assert len(together) == len(alone)
     for a, b in zip(together, alone):
         assert a.record.keys() == b.record.keys()
         for key, value in a.record.items():
@@ -753,6 +745,43 @@ def test_rods_measured_together_equal_each_rod_measured_alone():
                 assert value == b.record[key], key
         assert a.point_zyx_vox == pytest.approx(b.point_zyx_vox, abs=1e-6)
         assert a.notes == b.notes
+
+
+def test_rods_measured_together_equal_each_rod_measured_alone():
+    """The rods of a phantom measured together (one binning of all their pixels, their
+    ESFs of different lengths conditioned and transformed as the rows of 2-D arrays)
+    give each rod the record it gets measured alone (case: six rods of 4..9 mm radius,
+    -1000..+900 HU, found automatically; two of them unreliable, contrast-to-noise
+    below 10)."""
+    vol = _mixed_rod_phantom()
+    regions = find_regions(vol)
+    inserts = ttf.find_rod_inserts(vol, regions)
+    assert len(inserts) == 6
+    s = ttf.resolve_settings({})
+    allowed = ttf._body_footprint(vol, regions, inserts, s)
+    together = ttf.measure_circular_edges(vol, inserts, s, allowed=allowed, others=inserts)
+    alone = [ttf.measure_circular_edge(vol, ins, s, allowed=allowed, others=inserts) for ins in inserts]
+    radii = [m.record["radius_mm"] for m in together]
+    assert max(radii) - min(radii) > 4.0  # ESF ranges of their own lengths (0.9 r below 8 mm)
+    reliable = [m.record["reliable"] for m in together]
+    assert reliable.count(False) == 2 and all("contrast-to-noise" in m.record["reason"]
+                                              for m in together if not m.record["reliable"])
+    _assert_same_records(together, alone)
+
+
+def test_user_rods_measured_together_equal_each_alone_when_some_ranges_stay():
+    """User centres with a radius of 4 mm given for rods of 4..9 mm: the ESF range of a
+    rod whose edge lies more than half the range from 4 mm stays where it was (radius
+    4.0 in the record), the others move onto their edges; measured together, each rod
+    still gets the record it gets alone."""
+    vol = _mixed_rod_phantom()
+    s = ttf.resolve_settings({"centres_zyx_vox": _mixed_rod_centres(), "radius_mm": 4.0})
+    inserts = ttf._user_inserts(vol, s)
+    together = ttf.measure_circular_edges(vol, inserts, s, allowed=None, others=inserts)
+    alone = [ttf.measure_circular_edge(vol, ins, s, allowed=None, others=inserts) for ins in inserts]
+    radii = [m.record["radius_mm"] for m in together]
+    assert 4.0 in radii and any(abs(r - 4.0) > 0.2 for r in radii)  # ranges kept and ranges moved
+    _assert_same_records(together, alone)
 
 
 def _esfs_of_several_kinds():
