@@ -622,3 +622,93 @@ def test_grid_reads_in_several_pieces_equal_one_piece(monkeypatch):
         pieces = _phantom._grid_reads(hu, 2, rows, cols, zs)
         for a, b in zip(whole, pieces):
             assert np.array_equal(a, b)
+
+
+# ------------------------------------------------------------------ search sensitivity
+def _bandpass_noise(shape, sd: float, seed: int) -> np.ndarray:
+    """FBP-like band-pass noise (difference of two in-plane Gaussians of white noise)
+    scaled to standard deviation ``sd`` (invented)."""
+    from scipy import ndimage
+
+    w = np.random.default_rng(seed).standard_normal(shape).astype(np.float32)
+    noise = ndimage.gaussian_filter(w, (0, 0.8, 0.8)) - ndimage.gaussian_filter(w, (0, 2.5, 2.5))
+    return noise * np.float32(sd / noise.std())
+
+
+def _off_centre_phantom(nz: int = 24, centre=(110.0, 150.0), radius: float = 70.0,
+                        rods: bool = True) -> Volume:
+    """An invented 56 mm water cylinder off the image centre (256 px of 0.8 mm, 1.25 mm
+    slices, band-pass noise of 15 HU); with ``rods``: a 10 mm rod of +120 HU on slices
+    5-8, an 8 mm air hole on slice 15 and a 9.6 mm bone rod on the last slice."""
+    n = 256
+    yy, xx = np.mgrid[:n, :n]
+    cy, cx = centre
+    img = np.where((yy - cy) ** 2 + (xx - cx) ** 2 <= radius**2, 0.0, -1000.0)
+    hu = np.repeat(img[None], nz, axis=0).astype(np.float32)
+
+    def rod(z: int, dy: float, dx: float, r: float, value: float) -> None:
+        hu[z][(yy - cy - dy) ** 2 + (xx - cx - dx) ** 2 <= r * r] = value
+
+    if rods:
+        for z in range(5, 9):
+            rod(z, -30, 20, 6.25, 120.0)
+        rod(15, 25, -25, 5.0, -1000.0)
+        rod(nz - 1, 0, 35, 6.0, 800.0)
+    hu += _bandpass_noise(hu.shape, 15.0, seed=41)
+    return Volume.from_array(hu, (1.25, 0.8, 0.8))
+
+
+def test_search_finds_exactly_the_insert_slices_of_an_off_centre_phantom():
+    """Sensitivity of the search: an off-centre phantom with inserts on some slices only
+    (a faint rod over four slices, an air hole and a bone rod on one slice each, one of
+    them the last slice) has exactly those insert slices; every other slice is uniform;
+    the centre and radius are those drawn (within a pixel)."""
+    vol = _off_centre_phantom()
+    ph = _phantom.find_phantom(vol, find_regions(vol))
+    assert ph.found and ph.on_slice.all()
+    assert list(np.flatnonzero(ph.inserts)) == [5, 6, 7, 8, 15, 23]
+    assert ph.uniform_runs() == [(16, 22), (9, 14), (0, 4)]
+    assert np.all(np.abs(ph.centre_yx_vox - (110.0, 150.0)) < 1.0)
+    assert np.all(np.abs(ph.radius_vox - 70.0) < 1.0)
+    clean = _off_centre_phantom(rods=False)
+    ph = _phantom.find_phantom(clean, find_regions(clean))
+    assert ph.uniform.all() and not ph.inserts.any()
+
+
+@pytest.mark.parametrize("keep", [(4, 5), (4,)])
+def test_search_short_uniform_section_is_measured_on_its_slices(keep):
+    """A phantom whose uniform section is two slices or one (a +300 HU rod on every
+    other slice): the search finds exactly that section, and the noise and uniformity
+    analyses measure on its slices only (5 ROIs a slice fit this 56 mm phantom)."""
+    from reconaudit.checker.analyses import nps
+
+    vol = _off_centre_phantom(nz=10, centre=(128.0, 128.0), rods=False)
+    yy, xx = np.mgrid[:256, :256]
+    for z in range(10):
+        if z not in keep:
+            vol.hu[z][(yy - 100) ** 2 + (xx - 150) ** 2 <= 7**2] = 300.0
+    regions = find_regions(vol)
+    ph = _phantom.find_phantom(vol, regions)
+    assert list(np.flatnonzero(ph.uniform)) == list(keep)
+    assert list(np.flatnonzero(ph.inserts)) == [z for z in range(10) if z not in keep]
+    rec = nps.analyse(vol, regions).record
+    assert rec["applicable"] and rec["roi_count"] == 5 * len(keep)
+    rec = uniformity.analyse(vol, regions).record
+    assert rec["applicable"] and rec["slices"] == [keep[0], keep[-1]]
+
+
+def test_search_patient_like_torso_has_no_phantom():
+    """An invented torso (elliptical body with a fat rim, two lungs, a spine) is no water
+    cylinder on any slice."""
+    rng = np.random.default_rng(2)
+    ny, nx = 200, 280
+    yy, xx = np.mgrid[:ny, :nx]
+    img = np.full((ny, nx), -1000.0)
+    img[((yy - 100) / 85.0) ** 2 + ((xx - 140) / 125.0) ** 2 <= 1] = -100.0
+    img[((yy - 100) / 78.0) ** 2 + ((xx - 140) / 118.0) ** 2 <= 1] = 40.0
+    for side in (-55, 55):
+        img[((yy - 90) / 45.0) ** 2 + ((xx - 140 - side) / 35.0) ** 2 <= 1] = -850.0
+    img[(yy - 160) ** 2 + (xx - 140) ** 2 <= 12**2] = 700.0
+    vol = Volume.from_array((img[None] + rng.normal(0, 12, (6, ny, nx))).astype(np.float32), (2.5, 0.8, 0.8))
+    ph = _phantom.find_phantom(vol, find_regions(vol))
+    assert not ph.found and not ph.on_slice.any() and "no water cylinder" in ph.reason
