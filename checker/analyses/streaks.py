@@ -2354,10 +2354,11 @@ def screen_slab_stack(images: np.ndarray, allowed: np.ndarray, factor: int, bins
     k = images.shape[0]
     outcomes: list[np.ndarray | str] = ["without usable pixels"] * k
     members: list[list[int]] = []
+    kinds = unusable_slices(images, factor)
     for z0 in range(0, k, slab):
         keep = []
         for i in range(z0, min(z0 + slab, k)):
-            kind = unusable_slice(images[i], factor)
+            kind = kinds[i]
             if kind:
                 outcomes[i] = kind
             else:
@@ -2398,11 +2399,16 @@ def unusable_slice(image: np.ndarray, factor: int) -> str | None:
     proves the slice usable (a sixteenth of its rows is read); otherwise
     :func:`_unusable` decides from the block means and the pixels.
     """
-    sub = image[::CHECK_STEP_PX, ::CHECK_STEP_PX]
-    high, low = float(sub.max()), float(sub.min())
-    if math.isfinite(high) and math.isfinite(low) and high != low:
-        return None
-    return _unusable(bin_slice(image, factor), image)
+    return unusable_slices(image[None], factor)[0]
+
+
+def unusable_slices(images: np.ndarray, factor: int) -> list[str | None]:
+    """:func:`unusable_slice` of every slice of a ``(k, ny, nx)`` stack (the sub-grids' maxima
+    and minima of all slices in one reduction each)."""
+    sub = images[:, ::CHECK_STEP_PX, ::CHECK_STEP_PX]
+    high, low = sub.max(axis=(1, 2)), sub.min(axis=(1, 2))
+    proven = np.isfinite(high) & np.isfinite(low) & (high != low)
+    return [None if proven[i] else _unusable(bin_slice(images[i], factor), images[i]) for i in range(len(images))]
 
 
 def bin_slab(images: np.ndarray, members: list[int], factor: int, out: np.ndarray | None = None,

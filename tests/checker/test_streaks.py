@@ -732,3 +732,35 @@ def test_first_screen_refines_incomplete_and_gated_slabs():
     assert default["slice_index"][2] is None and every_slab["slice_index"][2] is None
     assert default["slice_index"][3] == every_slab["slice_index"][3]  # refined: the slab is incomplete
     assert default["slice_index"][0] == default["slice_index"][1] == every_slab["slice_index"][0]
+
+
+def test_slab_stack_equals_the_slab_mask_definition():
+    """The first screen's masks of several slabs at once (with a workspace, a last partial
+    slab, a slab whose slices carry different tables and slabs whose body changes) equal
+    their definition slab by slab: the base mask without each slice's table exclusion,
+    without the outline of the binned AND of the bodies and the binned OR outside it."""
+    cfg = streaks.resolve_settings(None)
+    vol, regions = _changing_body_regions(nz=11)
+    masks = streaks.AllowedMasks(regions, 2, (64, 64), cfg)
+    ws = streaks.Workspace()
+    for z0, z1 in [(0, 11), (0, 8), (4, 11), (0, 9)]:
+        got = masks.slab_stack(z0, z1, 4, ws).copy()
+        assert got.shape == (-(-(z1 - z0) // 4), 64, 64)
+        for j, a in enumerate(range(z0, z1, 4)):
+            zs = range(a, min(a + 4, z1))
+            kept = np.logical_and.reduce([
+                masks.base & ~streaks.table_exclusion(streaks.bin_mask(regions.table[z], 2), int(cfg["table_band_px"]))
+                if regions.table[z].any() else masks.base for z in zs])
+            every = streaks.bin_mask(np.logical_and.reduce([regions.body[z] for z in zs]), 2)
+            some = streaks.bin_mask(np.logical_or.reduce([regions.body[z] for z in zs]), 2)
+            outline = (every ^ ndimage_erosion(every)) | (some & ~every)
+            expected = kept & ~outline
+            if len(zs) == 1:  # one slice: its own mask
+                expected = masks(a)
+            assert np.array_equal(got[j], expected), (z0, z1, j)
+
+
+def ndimage_erosion(mask: np.ndarray) -> np.ndarray:
+    from scipy import ndimage
+
+    return ndimage.binary_erosion(mask)
