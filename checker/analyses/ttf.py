@@ -904,8 +904,9 @@ def measure_circular_edges(
     per_rod = _edges.refine_circle_centres_of_stacks(
         [ri.images for ri in runs], [ri.start for ri in runs], [ri.r_px for ri in runs],
         [ri.inside_hu for ri in runs], [ri.outside_hu for ri in runs], [ri.reach_px for ri in runs])
-    rods = [_rod_geometry(volume, insert, y0, x0, crop, half_mm, ri, per, s, allowed, others)
-            for (insert, y0, x0, crop, half_mm, ri), per in zip(prepared, per_rod)]
+    lines = _centre_lines(runs, per_rod, [p[3].shape[0] for p in prepared])
+    rods = [_rod_geometry(volume, insert, y0, x0, crop, half_mm, ri, centres, s, allowed, others)
+            for (insert, y0, x0, crop, half_mm, ri), centres in zip(prepared, lines)]
     pixels = _rod_pixels([r.pool for r in rods], [r.free for r in rods])
     radii_in = [r.insert.radius_mm for r in rods]
     for rod, reach_mm in zip(rods, _free_reaches_mm(pixels, radii_in).tolist()):
@@ -942,15 +943,14 @@ class RodGeometry:
 
 
 def _rod_geometry(volume: Volume, insert: Insert, y0: int, x0: int, crop: np.ndarray, half_mm: float,
-                  ri: RunImages, per: np.ndarray, s: dict[str, Any], allowed: np.ndarray | None,
+                  ri: RunImages, centres: np.ndarray, s: dict[str, Any], allowed: np.ndarray | None,
                   others: Sequence[Insert]) -> RodGeometry:
-    """A rod once its run centres ``per`` are known: centre line, pooled slices and free
-    pixels (the ESF's half range ``half_mm`` as asked; :func:`_shorten_to_free_reach`
-    shortens it where the free region ends before it)."""
+    """A rod once its slices' centres are known (:func:`_centre_lines`): pooled slices
+    and free pixels (the ESF's half range ``half_mm`` as asked;
+    :func:`_shorten_to_free_reach` shortens it where the free region ends before it)."""
     sy, sx = volume.spacing_mm[1], volume.spacing_mm[2]
     px = 0.5 * (sy + sx)
     free = _free_mask(crop.shape[1:], (y0, x0), volume.hu.shape[1:], insert, others, allowed, px)
-    centres = _centre_line(ri, per, crop.shape[0])
     pool = _pool_slices(crop, centres, (sy, sx), float(s["bin_fraction"]), total=ri.total)
     return RodGeometry(insert, y0, x0, crop, ri, centres, pool, free, half_mm, [])
 
@@ -1296,6 +1296,24 @@ def _centre_line(ri: RunImages, per: np.ndarray, nz: int) -> np.ndarray:
     return np.concatenate([np.repeat(p[None], r.size, axis=0) for p, r in zip(per, ri.runs)])
 
 
+def _centre_lines(ris: Sequence[RunImages], pers: Sequence[np.ndarray], nzs: Sequence[int]) -> list[np.ndarray]:
+    """:func:`_centre_line` of several rods: the tilt tests and mean centres of the rods
+    of three runs (every rod of three slices or more) at once
+    (:func:`_tilts_are_significant`), the others one by one."""
+    out: list[np.ndarray | None] = [None] * len(ris)
+    three = [j for j, per in enumerate(pers) if len(per) == 3]
+    if three:
+        w = np.stack([ris[j].sizes for j in three])
+        zc = np.array([[float(r[0]) for r in ris[j].runs] for j in three]) + 0.5 * (w - 1.0)  # runs' mean slices
+        yx = np.stack([pers[j] for j in three])
+        significant = _tilts_are_significant(zc, yx, w).tolist()
+        means = np.einsum("kn,knc->kc", w, yx) / w.sum(axis=1)[:, None]
+        for i, j in enumerate(three):
+            out[j] = (_line_along_z(zc[i], yx[i], w[i], np.arange(nzs[j], dtype=float)) if significant[i]
+                      else np.repeat(means[i][None], nzs[j], axis=0))
+    return [line if line is not None else _centre_line(ri, per, nz) for line, ri, per, nz in zip(out, ris, pers, nzs)]
+
+
 def _tilt_is_significant(zc: np.ndarray, yx: np.ndarray, weights: np.ndarray) -> bool:
     """Whether the weighted least-squares tilt of the points ``yx`` (n >= 3, 2) at ``zc``
     exceeds ``TILT_SIGNIFICANCE`` standard errors.
@@ -1312,19 +1330,30 @@ def _tilt_is_significant(zc: np.ndarray, yx: np.ndarray, weights: np.ndarray) ->
     Draper NR, Smith H. Applied Regression Analysis, 3rd ed. Wiley, 1998 (weighted least
     squares, standard error of the slope).
     """
-    w = np.asarray(weights, dtype=float)
-    zm = float(np.dot(w, zc) / w.sum())
-    dz = zc - zm
-    sxx = float(np.dot(w, dz * dz))
-    if sxx <= 0:
-        return False
-    mean = w @ yx / w.sum()
-    slope = (w * dz) @ (yx - mean) / sxx
-    resid = yx - mean[None, :] - dz[:, None] * slope[None, :]
-    dof = 2 * (len(zc) - 2)
-    sigma2 = float((w[:, None] * resid * resid).sum()) / dof
-    tilt = math.hypot(float(slope[0]), float(slope[1]))
-    return tilt * tilt > TILT_SIGNIFICANCE**2 * sigma2 / sxx
+    zc, yx, w = (np.asarray(a, dtype=float)[None] for a in (zc, yx, weights))
+    return bool(_tilts_are_significant(zc, yx, w)[0])
+
+
+def _tilts_are_significant(zc: np.ndarray, yx: np.ndarray, weights: np.ndarray) -> np.ndarray:
+    """:func:`_tilt_is_significant` of several rods at once: ``zc`` and ``weights`` (k, n),
+    ``yx`` (k, n, 2), n >= 3; (k,) bool.
+
+    References
+    ----------
+    Draper NR, Smith H. Applied Regression Analysis, 3rd ed. Wiley, 1998 (weighted least
+    squares, standard error of the slope).
+    """
+    w = weights
+    w_sum = w.sum(axis=1)
+    dz = zc - ((w * zc).sum(axis=1) / w_sum)[:, None]
+    sxx = (w * dz * dz).sum(axis=1)
+    safe_sxx = np.where(sxx > 0, sxx, 1.0)
+    mean = np.einsum("kn,knc->kc", w, yx) / w_sum[:, None]  # einsum: no BLAS threads
+    slope = np.einsum("kn,knc->kc", w * dz, yx - mean[:, None, :]) / safe_sxx[:, None]
+    resid = yx - mean[:, None, :] - dz[:, :, None] * slope[:, None, :]
+    sigma2 = (w[:, :, None] * resid * resid).sum(axis=(1, 2)) / (2 * (zc.shape[1] - 2))
+    tilt2 = slope[:, 0] * slope[:, 0] + slope[:, 1] * slope[:, 1]
+    return (sxx > 0) & (tilt2 > TILT_SIGNIFICANCE**2 * sigma2 / safe_sxx)
 
 
 def _refine_centres(crop: np.ndarray, centre: tuple[float, float], r_px: float, px: float,
