@@ -1860,11 +1860,17 @@ class AllowedMasks:
         """One mask per slab of ``slab`` slices from ``z0`` to ``z1 - 1`` (the first screen's masks).
 
         Each is :meth:`slab_mask` of its slices: ``(n_slabs, ny_b, nx_b)``, one of ``ws``'s
-        buffers when it is given.
+        buffers when it is given. The whole slabs of masks readable as 64-bit words are
+        combined together (:meth:`_word_slab_masks`: one array operation per step for all
+        of them, few and large operations, which two threads share well), a last partial
+        slab alone.
         """
         n = -(-(z1 - z0) // slab)
         out = scratch(ws, "masks_slab", (n,) + self.base.shape, bool)
-        for j in range(n):
+        whole = (z1 - z0) // slab if slab > 1 and self._words_readable(z0, z1) else 0
+        if whole:
+            self._word_slab_masks(z0, whole, slab, out[:whole], ws)
+        for j in range(whole, n):
             out[j] = self.slab_mask(z0 + j * slab, min(z0 + (j + 1) * slab, z1), ws)
         return out
 
@@ -1880,31 +1886,56 @@ class AllowedMasks:
         masks cannot be read as 64-bit words are combined one by one (exact). ``ws`` lends
         the temporaries (the result is a new array or a kept one: never modify it).
         """
-        regions = self.regions
-        if regions is None:
+        if self.regions is None:
             return self.base
-        body, table = regions.body[z0:z1], regions.table[z0:z1]
-        ny, nx = body.shape[-2:]
-        if z1 - z0 == 1 or (ny * nx) % 8 or not (body.flags.c_contiguous and table.flags.c_contiguous):
+        if z1 - z0 == 1 or not self._words_readable(z0, z1):
             out = self(z0).copy()
             for z in range(z0 + 1, z1):
                 out &= self(z)
             return out
-        f = self.factor
-        t_or, t_and = _or_and_words(table, ws, "slab_table_")
-        if np.array_equal(t_or, t_and):
-            kept = self._kept_beside_table(bin_mask(t_or.view(bool).reshape(ny, nx), f, ws, "slab_bin"))
-        else:
-            kept = self._kept_beside_table(bin_mask(table[0], f)).copy()
-            for i in range(1, z1 - z0):
-                kept &= self._kept_beside_table(bin_mask(table[i], f, ws, "slab_bin"))
-        b_or, b_and = _or_and_words(body, ws, "slab_body_")
-        every = bin_mask(b_and.view(bool).reshape(ny, nx), f, ws, "slab_bin")
+        out = np.empty((1,) + self.base.shape, dtype=bool)
+        return self._word_slab_masks(z0, 1, z1 - z0, out, ws)[0]
+
+    def _words_readable(self, z0: int, z1: int) -> bool:
+        """Whether the body and table masks of slices ``z0`` to ``z1 - 1`` can be read as 64-bit words."""
+        regions = self.regions
+        if regions is None:
+            return False
+        body, table = regions.body[z0:z1], regions.table[z0:z1]
+        ny, nx = body.shape[-2:]
+        return (ny * nx) % 8 == 0 and body.flags.c_contiguous and table.flags.c_contiguous
+
+    def _word_slab_masks(self, z0: int, n: int, slab: int, out: np.ndarray, ws: "Workspace | None" = None) -> np.ndarray:
+        """:meth:`slab_mask` of the ``n`` slabs of ``slab`` slices from ``z0`` into ``out`` (``(n, ny_b, nx_b)``).
+
+        The bytewise OR and AND of each slab's table and body masks, their binned masks and
+        the outlines are formed for all ``n`` slabs at once; the table's exclusion is then
+        looked up per slab (per slice where the slab's slices carry different tables).
+        """
+        regions, f = self.regions, self.factor
+        z1 = z0 + n * slab
+        table = regions.table[z0:z1]
+        ny, nx = table.shape[-2:]
+        t_or, t_and = _or_and_slabs(table, n, ws, "slab_table_")
+        b_or, b_and = _or_and_slabs(regions.body[z0:z1], n, ws, "slab_body_")
+        t_mixed = np.not_equal(t_or, t_and).any(axis=1)
+        b_mixed = np.not_equal(b_or, b_and).any(axis=1)
+        tables = bin_mask(t_or.view(bool).reshape(n, ny, nx), f, ws, "slab_bin_table")
+        every = bin_mask(b_and.view(bool).reshape(n, ny, nx), f, ws, "slab_bin")
         outline = inner_boundary(every, ws, "slab_outline")
-        if not np.array_equal(b_or, b_and):
-            some = bin_mask(b_or.view(bool).reshape(ny, nx), f, ws, "slab_bin_or")
-            outline |= some > every
-        return kept > outline
+        for j in range(n):
+            if t_mixed[j]:
+                first = z0 + j * slab
+                kept = self._kept_beside_table(bin_mask(regions.table[first], f)).copy()
+                for z in range(first + 1, first + slab):
+                    kept &= self._kept_beside_table(bin_mask(regions.table[z], f, ws, "slab_bin_one"))
+            else:
+                kept = self._kept_beside_table(tables[j])
+            if b_mixed[j]:
+                some = bin_mask(b_or[j].view(bool).reshape(ny, nx), f, ws, "slab_bin_or")
+                outline[j] |= some > every[j]
+            np.greater(kept, outline[j], out=out[j])
+        return out
 
     def _kept_beside_table(self, table: np.ndarray) -> np.ndarray:
         """The base mask without the exclusion of the binned ``table`` (kept per distinct table;
@@ -1920,15 +1951,18 @@ class AllowedMasks:
         return kept
 
 
-def _or_and_words(masks: np.ndarray, ws: "Workspace | None" = None, tag: str = "") -> tuple[np.ndarray, np.ndarray]:
-    """Bytewise OR and AND over the first axis of a C-contiguous boolean stack, as 64-bit words
-    (``ws`` lends the two results, names from ``tag``)."""
-    words = masks.reshape(masks.shape[0], -1).view(np.uint64)
-    some = np.bitwise_or(words[0], words[1], out=scratch(ws, tag + "or", words.shape[1:], np.uint64))
-    every = np.bitwise_and(words[0], words[1], out=scratch(ws, tag + "and", words.shape[1:], np.uint64))
-    for w in words[2:]:
-        some |= w
-        every &= w
+def _or_and_slabs(masks: np.ndarray, n: int, ws: "Workspace | None" = None, tag: str = "") -> tuple[np.ndarray, np.ndarray]:
+    """Bytewise OR and AND over each of ``n`` equal groups of consecutive slices of a
+    C-contiguous boolean stack, as ``(n, words)`` arrays of 64-bit words (``ws`` lends the
+    two results, names from ``tag``)."""
+    words = masks.reshape(n, masks.shape[0] // n, -1).view(np.uint64)
+    shape = (n, words.shape[2])
+    second = 1 % words.shape[1]  # a group of one slice is its own OR and AND
+    some = np.bitwise_or(words[:, 0], words[:, second], out=scratch(ws, tag + "or", shape, np.uint64))
+    every = np.bitwise_and(words[:, 0], words[:, second], out=scratch(ws, tag + "and", shape, np.uint64))
+    for i in range(2, words.shape[1]):
+        some |= words[:, i]
+        every &= words[:, i]
     return some, every
 
 
