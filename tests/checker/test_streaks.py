@@ -764,3 +764,45 @@ def ndimage_erosion(mask: np.ndarray) -> np.ndarray:
     from scipy import ndimage
 
     return ndimage.binary_erosion(mask)
+
+
+def test_pooled_workspaces_outlive_the_screening_threads(monkeypatch):
+    """Screening tasks borrow workspaces from one pool: no workspace is lent to two tasks
+    at a time, and a second volume's threads reuse the first one's workspaces (none are
+    made anew) and give the same record."""
+    import threading
+    import time
+    from contextlib import contextmanager
+
+    monkeypatch.setattr(streaks, "_WORKSPACE_POOL", [])
+    lent, busy, shared = [], set(), []
+    lock = threading.Lock()
+    real = streaks.pooled_workspace
+
+    @contextmanager
+    def watched():
+        with real() as ws:
+            with lock:
+                shared.append(id(ws) in busy)
+                busy.add(id(ws))
+                lent.append(id(ws))
+            time.sleep(0.002)  # let the other thread take a task meanwhile
+            try:
+                yield ws
+            finally:
+                with lock:
+                    busy.discard(id(ws))
+
+    monkeypatch.setattr(streaks, "pooled_workspace", watched)
+    monkeypatch.setattr(streaks, "SCREEN_THREADS", 2)
+    monkeypatch.setattr(streaks, "SCREEN_STACK", 1)
+    rng = np.random.default_rng(17)
+    hu = rng.normal(0.0, 10.0, (6, 64, 64)).astype(np.float32)
+    first = analyse(hu, spacing=(3.0, 1.0, 1.0)).record  # one slice per slab: six tasks
+    made = set(lent)
+    assert len(lent) == 6 and 1 <= len(made) <= 2
+    assert not any(shared)
+    lent.clear()
+    second = analyse(hu, spacing=(3.0, 1.0, 1.0)).record
+    assert len(lent) == 6 and set(lent) <= made
+    assert first == second
