@@ -9,7 +9,9 @@ shows the phantom when that mask is one near-circular disc (its area at least
 ``min_fill`` of the circle through its farthest boundary point) of at least
 ``min_radius_mm``, whose median CT number inside ``inner_fraction`` of the radius lies
 within ``water_window_hu`` of 0 HU (water is 0 HU by the definition of the Hounsfield
-scale). A phantom slice is uniform when, after Gaussian smoothing of ``smooth_mm``,
+scale), and the disc is not ringed by a dense shell (:func:`shell_level_hu` at most
+``dense_shell_hu``: a round head's skull, whose brain lies in the water window too).
+A phantom slice is uniform when, after Gaussian smoothing of ``smooth_mm``,
 no connected group of at least ``min_insert_mm2`` inside ``inner_fraction`` of the radius
 departs from the slice median by more than ``insert_contrast_hu`` (or five times the
 smoothed noise, whichever is larger); otherwise it has inserts.
@@ -81,6 +83,7 @@ PHANTOM_DEFAULTS: dict[str, float] = {
     "min_insert_mm2": 4.0,
     "work_pixel_mm": 2.0,
     "screen_step_mm": 5.0,
+    "dense_shell_hu": 400.0,
 }
 
 
@@ -950,6 +953,42 @@ def _grid_reads(hu: np.ndarray, f: int, rows: slice, cols: slice, zs: np.ndarray
 _READ_BYTES = 2048 * 1024
 
 
+#: Rays and radial samples of :func:`shell_level_hu`.
+SHELL_RAYS = 72
+SHELL_REACH = (0.75, 1.05)
+
+
+def shell_level_hu(hu: np.ndarray, zs: np.ndarray, centre: np.ndarray, radius: np.ndarray) -> float:
+    """What the edge of the disc is made of: on (at most) three of the slices ``zs``
+    (first, middle, last), the highest CT number along each of ``SHELL_RAYS`` rays from
+    the centre between ``SHELL_REACH`` (0.75 to 1.05) of the radius, sampled at the
+    nearest pixel about every pixel (a shell of two pixels or more is never stepped
+    over); the median over the rays, and of that the median over the slices.
+
+    A water phantom's wall is thin plastic (acrylic about +120 HU, from memory), and an
+    insert near the edge crosses only a few rays; a skull crosses every ray at several
+    hundred HU and more (cortical bone about +1000 HU, from memory). So a high value
+    tells a round head from a water cylinder, which the disc and water tests alone
+    cannot when the brain's CT number (about +35 HU) lies in the water window.
+
+    References
+    ----------
+    .. [1] Common practice, no source (the HU of acrylic and of bone: from memory).
+    """
+    picks = np.unique(zs[[0, zs.size // 2, zs.size - 1]])
+    ny, nx = hu.shape[1:]
+    angles = np.linspace(0.0, 2.0 * np.pi, SHELL_RAYS, endpoint=False)
+    levels = []
+    for z in picks:
+        r = float(radius[z])
+        steps = np.linspace(SHELL_REACH[0] * r, SHELL_REACH[1] * r, max(8, int((SHELL_REACH[1] - SHELL_REACH[0]) * r)))  # ~1 px apart
+        yy = np.clip(np.rint(centre[z, 0] + np.outer(np.sin(angles), steps)), 0, ny - 1).astype(np.intp)
+        xx = np.clip(np.rint(centre[z, 1] + np.outer(np.cos(angles), steps)), 0, nx - 1).astype(np.intp)
+        ray_max = np.nanmax(np.asarray(hu[int(z)][yy, xx], dtype=np.float64), axis=1)
+        levels.append(float(np.median(ray_max)))
+    return float(np.median(levels))
+
+
 def _find_phantom(volume: Volume, regions: Regions, s: dict[str, float]) -> Phantom:
     nz = volume.shape[0]
     pixel_mm = 0.5 * (volume.spacing_mm[1] + volume.spacing_mm[2])
@@ -975,6 +1014,13 @@ def _find_phantom(volume: Volume, regions: Regions, s: dict[str, float]) -> Phan
             "no water cylinder found: no slice has a near-circular object of radius "
             f">= {s['min_radius_mm']:g} mm with a median within {s['water_window_hu']:g} HU of water"
         )
+    else:
+        shell_hu = shell_level_hu(volume.hu, np.flatnonzero(on), centre, radius)
+        if shell_hu > s["dense_shell_hu"]:
+            on[:], inserts[:] = False, False
+            reason = (f"no water cylinder: the round object has a dense, bone-like shell (its edge reaches "
+                      f"{shell_hu:.0f} HU on most rays; a phantom's wall stays below {s['dense_shell_hu']:g} HU): "
+                      "a head or other body part")
     return Phantom(
         found=bool(on.any()),
         reason=reason,

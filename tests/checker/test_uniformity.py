@@ -712,3 +712,48 @@ def test_search_patient_like_torso_has_no_phantom():
     vol = Volume.from_array((img[None] + rng.normal(0, 12, (6, ny, nx))).astype(np.float32), (2.5, 0.8, 0.8))
     ph = _phantom.find_phantom(vol, find_regions(vol))
     assert not ph.found and not ph.on_slice.any() and "no water cylinder" in ph.reason
+
+
+def _round_object(shell_hu: float, shell_mm: float, inside_hu: float, sd: float, aspect: float = 1.1,
+                  rod_hu: float | None = None, nz: int = 6, n: int = 256, px: float = 0.9, seed: int = 4) -> Volume:
+    """An invented round object in air: an ellipse (``aspect`` of its axes) of 82 mm mean
+    radius with a shell of ``shell_mm`` at ``shell_hu`` around ``inside_hu``; optionally a
+    rod of ``rod_hu`` touching the shell."""
+    rng = np.random.default_rng(seed)
+    yy, xx = np.mgrid[:n, :n]
+    a = 82.0 * np.sqrt(aspect)
+    rho = np.hypot((yy - n / 2) * px * aspect / a, (xx - n / 2) * px / a)  # 1 on the outer edge
+    img = np.full((n, n), -1000.0)
+    img[rho <= 1.0] = shell_hu
+    img[rho <= 1.0 - shell_mm / 82.0] = inside_hu
+    if rod_hu is not None:
+        img[np.hypot((yy - n / 2) * px, (xx - n / 2) * px - 62.0) <= 8.0] = rod_hu
+    hu = np.repeat(img[None], nz, axis=0) + rng.normal(0.0, sd, (nz, n, n))
+    return Volume.from_array(hu.astype(np.float32), (2.5, px, px))
+
+
+def test_a_round_head_is_not_taken_for_a_water_phantom():
+    """A round head (brain +35 HU inside the water window, a 7 mm skull of +1000 HU; from
+    memory) passes the disc and water tests but not the shell test: no phantom, and the
+    noise is measured as in patient images, on soft tissue."""
+    from reconaudit.checker.analyses import nps
+
+    head = _round_object(shell_hu=1000.0, shell_mm=7.0, inside_hu=35.0, sd=8.0)
+    regions = find_regions(head)
+    ph = _phantom.find_phantom(head, regions)
+    assert not ph.found and "bone-like shell" in ph.reason
+    rec = nps.analyse(head, regions).record
+    assert rec["applicable"] is True and rec["method"] == "patient"
+    assert abs(rec["noise_hu"] - 8.0) < 1.5
+
+
+@pytest.mark.parametrize("sd", [6.0, 40.0])
+def test_a_water_phantom_with_a_plastic_wall_and_a_bone_rod_by_it_is_still_a_phantom(sd):
+    """A 5 mm acrylic-like wall (+120 HU, from memory) and a +900 HU rod touching it,
+    at low and at high noise: the shell test leaves the phantom as it was found."""
+    vol = _round_object(shell_hu=120.0, shell_mm=5.0, inside_hu=0.0, sd=sd, aspect=1.0, rod_hu=900.0)
+    regions = find_regions(vol)
+    ph = _phantom.find_phantom(vol, regions)
+    assert ph.found and ph.on_slice.all()
+    level = _phantom.shell_level_hu(vol.hu, np.flatnonzero(ph.on_slice), ph.centre_yx_vox, ph.radius_vox)
+    assert level < 0.6 * _phantom.PHANTOM_DEFAULTS["dense_shell_hu"]
