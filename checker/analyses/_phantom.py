@@ -984,8 +984,8 @@ def shell_level_hu(hu: np.ndarray, zs: np.ndarray, centre: np.ndarray, radius: n
         steps = np.linspace(SHELL_REACH[0] * r, SHELL_REACH[1] * r, max(8, int((SHELL_REACH[1] - SHELL_REACH[0]) * r)))  # ~1 px apart
         yy = np.clip(np.rint(centre[z, 0] + np.outer(np.sin(angles), steps)), 0, ny - 1).astype(np.intp)
         xx = np.clip(np.rint(centre[z, 1] + np.outer(np.cos(angles), steps)), 0, nx - 1).astype(np.intp)
-        ray_max = np.nanmax(np.asarray(hu[int(z)][yy, xx], dtype=np.float64), axis=1)
-        levels.append(float(np.median(ray_max)))
+        ray_max = hu[int(z)][yy, xx].max(axis=1)  # a NaN on a ray counts as not dense
+        levels.append(float(np.median(np.nan_to_num(ray_max, nan=-np.inf))))
     return float(np.median(levels))
 
 
