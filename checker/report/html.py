@@ -83,6 +83,16 @@ def fmt(value: Any, digits: int = 4) -> str:
     return f"{f:.{digits}g}"
 
 
+def fmt_measured(value: Any, unit: str) -> str:
+    """A measured value as the table shows it: CT numbers (HU) to 0.01 HU (0.1 HU from
+    100 HU up), so a water value near 0 does not show noise digits; other quantities
+    with 4 significant digits (:func:`fmt`)."""
+    f = finite_number(value)
+    if unit != "HU" or f is None or (f == int(f) and abs(f) < 1e6):
+        return fmt(value)
+    return f"{f:.1f}" if abs(f) >= 100 else f"{f:.2f}"
+
+
 def _metric_label(key: str) -> tuple[str, str]:
     if key in METRIC_LABELS:
         return METRIC_LABELS[key]
@@ -247,7 +257,8 @@ def _measurement_rows(series: Mapping[str, Any]) -> list[dict[str, str]]:
     for key in list(current) + [k for k in base if k not in current]:
         label, unit = _metric_label(key)
         now, then = current.get(key), base.get(key)
-        rows.append({"key": key, "label": label, "unit": unit, "value": fmt(now), "baseline": fmt(then),
+        rows.append({"key": key, "label": label, "unit": unit, "value": fmt_measured(now, unit),
+                     "baseline": fmt_measured(then, unit),
                      "change": _change(now, then)})
     return rows
 

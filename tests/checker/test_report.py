@@ -396,3 +396,13 @@ def test_an_f50_beyond_the_recorded_curve_is_not_shown_as_a_value():
     edge["f50_per_mm"] = 0.31
     assert figures._f50_on_curve(edge) == 0.31
     assert "f50 0.310" in figures._edge_label(edge)
+
+
+@pytest.mark.parametrize("value, unit, shown", [
+    (-0.07615, "HU", "-0.08"), (4.789, "HU", "4.79"), (-1000.0, "HU", "-1000"), (-711.46, "HU", "-711.5"),
+    (0.08363, "mm⁻¹", "0.08363"), (None, "HU", "–"), (float("nan"), "HU", "–"), (35, "", "35"),
+])
+def test_measured_values_show_ct_numbers_to_a_hundredth_of_a_hu(value, unit, shown):
+    from reconaudit.checker.report.html import fmt_measured
+
+    assert fmt_measured(value, unit) == shown
