@@ -393,8 +393,8 @@ class Workspace:
     #: :func:`screen_textures`; a test checks lent results against fresh arrays)
     SHARED = {
         **dict.fromkeys(("slab_total", "edge_gy", "tex_squared", "cell_sq", "gain_weighted", "inner_shift"), "A"),
-        **dict.fromkeys(("bin_rows", "tex_rows", "wtyout", "cell_power", "gain_upyout"), "B"),
-        **dict.fromkeys(("edge_gx", "sqr1", "wtxout"), "C"),
+        **dict.fromkeys(("slab_or", "bin_rows", "tex_rows", "wtyout", "cell_power", "gain_upyout"), "B"),
+        **dict.fromkeys(("slab_and", "edge_gx", "sqr1", "wtxout"), "C"),
         **dict.fromkeys(("tex_blur_cols", "fracr1", "wtydiff"), "D"),
         **dict.fromkeys(("tex_blur_out", "wtyscaled"), "E"),
     }
@@ -796,9 +796,10 @@ FILL_SAMPLES = 1024
 NOISE_BLOCK_PX = 8
 #: coarse grid of the soft weight near masked pixels
 WEIGHT_BLOCK_PX = 2
-#: slabs screened together as one stack (one task of a screening thread; 8 rather than 4
-#: halves the Python calls per slab and the tasks handed out, the same values)
-SCREEN_STACK = 8
+#: slabs screened together as one stack (at most, one task of a screening thread; the
+#: same values for any size). With the texture's steps taken for the whole stack, 6 is as
+#: fast as 8 (torso, 2 threads) with a quarter less workspace per thread; 4 is slower
+SCREEN_STACK = 6
 
 
 def _along(axis: int, index: slice, ndim: int) -> tuple[slice, ...]:
@@ -1024,42 +1025,27 @@ def segment_products(ext: np.ndarray, matrix: np.ndarray, step: int, out: np.nda
     """``out[..., b * q : (b + 1) * q] = ext[..., b * step : b * step + p] @ matrix`` for every block ``b``.
 
     ``matrix`` is ``(p, q)``; ``out``'s last axis is a whole number of blocks of ``q`` and
-    ``ext``'s holds every segment. One matrix product per block and per chunk of rows,
-    on strided views of ``ext`` and ``out`` (nothing copied; rows must be contiguous).
-    The rows of all leading indices are taken as one matrix when both arrays are laid
-    out so (the workspace's buffers are), in chunks of at most ``BLAS_SERIAL_MNK / (p q)``
-    rows.
+    ``ext``'s holds every segment. One matrix product per block, per leading index and
+    per chunk of at most ``BLAS_SERIAL_MNK / (p q)`` rows, on strided views of ``ext``
+    and ``out`` (nothing copied; rows must be contiguous). The chunks are taken within
+    each 2-D image, never across images: every image of a stack then goes through
+    products of the same shapes, so its result does not depend on the stack it is in
+    (the BLAS library may round rows differently by their place in a product).
     """
     p, q = matrix.shape
     nb = out.shape[-1] // q
-    if ext.ndim > 2 and _rows_merge(ext) and _rows_merge(out):
-        ext, out_rows = ext.reshape(-1, ext.shape[-1]), out.reshape(-1, out.shape[-1])
-    else:
-        out_rows = out
-    n_rows = out_rows.shape[-2]
+    n_rows = out.shape[-2]
     chunk = max(1, BLAS_SERIAL_MNK // (p * q))
-    se, so = ext.strides, out_rows.strides
+    se, so = ext.strides, out.strides
     for r0 in range(0, n_rows, chunk):
         r1 = min(r0 + chunk, n_rows)
-        src, dst = ext[..., r0:r1, :], out_rows[..., r0:r1, :]
+        src, dst = ext[..., r0:r1, :], out[..., r0:r1, :]
         segments = np.lib.stride_tricks.as_strided(src, src.shape[:-2] + (nb, r1 - r0, p),
                                                    se[:-2] + (step * se[-1], se[-2], se[-1]), writeable=False)
         blocks = np.lib.stride_tricks.as_strided(dst, dst.shape[:-2] + (nb, r1 - r0, q),
                                                  so[:-2] + (q * so[-1], so[-2], so[-1]))
         np.matmul(segments, matrix, out=blocks)
     return out
-
-
-def _rows_merge(a: np.ndarray) -> bool:
-    """Whether the rows of every leading index of ``a`` form one evenly strided run (so that
-    ``a.reshape(-1, a.shape[-1])`` is a view)."""
-    stride = a.strides[-2]
-    size = a.shape[-2]
-    for dim in range(a.ndim - 3, -1, -1):
-        if a.shape[dim] > 1 and a.strides[dim] != stride * size:
-            return False
-        stride, size = a.strides[dim], a.shape[dim]
-    return True
 
 
 def block_mean_even(values: np.ndarray, factor: int, pad: str, ws: "Workspace | None" = None,
@@ -1955,11 +1941,11 @@ class AllowedMasks:
         z1 = z0 + n * slab
         table = regions.table[z0:z1]
         ny, nx = table.shape[-2:]
-        t_or, t_and = _or_and_slabs(table, n, ws, "slab_table_")
-        b_or, b_and = _or_and_slabs(regions.body[z0:z1], n, ws, "slab_body_")
+        t_or, t_and = _or_and_slabs(table, n, ws, "slab_")
         t_mixed = np.not_equal(t_or, t_and).any(axis=1)
-        b_mixed = np.not_equal(b_or, b_and).any(axis=1)
         tables = bin_mask(t_or.view(bool).reshape(n, ny, nx), f, ws, "slab_bin_table")
+        b_or, b_and = _or_and_slabs(regions.body[z0:z1], n, ws, "slab_")  # the table's words are done with
+        b_mixed = np.not_equal(b_or, b_and).any(axis=1)
         every = bin_mask(b_and.view(bool).reshape(n, ny, nx), f, ws, "slab_bin")
         outline = inner_boundary(every, ws, "slab_outline")
         for j in range(n):
@@ -2184,8 +2170,8 @@ def screen_tasks(ranges: list[tuple[int, int]], slab: int, stack: int, threads: 
     Each range ``(z0, z1)`` (starting at a multiple of ``slab``) is split into the fewest
     tasks of at most ``stack`` slabs, their number rounded up to a multiple of
     ``threads`` and the slabs shared out evenly, so that the threads get about equal
-    work (100 slabs on 2 threads: 14 tasks of 7 or 8 slabs rather than 12 of 8 and one
-    of 4).
+    work (100 slabs, at most 8 a task, on 2 threads: 14 tasks of 7 or 8 slabs rather
+    than 12 of 8 and one of 4).
     """
     out = []
     for z0, z1 in ranges:
@@ -2443,9 +2429,13 @@ def screen_slab_stack(images: np.ndarray, allowed: np.ndarray, factor: int, bins
         return outcomes
     n = len(members)
     means = scratch(ws, "slab_means", (n,) + tuple(s // factor for s in images.shape[-2:]))
-    masks = scratch(ws, "slab_masks", (n,) + allowed.shape[-2:], bool)
+    # with one mask per slab and every slab screened, the masks are those given, in order
+    as_given = per_slab and n == len(allowed) and all(m[0] // slab == j for j, m in enumerate(members))
+    masks = allowed if as_given else scratch(ws, "slab_masks", (n,) + allowed.shape[-2:], bool)
     for j, m in enumerate(members):
         bin_slab(images, m, factor, out=means[j], ws=ws)
+        if as_given:
+            continue
         if per_slab:
             np.copyto(masks[j], allowed[m[0] // slab])
             continue
