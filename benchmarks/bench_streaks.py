@@ -107,7 +107,8 @@ def timed_runs(fn, repeats: int) -> tuple[float, float, object]:
 def first_screen_stages(vol: Volume, regions) -> dict[str, Callable[[int], None]] | None:
     """The first screen's stages as functions of a task index (None when there is no first screen).
 
-    Each stage runs alone on one task (``SCREEN_STACK`` first-screen slabs): binning
+    Each stage runs alone on one task (the analysis's tasks, :func:`streaks.screen_tasks`, with
+    workspaces from :func:`streaks.pooled_workspace` as in the analysis): binning
     (:func:`streaks.bin_slab`), masks (:meth:`streaks.AllowedMasks.slab_stack`), texture
     (:func:`streaks.screen_textures`) and the FFT with the cell sums
     (:func:`streaks.profiles_of_textures`); the later stages read the outputs of the
@@ -124,30 +125,33 @@ def first_screen_stages(vol: Volume, regions) -> dict[str, Callable[[int], None]
     bins = streaks.spectral_bins(shape_b, tuple(cfg["band_cycles_per_px"]), float(cfg["angle_bin_deg"]))
     masks = streaks.AllowedMasks(regions, f, shape_b, cfg)
     n_slabs = nz // first
-    per_task = streaks.SCREEN_STACK
-    tasks = [(a, min(a + per_task, n_slabs)) for a in range(0, n_slabs, per_task)]
+    # the analysis's tasks (in slabs): streaks.screen_tasks of the slab range on the module's threads
+    tasks = [(a // first, b // first) for a, b in
+             streaks.screen_tasks([(0, n_slabs * first)], first, streaks.SCREEN_STACK, streaks.SCREEN_THREADS)]
     means = np.empty((n_slabs,) + shape_b, np.float32)
     allowed = np.empty((n_slabs,) + shape_b, bool)
     textures = np.empty((n_slabs,) + shape_b, np.float32)
 
     def binning(i: int) -> None:
-        ws = streaks.thread_workspace()
-        for j in range(*tasks[i]):
-            streaks.bin_slab(vol.hu, list(range(j * first, (j + 1) * first)), f, out=means[j], ws=ws)
+        with streaks.pooled_workspace() as ws:
+            for j in range(*tasks[i]):
+                streaks.bin_slab(vol.hu, list(range(j * first, (j + 1) * first)), f, out=means[j], ws=ws)
 
     def slab_masks(i: int) -> None:
         a, b = tasks[i]
-        allowed[a:b] = masks.slab_stack(a * first, b * first, first, streaks.thread_workspace())
+        with streaks.pooled_workspace() as ws:
+            allowed[a:b] = masks.slab_stack(a * first, b * first, first, ws)
 
     def texture(i: int) -> None:
         a, b = tasks[i]
-        tex, _ = streaks.screen_textures(means[a:b], allowed[a:b], cfg, np.ones(b - a, bool),
-                                         streaks.thread_workspace())
-        textures[a:b] = tex
+        with streaks.pooled_workspace() as ws:
+            tex, _ = streaks.screen_textures(means[a:b], allowed[a:b], cfg, np.ones(b - a, bool), ws)
+            textures[a:b] = tex
 
     def fft_cells(i: int) -> None:
         a, b = tasks[i]
-        streaks.profiles_of_textures(textures[a:b].copy(), [True] * (b - a), bins, streaks.thread_workspace())
+        with streaks.pooled_workspace() as ws:
+            streaks.profiles_of_textures(textures[a:b].copy(), [True] * (b - a), bins, ws)
 
     stages = {"binning": binning, "masks": slab_masks, "texture": texture, "FFT + cells": fft_cells}
     for fn in stages.values():  # inputs of the later stages

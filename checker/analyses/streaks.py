@@ -121,13 +121,15 @@ the block mean and the bilinear interpolation back, is that of the full-grid fil
 and the fill value and the robust noise scale from regular sub-grids of about
 ``FILL_SAMPLES`` and ``ROBUST_SAMPLES`` pixels. The high-pass residual, the strong
 edges and the spectrum stay on the screen grid (the band is in cycles per pixel of
-that grid). Slabs go through in stacks of ``SCREEN_STACK`` (``SCREEN_STACK`` times the
-slab size slices per task, so thin slices give each thread larger tasks): each slice is
-binned once (the one full-resolution pass over the volume), the texture's steps run
-on the whole stack at once (one array operation per step for all its slabs; the
-Gaussian blurs as banded matrix products, :func:`banded_blur`, which read the image
-once per axis instead of once per tap), the FFT and the cell sums slab by slab; each
-slab's outcome depends on that slab only.
+that grid). Slabs go through in stacks of at most ``SCREEN_STACK`` (up to
+``SCREEN_STACK`` times the slab size slices per task, so thin slices give each thread
+larger tasks; a range's slabs are shared out evenly, :func:`screen_tasks`): each slice
+is binned once (the one full-resolution pass over the volume), the first screen's masks,
+the texture's steps and the FFTs run on the whole stack at once (one array operation
+per step for all its slabs; the Gaussian blurs as banded matrix products,
+:func:`banded_blur`, which read the image once per axis instead of once per tap, taken
+image by image), the cell sums slab by slab; each slab's outcome depends on that slab
+only, bit for bit (whatever its stack or the thread count).
 Slabs of two slices (1.25 mm) halve the screen's work after the binning. The coarse
 grids and sub-grids give estimates of the same quantities, so the indices differ
 slightly from a full-grid computation (a documented method choice); the record's keys,
