@@ -227,14 +227,21 @@ def series_bytes(files) -> int:
 
 
 def largest_first(tasks: list[SeriesTask]) -> list[SeriesTask]:
-    """The tasks in the order they are handed out: largest series (bytes on disk) first.
+    """The tasks in the order they are handed out: largest series (bytes on disk, to two
+    significant digits) first.
 
     Workers take the next task as they finish one, so starting with the long ones keeps
     a large series from starting last while the other workers stand idle (longest
-    processing time first; Graham, SIAM J Appl Math 17, 1969). Ties keep the discovery
-    order; the outputs are sorted by id whatever the order of work.
+    processing time first; Graham, SIAM J Appl Math 17, 1969). Series of about the same
+    size (the same two leading digits) keep the discovery order: a few bytes of header
+    say nothing about which will take longer. The outputs are sorted by id whatever the
+    order of work.
     """
-    return sorted(tasks, key=lambda t: -series_bytes(t.source.files))
+    return sorted(tasks, key=lambda t: -_two_digits(series_bytes(t.source.files)))
+
+
+def _two_digits(n: int) -> float:
+    return float(f"{n:.2g}")
 
 
 def check(opts: CheckOptions, progress_factory: Callable[[int], Any] | None = None) -> CheckOutcome:

@@ -224,3 +224,18 @@ def test_the_largest_series_is_handed_out_first_and_the_outputs_stay_sorted(tmp_
     assert handed_out == [9, 5, 2]
     ids = [r["id"] for r in json.loads((tmp_path / "out" / "results.json").read_text())["series"]]
     assert ids == sorted(ids) and len(ids) == 3
+
+
+def test_series_of_about_the_same_size_keep_the_discovery_order(tmp_path):
+    """Sizes 1000, 1040, 5000 and 990 bytes: the 5000-byte series first, the others (the
+    same two leading digits: no telling which takes longer) in the order found."""
+    from types import SimpleNamespace
+
+    from reconaudit.checker.runner import largest_first
+
+    tasks = []
+    for name, size in (("a", 1000), ("b", 1040), ("c", 5000), ("d", 990)):
+        f = tmp_path / f"{name}.dcm"
+        f.write_bytes(b"\0" * size)
+        tasks.append(SimpleNamespace(name=name, source=SimpleNamespace(files=[f])))
+    assert [t.name for t in largest_first(tasks)] == ["c", "a", "b", "d"]
