@@ -10,7 +10,8 @@ shows the phantom when that mask is one near-circular disc (its area at least
 ``min_radius_mm``, whose median CT number inside ``inner_fraction`` of the radius lies
 within ``water_window_hu`` of 0 HU (water is 0 HU by the definition of the Hounsfield
 scale), and the disc is not ringed by a dense shell (:func:`shell_level_hu` at most
-``dense_shell_hu``: a round head's skull, whose brain lies in the water window too).
+``dense_shell_hu`` on the middle phantom slice: a round head's skull, whose brain lies
+in the water window too).
 A phantom slice is uniform when, after Gaussian smoothing of ``smooth_mm``,
 no connected group of at least ``min_insert_mm2`` inside ``inner_fraction`` of the radius
 departs from the slice median by more than ``insert_contrast_hu`` (or five times the
@@ -954,16 +955,16 @@ _READ_BYTES = 2048 * 1024
 
 
 #: Rays and radial samples of :func:`shell_level_hu`.
-SHELL_RAYS = 72
+SHELL_RAYS = 48
 SHELL_REACH = (0.75, 1.05)
 
 
 def shell_level_hu(hu: np.ndarray, zs: np.ndarray, centre: np.ndarray, radius: np.ndarray) -> float:
-    """What the edge of the disc is made of: on (at most) three of the slices ``zs``
-    (first, middle, last), the highest CT number along each of ``SHELL_RAYS`` rays from
-    the centre between ``SHELL_REACH`` (0.75 to 1.05) of the radius, sampled at the
-    nearest pixel about every pixel (a shell of two pixels or more is never stepped
-    over); the median over the rays, and of that the median over the slices.
+    """What the edge of the disc is made of: on the middle slice of the phantom slices
+    ``zs``, the highest CT number along each of ``SHELL_RAYS`` rays from the centre
+    between ``SHELL_REACH`` (0.75 to 1.05) of the radius, sampled at the nearest pixel
+    about every pixel (a shell of two pixels or more is never stepped over); the median
+    over the rays.
 
     A water phantom's wall is thin plastic (acrylic about +120 HU, from memory), and an
     insert near the edge crosses only a few rays; a skull crosses every ray at several
@@ -975,18 +976,15 @@ def shell_level_hu(hu: np.ndarray, zs: np.ndarray, centre: np.ndarray, radius: n
     ----------
     .. [1] Common practice, no source (the HU of acrylic and of bone: from memory).
     """
-    picks = np.unique(zs[[0, zs.size // 2, zs.size - 1]])
+    z = int(zs[zs.size // 2])
     ny, nx = hu.shape[1:]
+    r = float(radius[z])
     angles = np.linspace(0.0, 2.0 * np.pi, SHELL_RAYS, endpoint=False)
-    levels = []
-    for z in picks:
-        r = float(radius[z])
-        steps = np.linspace(SHELL_REACH[0] * r, SHELL_REACH[1] * r, max(8, int((SHELL_REACH[1] - SHELL_REACH[0]) * r)))  # ~1 px apart
-        yy = np.clip(np.rint(centre[z, 0] + np.outer(np.sin(angles), steps)), 0, ny - 1).astype(np.intp)
-        xx = np.clip(np.rint(centre[z, 1] + np.outer(np.cos(angles), steps)), 0, nx - 1).astype(np.intp)
-        ray_max = hu[int(z)][yy, xx].max(axis=1)  # a NaN on a ray counts as not dense
-        levels.append(float(np.median(np.nan_to_num(ray_max, nan=-np.inf))))
-    return float(np.median(levels))
+    steps = np.linspace(SHELL_REACH[0] * r, SHELL_REACH[1] * r, max(8, int((SHELL_REACH[1] - SHELL_REACH[0]) * r)))
+    yy = np.clip(np.rint(centre[z, 0] + np.outer(np.sin(angles), steps)), 0, ny - 1).astype(np.intp)
+    xx = np.clip(np.rint(centre[z, 1] + np.outer(np.cos(angles), steps)), 0, nx - 1).astype(np.intp)
+    ray_max = hu[z][yy, xx].max(axis=1)  # a NaN on a ray counts as not dense
+    return float(np.median(np.nan_to_num(ray_max, nan=-np.inf)))
 
 
 def _find_phantom(volume: Volume, regions: Regions, s: dict[str, float]) -> Phantom:
