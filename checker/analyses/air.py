@@ -128,6 +128,14 @@ from ..volume import Volume
 NAME = "air"
 
 KINDS = ("isolated", "touching_body", "table", "leaves_scan", "fov_edge")
+#: How the findings name each kind (the record keeps the keys above).
+KIND_WORDS = {
+    "isolated": "isolated",
+    "touching_body": "touching the body",
+    "table": "on the table",
+    "leaves_scan": "leaving the scanned slices",
+    "fov_edge": "at the edge of the field of view",
+}
 
 #: Every setting and tolerance with its default.
 DEFAULTS: dict[str, Any] = {
@@ -1598,7 +1606,7 @@ def describe(st: dict[str, Any], body_centre_mm: np.ndarray | None) -> str:
         off = np.asarray(st["centroid_mm"]) - body_centre_mm
         where = f", {math.hypot(off[0], off[1]):.0f} mm {_side_words(off)}"
     return (
-        f"structure {st['id']} in the air ({st['kind']}): about {d:.0f} mm across "
+        f"structure {st['id']} in the air ({KIND_WORDS.get(st['kind'], st['kind'])}): about {d:.0f} mm across "
         f"({st['volume_mm3'] / 1000.0:.2f} cm3), mean {st['mean_hu']:.0f} HU "
         f"(contrast-to-noise {st['contrast_to_noise']:.1f}), slices {st['slices'][0]}-{st['slices'][1]}, "
         f"centred at x {x:.1f}, y {y:.1f}, z {zc:.1f} mm (LPS){where}. "
@@ -2031,7 +2039,7 @@ def analyse(volume: Volume, regions: Regions, settings: dict[str, Any] | None = 
     flagged = any(st["flagged"] for st in structures) or any(f.severity == Severity.REVIEW for f in findings)
     if not findings:
         counts = {k: sum(1 for st in structures if st["kind"] == k) for k in KINDS}
-        summary = ", ".join(f"{v} {k}" for k, v in counts.items() if v) or "none"
+        summary = ", ".join(f"{v} {KIND_WORDS[k]}" for k, v in counts.items() if v) or "none"
         findings.append(Finding(NAME, Severity.INFO, f"air {mean:.1f} HU, noise {noise:.1f} HU; structures: {summary}; none flagged"))
     record = {
         "applicable": True,

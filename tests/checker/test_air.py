@@ -551,3 +551,15 @@ def test_poorly_measured_fine_structure_is_replaced_by_the_coarser_outline():
     assert np.count_nonzero(combined == outlined) == 8 * 8 * 8
     assert sum(b is None for b in boxes) == 1  # the faint fine label, replaced
     assert boxes[strong - 1] == (slice(4, 7), slice(3, 6), slice(3, 6))
+
+
+def test_findings_name_the_kinds_of_structure_in_words():
+    """The sentences a physicist reads say what a structure is in words, not the record's
+    key (``leaves_scan`` reads "leaving the scanned slices"); every kind has words."""
+    from reconaudit.checker.analyses import air
+
+    assert set(air.KIND_WORDS) == set(air.KINDS)
+    st = {"id": 3, "kind": "leaves_scan", "volume_mm3": 500.0, "mean_hu": -850.0, "contrast_to_noise": 6.0,
+          "slices": [0, 4], "centroid_mm": [10.0, -20.0, 5.0]}
+    text = air.describe(st, None)
+    assert "leaving the scanned slices" in text and "leaves_scan" not in text
