@@ -811,93 +811,6 @@ def _along(axis: int, index: slice, ndim: int) -> tuple[slice, ...]:
     return tuple(out)
 
 
-def mirror_extend(image: np.ndarray, radius: int, axis: int, mode: str, ws: "Workspace | None" = None, tag: str = "") -> np.ndarray:
-    """``image`` (float32) extended by ``radius`` samples at both ends of ``axis``.
-
-    ``mode`` "reflect" repeats the edge sample (``d c b a | a b c d``, scipy.ndimage's
-    "reflect"); "constant" pads with zeros. ``ws`` lends the output (name ``tag``).
-    """
-    nd = image.ndim
-    n = image.shape[axis]
-    shape = list(image.shape)
-    shape[axis] = n + 2 * radius
-    out = scratch(ws, tag + "ext", tuple(shape))
-    out[_along(axis, slice(radius, radius + n), nd)] = image
-    if mode == "constant" and radius > 0:
-        out[_along(axis, slice(0, radius), nd)] = 0.0
-        out[_along(axis, slice(radius + n, None), nd)] = 0.0
-    if mode != "constant" and radius > 0:
-        out[_along(axis, slice(0, radius), nd)] = image[_along(axis, slice(radius - 1, None, -1), nd)]
-        stop = n - radius - 1
-        out[_along(axis, slice(radius + n, None), nd)] = image[_along(axis, slice(n - 1, stop if stop >= 0 else None, -1), nd)]
-    return out
-
-
-def shift_add_blur(image: np.ndarray, sigma_px: float, truncate: float, mode: str = "reflect",
-                   ws: "Workspace | None" = None, tag: str = "blur") -> np.ndarray:
-    """Separable sampled-Gaussian blur over the last two axes by shifted adds.
-
-    The kernel is :func:`gaussian_taps`; ``mode`` is "reflect" (as
-    ``scipy.ndimage.gaussian_filter``'s default) or "constant" (zeros outside). Equal to
-    scipy's filter of each slice up to float32 rounding; a kernel longer than a side
-    falls back to scipy. With a :class:`Workspace` ``ws`` the result lives in its
-    buffers (name ``tag``) until the next call with that tag.
-
-    References
-    ----------
-    .. [1] scipy.ndimage.gaussian_filter (the same sampled kernel and border rules).
-    """
-    taps = gaussian_taps(float(sigma_px), float(truncate))
-    radius = len(taps) // 2
-    out = np.asarray(image, dtype=np.float32)
-    for axis in (-2, -1):
-        if radius == 0:
-            continue
-        if radius > out.shape[axis]:
-            out = ndimage.correlate1d(out, np.asarray(taps), axis=axis, mode=mode).astype(np.float32, copy=False)
-            continue
-        sub = f"{tag}{axis}"
-        out = _shift_add_axis(mirror_extend(out, radius, axis, mode, ws, sub), taps, axis, out.shape[axis], ws, sub)
-    return out if out is not image else out.copy()
-
-
-def _shift_add_axis(ext: np.ndarray, taps: tuple[float, ...], axis: int, n: int,
-                    ws: "Workspace | None" = None, tag: str = "") -> np.ndarray:
-    """One axis of :func:`shift_add_blur` on the extended array ``ext`` (``n`` outputs per line).
-
-    Along the last axis the rows are processed as one flat, contiguous line: output
-    ``j`` of the flat line needs inputs ``j .. j + 2 radius``, which for the ``n`` valid
-    outputs of a row stay inside that row's extended samples; the outputs that straddle
-    two rows fall in the padding columns and are dropped.
-    """
-    radius = len(taps) // 2
-    along_rows = axis in (-1, ext.ndim - 1)
-    flat = np.ascontiguousarray(ext).reshape(-1) if along_rows else ext
-    length = flat.size - 2 * radius
-
-    def shifted(k: int) -> np.ndarray:
-        return flat[k : k + length] if along_rows else ext[_along(axis, slice(k, k + n), ext.ndim)]
-
-    if along_rows:
-        buf = scratch(ws, tag + "flat", (flat.size,))
-        out = buf[:length]
-    else:
-        buf = None
-        shape = list(ext.shape)
-        shape[axis] = n
-        out = scratch(ws, tag + "out", tuple(shape))
-    np.multiply(shifted(radius), np.float32(taps[radius]), out=out)
-    pair = scratch(ws, tag + "pair", out.shape)
-    for k in range(radius):
-        np.add(shifted(k), shifted(2 * radius - k), out=pair)
-        pair *= np.float32(taps[k])
-        out += pair
-    if buf is None:
-        return out
-    buf[length:] = 0.0
-    return buf.reshape(ext.shape)[..., :n]
-
-
 #: output columns per block of :func:`banded_blur`'s products along x (16 was the fastest
 #: of 4, 8, 16, 32 and 64 on rows of 256 pixels; larger blocks waste more products on zeros)
 BLUR_BLOCK_COLS = 16
@@ -916,7 +829,7 @@ def banded_blur(image: np.ndarray, sigma_px: float, truncate: float, mode: str =
 
     The same kernel (:func:`gaussian_taps`) and border rules ("reflect" as
     ``scipy.ndimage.gaussian_filter``'s default, ``d c b a | a b c d``, or "constant",
-    zeros outside) as :func:`shift_add_blur`; equal to scipy's filter of each slice up to
+    zeros outside) as scipy's; equal to scipy's filter of each slice up to
     float32 rounding (the products sum the taps in another order). Along y each output
     row is the taps times the ``2r + 1`` rows around it: one vector-matrix product per row
     on a strided view of the row-extended image (no copies of shifted rows); along x

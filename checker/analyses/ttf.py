@@ -1239,7 +1239,25 @@ def _run_images(crop: np.ndarray, centre: tuple[float, float], r_px: float, px: 
                 groups: int = 3) -> RunImages:
     """The sub-stack mean images a rod's centre line is refined from, and the inside and
     outside CT numbers of its disc (medians inside 0.6 r and on the ring r + 2 mm ..
-    r + 4 mm of the mean of all slices): see :func:`_refine_centres`."""
+    r + 4 mm of the mean of all slices).
+
+    The centre line: the rod's slices are split into at most ``groups`` (3) contiguous
+    runs; the centre is refined once on each run's mean image (all runs of all rods
+    together, in :func:`measure_circular_edges`), and a straight line through the run
+    centres along z (weighted by their slice counts) gives every slice's centre; a rod
+    of fewer slices than ``groups`` takes each run's centre for its slices. A method
+    choice for speed: a rod is straight, so its centre line needs only a few points, and
+    each run's mean has the noise of one slice lowered by the square root of its slice
+    count, which makes each refinement more stable than a per-slice one. When the line
+    moves by less than the pooling tolerance over the rod, :func:`_pool_slices` makes
+    one group of all slices about its mean (the ESF of all slices is then one binning of
+    the summed image).
+
+    References
+    ----------
+    Richard et al., Med Phys 39(7) 2012 (radial ESF about the sub-pixel rod centre);
+    common practice, no source (centroid refinement, straight line along z).
+    """
     nz = crop.shape[0]
     runs = _split_runs(nz, min(groups, nz))
     run_sums = _run_sums(crop, runs)
@@ -1354,36 +1372,6 @@ def _tilts_are_significant(zc: np.ndarray, yx: np.ndarray, weights: np.ndarray) 
     sigma2 = (w[:, :, None] * resid * resid).sum(axis=(1, 2)) / (2 * (zc.shape[1] - 2))
     tilt2 = slope[:, 0] * slope[:, 0] + slope[:, 1] * slope[:, 1]
     return (sxx > 0) & (tilt2 > TILT_SIGNIFICANCE**2 * sigma2 / safe_sxx)
-
-
-def _refine_centres(crop: np.ndarray, centre: tuple[float, float], r_px: float, px: float,
-                    groups: int = 3) -> tuple[list[tuple[float, float]], float, float, np.ndarray]:
-    """Sub-pixel centre line of a rod from a few sub-stack mean images.
-
-    The rod's slices are split into at most ``groups`` (3) contiguous runs; the centre
-    is refined once on each run's mean image (all runs together, from the given start),
-    and a straight line through the run centres along z (weighted by their slice
-    counts) gives every slice's centre; a rod of fewer slices than ``groups`` takes each
-    run's centre for its slices. A method choice (the lead's decision for speed): a rod
-    is straight, so its centre line needs only a few points, and each run's mean has the
-    noise of one slice lowered by the square root of its slice count, which makes each
-    refinement more stable than a per-slice one. When the line moves by less than the
-    pooling tolerance over the rod, :func:`_pool_slices` makes one group of all slices
-    about its mean (the ESF of all slices is then one binning of the summed image).
-    Returns the centres, the inside and outside CT numbers and the float64 sum of all
-    slices (the sum of the runs' sums). :func:`measure_circular_edges` runs the same
-    steps for several rods with one refinement of all their run images.
-
-    References
-    ----------
-    Richard et al., Med Phys 39(7) 2012 (radial ESF about the sub-pixel rod centre);
-    common practice, no source (centroid refinement, straight line along z).
-    """
-    ri = _run_images(crop, centre, r_px, px, groups)
-    (per,) = _edges.refine_circle_centres_of_stacks([ri.images], [ri.start], [ri.r_px], [ri.inside_hu],
-                                                   [ri.outside_hu], [ri.reach_px])
-    line = _centre_line(ri, per, crop.shape[0])
-    return [(float(y), float(x)) for y, x in line], ri.inside_hu, ri.outside_hu, ri.total
 
 
 def _run_sums(crop: np.ndarray, runs: Sequence[np.ndarray]) -> np.ndarray:
