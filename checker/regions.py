@@ -15,8 +15,8 @@ slices and keeps its cross-section along z; the air is the field of view outside
 body and table dilated by ``margin_mm``.
 
 How it is computed (a method choice for speed; the record keys and their meaning are
-unchanged, and the lead's rule allows the values to be estimates, but body, table and
-air below are exact):
+unchanged, and values may be documented estimates, but body, table and air below
+are exact):
 
 - Field of view: "on every slice" is decided on the slices :func:`fov_slices` picks:
   the first, middle and last, and every slice whose padding pattern differs from the
@@ -57,9 +57,8 @@ air below are exact):
   of threads; the components stay one labelling of the whole block grid. Block rows are
   painted by one multiply per word instead of a table look-up (the same words).
 
-These are method choices for speed under the lead's rule for this round (values in the
-records may change where a documented method choice changes them; keys and meaning may
-not): here no value changes, the masks equal the previous version's voxel for voxel.
+These are method choices for speed (values in the records may change where a
+documented method choice changes them; keys and meaning may not): here no value changes, the masks equal the previous version's voxel for voxel.
 """
 from __future__ import annotations
 

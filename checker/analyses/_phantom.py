@@ -26,14 +26,14 @@ series whose other slices are far from a disc can be missed (phantom modules are
 centimetres long). When both pass and show the same disc (centres and radii within half
 a working pixel), the slices between are not measured but filled in: centre and radius
 interpolated, the inner disc taken as the disc itself (the body mask is hole-filled,
-so inside a passing disc the two agree). A method choice for speed under the lead's
-rule that records may change: the disc test of a phantom series costs a quarter; the
+so inside a passing disc the two agree). A method choice for speed (records may
+change): the disc test of a phantom series costs a quarter; the
 water test and the insert test below still look at every one of those slices, so a
 slice between that holds no water or an insert is still found (tested), and slices
 whose disc changes between two screened slices are measured one by one. The insert
 test runs on every phantom slice, on the 2 x 2 block
-means of the working grid (pixels of twice its size; a method choice for speed under
-the lead's rule that records may change: a quarter of the pixels to smooth, the noise
+means of the working grid (pixels of twice its size; a method choice for speed, records
+may change: a quarter of the pixels to smooth, the noise
 of the block means after the Gaussian about that of the smoothed grid, and a group of
 ``min_insert_mm2`` or more still at least one block); the noise scale (MAD) is
 taken only on slices with an inner deviation above ``insert_contrast_hu``, the least

@@ -8,8 +8,8 @@ ROIs come from one of four places, recorded as ``method``:
   uniform slices (all of a shorter run). 16 slices x 9 ROIs of 64 px give 144 ROI
   images; on invented scans the noise and f_av from them differ from those of 32
   slices by well under 1 % (bench phantom) to 2 % (small test phantom, tested), a
-  tenth of the comparison tolerances. A method choice for speed under the lead's rule
-  that records may change (from 32 slices before): the DFTs and the finite check cost
+  tenth of the comparison tolerances. A method choice for speed (records
+  may change; from 32 slices before): the DFTs and the finite check cost
   half as much;
 - ``"patient"``: homogeneous soft-tissue patches found automatically in patient images,
   which also get the global noise level (mode of the local-SD histogram in soft tissue).
@@ -44,8 +44,8 @@ grid (:mod:`._phantom`) and the patient search a few slices, so the records are
 estimates that may differ slightly from a search over every pixel; record keys, types and meaning are unchanged.
 Non-finite voxels: phantom, user and pair ROIs are measured only when every pixel of
 the slices they lie on is finite (:func:`._phantom.nonfinite_reason`; a NaN on a slice
-the NPS does not read no longer stops it, a method choice for speed made by the lead's
-rule that records may change); patient images are checked whole, as before.
+the NPS does not read no longer stops it, a method choice for speed; records may
+change); patient images are checked whole, as before.
 
 References
 ----------

@@ -29,8 +29,8 @@ may be runs on a decimated copy: at most 256 pixels a side and about 16 slices, 
 may fall between two of them); in-plane it takes the pixels of the working grid the
 phantom search strides a whole volume with (every ``work_pixel_mm`` / pixel-th), so the
 search reads those pixels directly instead of striding a finer copy again.
-A rod's centre line is fitted from a few sub-stack mean images (the lead's method
-decision): its slices are split into up to 3 contiguous runs, the centre is refined
+A rod's centre line is fitted from a few sub-stack mean images (a method
+choice): its slices are split into up to 3 contiguous runs, the centre is refined
 once on each run's mean image (noise lower by the square root of the run's slice
 count, so each refinement is more stable than a per-slice one), and a straight line
 through the run centres gives every slice's centre; a rod is straight, so the line
@@ -62,8 +62,7 @@ its own length) are described, conditioned, differentiated, windowed and transfo
 the rows of 2-D arrays (:func:`_centred_esfs`, :func:`_ttf_curves`; each rod's record is
 the one it gets alone, up to the order of a few sums). Values in
 the records may therefore differ from a full-resolution, slice-by-slice pass by their
-estimation error: the lead's decision is that record values are estimates and may
-change, while the record keys, types and meaning do not, the checks of
+estimation error: record values are estimates and may change, while the record keys, types and meaning do not, the checks of
 tests/reference/ and tests/checker/ hold with their assertions unchanged, and the demo
 series keep their flags and verdicts.
 
@@ -352,7 +351,7 @@ def _screen_smoothed(image: np.ndarray, pixel_mm: float) -> np.ndarray:
     """Box mean of the insert screen: (2 h + 1) x (2 h + 1) pixels, h = ``SCREEN_BOX_HALF_MM``
     / ``pixel_mm`` rounded (at least 1), edges mirrored (as ``ndimage.uniform_filter``).
 
-    A method choice for speed (the lead's decision): the screen only says where the
+    A method choice for speed: the screen only says where the
     full-resolution search looks (it smooths its own crops by a 1 mm Gaussian as before),
     and a box of about 2 mm lowers the screen's noise by its width (3 x for 3 x 3 pixels,
     against about 3.9 x for the 1 mm Gaussian of 0.9 mm pixels) while keeping the full
@@ -1299,7 +1298,7 @@ def _centre_line(ri: RunImages, per: np.ndarray, nz: int) -> np.ndarray:
     (:func:`_tilt_is_significant`); a tilt within the scatter of the run centres about
     the line is noise, and every slice then takes the line's mean centre (the weighted
     mean of the run centres, where the line passes at the rod's middle slice). A method
-    choice (the lead's decision): the centre of a straight rod in noise is then not
+    choice: the centre of a straight rod in noise is then not
     tilted by the noise of its run centres, so its slices pool into one group
     (:func:`_pool_slices`) instead of being split by a noise tilt of a few hundredths of
     a pixel; a tilted rod keeps its line (tests/checker/test_ttf.py).

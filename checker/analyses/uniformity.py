@@ -11,7 +11,7 @@ a tenth of the phantom diameter. Means and SDs are pooled over the slices.
 - ``centre_sd_hu``: pixel SD in the centre ROI.
 
 The ROIs span the middle ``max_slices`` (16) slices of that run (32 before: a method
-choice for speed under the lead's rule that records may change; half the pixels to
+choice for speed, records may change; half the pixels to
 read and check, the same slices as the noise analysis). On invented scans the water
 CT number, uniformity and centre SD from 16 slices differ from those of 32 by at most
 0.25 HU (10 HU noise, tested), a twentieth of the tolerances.
@@ -21,7 +21,7 @@ The phantom's centre, radius and uniform slices come from the shared search of
 ROIs may sit a pixel away from where a full-resolution search would put them; the
 statistics are then taken over every pixel of the ROIs. Non-finite voxels are looked
 for on every pixel of the slices the ROIs lie on, not the whole volume (a method choice
-for speed under the lead's rule that records may change; the count is shared with the
+for speed, records may change; the count is shared with the
 noise analysis, which measures the same slices).
 
 References

@@ -13,8 +13,8 @@ thread, each read, rescaled into the float32 volume and checked for padding in o
 per slice. The Volume is the same either way (same HU, geometry, notes and errors); only
 the time differs.
 
-Record values: none of this changes a value (the lead's rule for this round allows
-documented method choices to change values; the loader makes none).
+Record values: none of this changes a value (the loader makes no method choice that
+would).
 """
 from __future__ import annotations
 
