@@ -53,6 +53,8 @@ class SeriesTask:
     #: threads an analysis may use inside this worker (0: the analyses' own default);
     #: 1 when several worker processes already share the cores
     threads: int = 0
+    #: bytes of the series' files on disk (the order of work: largest first)
+    size_bytes: int = 0
 
 
 def _thread_settings() -> tuple[tuple[Any, str], ...]:

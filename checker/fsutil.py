@@ -71,10 +71,18 @@ def file_fingerprint(paths: list[Path], *, chunk: int = 8192) -> str:
     Size plus the first and last ``chunk`` bytes of every file (headers, UIDs and the
     ends of the pixel data) identify a DICOM series without reading it whole.
     """
+    return fingerprint_and_bytes(paths, chunk=chunk)[0]
+
+
+def fingerprint_and_bytes(paths: list[Path], *, chunk: int = 8192) -> tuple[str, int]:
+    """:func:`file_fingerprint` and the files' total size in bytes (unreadable files count
+    0), from one look at each file."""
     h = hashlib.sha256()
+    total = 0
     for p in sorted(Path(x) for x in paths):
         try:
             size = p.stat().st_size
+            total += size
             h.update(p.name.encode("utf-8", "surrogateescape"))
             h.update(str(size).encode())
             with open(p, "rb") as fh:
@@ -84,4 +92,4 @@ def file_fingerprint(paths: list[Path], *, chunk: int = 8192) -> str:
                     h.update(fh.read(chunk))
         except OSError as exc:
             h.update(f"unreadable:{p}:{exc.errno}".encode())
-    return h.hexdigest()[:32]
+    return h.hexdigest()[:32], total

@@ -58,7 +58,8 @@ are exact):
   painted by one multiply per word instead of a table look-up (the same words).
 
 These are method choices for speed (values in the records may change where a
-documented method choice changes them; keys and meaning may not): here no value changes, the masks equal the previous version's voxel for voxel.
+documented method choice changes them; keys and meaning may not): here no value
+changes, the masks equal the previous version's voxel for voxel.
 """
 from __future__ import annotations
 

@@ -30,7 +30,7 @@ from .batch import (SeriesTask, default_workers, error_record, previous_record, 
                     run_local, series_id_for)
 from .baseline import BaselineStore
 from .errors import ReconauditError
-from .fsutil import atomic_write_text, file_fingerprint, safe_name, short_hash
+from .fsutil import atomic_write_text, fingerprint_and_bytes, safe_name, short_hash
 from .profile import Profile, load_profile
 from .results import dumps
 
@@ -215,20 +215,9 @@ def _threads_per_task(opts: CheckOptions, workers: int, cores: int) -> int:
     return max(1, budget // max(1, workers))
 
 
-def series_bytes(files) -> int:
-    """Bytes on disk of a series' files (0 for a file that cannot be read)."""
-    total = 0
-    for f in files:
-        try:
-            total += Path(f).stat().st_size
-        except OSError:
-            pass
-    return total
-
-
 def largest_first(tasks: list[SeriesTask]) -> list[SeriesTask]:
-    """The tasks in the order they are handed out: largest series (bytes on disk, to two
-    significant digits) first.
+    """The tasks in the order they are handed out: largest series (``size_bytes``, the
+    bytes on disk counted with the fingerprint, to two significant digits) first.
 
     Workers take the next task as they finish one, so starting with the long ones keeps
     a large series from starting last while the other workers stand idle (longest
@@ -237,7 +226,7 @@ def largest_first(tasks: list[SeriesTask]) -> list[SeriesTask]:
     say nothing about which will take longer. The outputs are sorted by id whatever the
     order of work.
     """
-    return sorted(tasks, key=lambda t: -_two_digits(series_bytes(t.source.files)))
+    return sorted(tasks, key=lambda t: -_two_digits(t.size_bytes))
 
 
 def _two_digits(n: int) -> float:
@@ -276,7 +265,7 @@ def check(opts: CheckOptions, progress_factory: Callable[[int], Any] | None = No
     digest = profile.digest()
     for src in found.series:
         sid = ids[src.key]
-        content = file_fingerprint(list(src.files))
+        content, size = fingerprint_and_bytes(list(src.files))
         previous = previous_record(out_dir, sid, content, digest)
         if previous is not None and not opts.force:
             records[sid] = previous  # resume: measured in an earlier, unfinished run
@@ -288,7 +277,7 @@ def check(opts: CheckOptions, progress_factory: Callable[[int], Any] | None = No
             continue
         tasks.append(SeriesTask(series_id=sid, source=src, content_hash=content, out_dir=str(out_dir),
                                 profile=profile, baselines=baselines, include_identifiers=opts.include_identifiers,
-                                figures=opts.figures))
+                                figures=opts.figures, size_bytes=size))
     tasks = largest_first(tasks)
     workers = _worker_count(opts, len(tasks), cores)
     for task in tasks:

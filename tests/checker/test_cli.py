@@ -233,9 +233,12 @@ def test_series_of_about_the_same_size_keep_the_discovery_order(tmp_path):
 
     from reconaudit.checker.runner import largest_first
 
+    from reconaudit.checker.fsutil import fingerprint_and_bytes
+
     tasks = []
     for name, size in (("a", 1000), ("b", 1040), ("c", 5000), ("d", 990)):
         f = tmp_path / f"{name}.dcm"
         f.write_bytes(b"\0" * size)
-        tasks.append(SimpleNamespace(name=name, source=SimpleNamespace(files=[f])))
+        tasks.append(SimpleNamespace(name=name, size_bytes=fingerprint_and_bytes([f])[1]))
+    assert [t.size_bytes for t in tasks] == [1000, 1040, 5000, 990]
     assert [t.name for t in largest_first(tasks)] == ["c", "a", "b", "d"]

@@ -35,3 +35,13 @@ def test_fingerprint_changes_with_content(tmp_path):
     h1 = file_fingerprint([a])
     a.write_bytes(b"x" * 19999 + b"y")
     assert file_fingerprint([a]) != h1
+
+
+def test_fingerprint_and_bytes_gives_the_fingerprint_and_the_total_size(tmp_path):
+    from reconaudit.checker.fsutil import fingerprint_and_bytes
+
+    a, b = tmp_path / "a.dcm", tmp_path / "b.dcm"
+    a.write_bytes(b"x" * 20000)
+    b.write_bytes(b"y" * 300)
+    digest, size = fingerprint_and_bytes([b, a, tmp_path / "missing.dcm"])
+    assert digest == file_fingerprint([a, b, tmp_path / "missing.dcm"]) and size == 20300
