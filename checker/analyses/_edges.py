@@ -1049,9 +1049,3 @@ def _pixels_near(image: np.ndarray, centre: tuple[float, float], reach: float
     yy, xx = np.mgrid[y0:y1, x0:x1].astype(float)
     near = (yy - centre[0]) ** 2 + (xx - centre[1]) ** 2 <= reach**2
     return yy[near], xx[near], image[y0:y1, x0:x1][near]
-
-
-def radial_distances(shape: tuple[int, int], centre_yx: tuple[float, float], spacing_yx_mm: tuple[float, float]) -> np.ndarray:
-    """Distance (mm) of every pixel centre to ``centre_yx`` (voxel units)."""
-    yy, xx = np.indices(shape, dtype=float)
-    return np.hypot((yy - centre_yx[0]) * spacing_yx_mm[0], (xx - centre_yx[1]) * spacing_yx_mm[1])

@@ -187,12 +187,6 @@ def disc_of(mask2d: np.ndarray) -> tuple[tuple[float, float], float, float]:
     return (cy, cx), r_eq, float(n / (np.pi * r_max**2))
 
 
-def disc_mask(shape: tuple[int, int], centre: tuple[float, float], radius: float) -> np.ndarray:
-    """Boolean (y, x) mask of pixels whose centres lie within ``radius`` of ``centre``."""
-    yy, xx = np.ogrid[: shape[0], : shape[1]]
-    return (yy - centre[0]) ** 2 + (xx - centre[1]) ** 2 <= radius**2
-
-
 def _grid_step(pixel_mm: float, work_pixel_mm: float) -> int:
     """Step of the strided working grid: the most whole pixels not coarser than
     ``work_pixel_mm``."""

@@ -616,19 +616,6 @@ def slice_maps(
     return SliceMaps(int(z), y0, x0, img, mean_k, sd_k, inside, body_c & in_range)
 
 
-def soft_tissue_sd_values(
-    image: np.ndarray, body: np.ndarray, kernel_px: int, hu_range: Sequence[float]
-) -> np.ndarray:
-    """Local SDs (``kernel_px`` box) at the soft-tissue pixels of one slice.
-
-    The same pixels as :func:`soft_tissue_mask` on that slice (pixels of the eroded body
-    whose local mean lies in ``hu_range``), computed on the body's bounding box only
-    (:func:`slice_maps`).
-    """
-    maps = slice_maps(image, body, 0, kernel_px, hu_range)
-    return np.empty(0) if maps is None else _soft_tissue_sds(maps)
-
-
 def _soft_tissue_sds(maps: SliceMaps) -> np.ndarray:
     return maps.sd_k[maps.inside & maps.tissue]
 

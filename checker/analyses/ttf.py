@@ -768,16 +768,6 @@ def _slices_of_rod(hu: np.ndarray, z: int, centre: tuple[float, float], r_px: fl
     return lo, hi
 
 
-def _disc_contrast(image: np.ndarray, centre: Sequence[float], r_px: float) -> float:
-    """Mean inside 0.6 r minus mean of the ring 1.4 r .. 2 r (crop about the centre)."""
-    y0, x0, crop = _crop(image, centre, 2.2 * r_px)
-    d = np.hypot(*(np.indices(crop.shape) - np.array([centre[0] - y0, centre[1] - x0])[:, None, None]))
-    inside, ring = crop[d <= 0.6 * r_px], crop[(d >= 1.4 * r_px) & (d <= 2.0 * r_px)]
-    if inside.size == 0 or ring.size == 0:
-        return float("nan")
-    return float(inside.mean() - ring.mean())
-
-
 def _crop(image: np.ndarray, centre: Sequence[float], half: float) -> tuple[int, int, np.ndarray]:
     y0 = max(int(math.floor(centre[0] - half)), 0)
     x0 = max(int(math.floor(centre[1] - half)), 0)
