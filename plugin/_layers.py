@@ -15,6 +15,7 @@ from typing import Any
 import numpy as np
 from scipy import ndimage
 
+from reconaudit.checker.analyses.air import KIND_WORDS
 from reconaudit.checker.results import AnalysisResult, Point, Roi, Segment, Severity
 
 from ._geometry import LayerGeometry
@@ -318,7 +319,8 @@ def overlay_rows(analysis: str, result: AnalysisResult, z_offset: int, centroids
     kinds = {int(st["id"]): st for st in result.record.get("structures") or [] if isinstance(st, dict) and "id" in st}
     for lab, centre, count in centroids or []:
         st = kinds.get(lab, {})
-        note = ", ".join(str(v) for v in (st.get("kind"), "flagged" if st.get("flagged") else "") if v)
+        kind = KIND_WORDS.get(st.get("kind"), st.get("kind"))
+        note = ", ".join(str(v) for v in (kind, "flagged" if st.get("flagged") else "") if v)
         rows.append(TableRow(analysis, f"structure {lab}", str(count), note or "label", shift_zyx(centre, z_offset), unit="voxels"))
     rows += segment_rows(analysis, ov.segments, z_offset)
     for i, r in enumerate(ov.rois, start=1):

@@ -4,7 +4,8 @@ from __future__ import annotations
 import numpy as np
 
 from reconaudit.checker.results import Segment
-from reconaudit.plugin._layers import format_value, record_rows, segment_rows, short_source, split_unit
+from reconaudit.checker.results import AnalysisResult
+from reconaudit.plugin._layers import format_value, overlay_rows, record_rows, segment_rows, short_source, split_unit
 
 
 def test_units_come_from_the_key_suffix():
@@ -39,3 +40,15 @@ def test_segment_rows_one_per_slice_pointing_at_the_strongest():
     assert [r.slice_index for r in rows] == [12, 14]
     assert rows[0].value == "7" and rows[0].centre_zyx_vox == (12.0, 5.0, 5.0)
     assert "2 lines" in rows[0].note and "strongest: streak 0 deg" in rows[0].note
+
+
+def test_structure_rows_name_the_kind_in_words():
+    """The table says what a structure in the air is in words ("leaving the scanned
+    slices"), not the record's key."""
+    result = AnalysisResult("air", {"structures": [{"id": 1, "kind": "leaves_scan", "flagged": False},
+                                                   {"id": 2, "kind": "isolated", "flagged": True}]})
+    rows = overlay_rows("air", result, 0, [(1, (8.0, 10.0, 12.0), 19712), (2, (6.0, 5.0, 5.0), 512)])
+    notes = {r.item: r for r in rows}
+    assert notes["structure 1"].unit == "voxels" and notes["structure 1"].value == "19712"
+    assert notes["structure 1"].note == "leaving the scanned slices"
+    assert notes["structure 2"].note == "isolated, flagged"
