@@ -83,14 +83,45 @@ def fmt(value: Any, digits: int = 4) -> str:
     return f"{f:.{digits}g}"
 
 
-def fmt_measured(value: Any, unit: str) -> str:
-    """A measured value as the table shows it: CT numbers (HU) to 0.01 HU (0.1 HU from
-    100 HU up), so a water value near 0 does not show noise digits; other quantities
-    with 4 significant digits (:func:`fmt`)."""
+#: decimals a measured value is shown with, by unit (common practice, no source): CT
+#: numbers to 0.01 HU (0.1 HU from 100 HU up), spatial frequencies to 0.001 mm⁻¹ (finer
+#: than the NPS and TTF curves' sample spacing), angles to 1 degree; a number without a
+#: unit as :data:`DECIMALS_BY_METRIC` says (the streak index to 0.01). Fixed decimals, so a column of values lines up and
+#: 0.170 does not read as the less precise 0.17.
+DECIMALS_BY_UNIT: dict[str, int] = {"HU": 2, "mm⁻¹": 3, "deg": 0}
+#: decimals of measured values without a unit, by metric key (others: 4 significant digits)
+DECIMALS_BY_METRIC: dict[str, int] = {"streaks.index": 2}
+
+
+def fmt_fixed(value: Any, decimals: int) -> str:
+    """A number with ``decimals`` decimals (whole numbers as they are), or an en dash when missing."""
     f = finite_number(value)
-    if unit != "HU" or f is None or (f == int(f) and abs(f) < 1e6):
+    if f is None:
+        return "–"
+    if f == int(f) and abs(f) < 1e6:
+        return str(int(f))
+    return f"{f:.{decimals}f}"
+
+
+def fmt_measured(value: Any, unit: str) -> str:
+    """A measured value as the report shows it: fixed decimals by unit
+    (:data:`DECIMALS_BY_UNIT`; CT numbers from 100 HU up to 0.1 HU), so a water value near
+    0 does not show noise digits; a unit not listed with 4 significant digits (:func:`fmt`)."""
+    f = finite_number(value)
+    if unit not in DECIMALS_BY_UNIT or f is None:
         return fmt(value)
-    return f"{f:.1f}" if abs(f) >= 100 else f"{f:.2f}"
+    decimals = DECIMALS_BY_UNIT[unit]
+    if unit == "HU" and abs(f) >= 100:
+        decimals = 1
+    return fmt_fixed(f, decimals)
+
+
+def fmt_metric(key: str, value: Any, unit: str) -> str:
+    """Measured value ``key`` as the report shows it (:data:`DECIMALS_BY_METRIC`, else
+    :func:`fmt_measured`)."""
+    if key in DECIMALS_BY_METRIC:
+        return fmt_fixed(value, DECIMALS_BY_METRIC[key])
+    return fmt_measured(value, unit)
 
 
 def _metric_label(key: str) -> tuple[str, str]:
@@ -257,8 +288,8 @@ def _measurement_rows(series: Mapping[str, Any]) -> list[dict[str, str]]:
     for key in list(current) + [k for k in base if k not in current]:
         label, unit = _metric_label(key)
         now, then = current.get(key), base.get(key)
-        rows.append({"key": key, "label": label, "unit": unit, "value": fmt_measured(now, unit),
-                     "baseline": fmt_measured(then, unit),
+        rows.append({"key": key, "label": label, "unit": unit, "value": fmt_metric(key, now, unit),
+                     "baseline": fmt_metric(key, then, unit),
                      "change": _change(now, then)})
     return rows
 
@@ -292,11 +323,11 @@ def _edge_rows(series: Mapping[str, Any]) -> list[dict[str, str]]:
             "kind": str(e.get("kind") or "edge"),
             "contrast": "–" if contrast is None else f"{contrast:+.0f}",
             "cnr": fmt(e.get("contrast_to_noise"), 3),
-            "f50": fmt(f50, 3),
-            "f10": fmt(e.get("f10_per_mm"), 3),
+            "f50": fmt_measured(f50, "mm⁻¹"),
+            "f10": fmt_measured(e.get("f10_per_mm"), "mm⁻¹"),
             "reliable": reliable,
             "reason": "" if reliable else str(e.get("reason") or "marked unreliable"),
-            "baseline": fmt(ref_f50, 3),
+            "baseline": fmt_measured(ref_f50, "mm⁻¹"),
             "change": _change(f50, ref_f50),
         })
     return rows
@@ -450,6 +481,8 @@ def report_context(
         "include_identifiers": include_identifiers,
         "safety_notice": SAFETY_NOTICE,
         "fmt": fmt,
+        "fmt_measured": fmt_measured,
+        "fmt_metric": fmt_metric,
     }
 
 

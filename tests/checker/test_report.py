@@ -400,9 +400,21 @@ def test_an_f50_beyond_the_recorded_curve_is_not_shown_as_a_value():
 
 @pytest.mark.parametrize("value, unit, shown", [
     (-0.07615, "HU", "-0.08"), (4.789, "HU", "4.79"), (-1000.0, "HU", "-1000"), (-711.46, "HU", "-711.5"),
-    (0.08363, "mm⁻¹", "0.08363"), (None, "HU", "–"), (float("nan"), "HU", "–"), (35, "", "35"),
+    (0.08363, "mm⁻¹", "0.084"), (0.17, "mm⁻¹", "0.170"), (59.6, "deg", "60"), (None, "HU", "–"),
+    (float("nan"), "HU", "–"), (35, "", "35"), (0.004321, "", "0.004321"),
 ])
-def test_measured_values_show_ct_numbers_to_a_hundredth_of_a_hu(value, unit, shown):
+def test_measured_values_show_fixed_decimals_by_unit(value, unit, shown):
+    """CT numbers to 0.01 HU, spatial frequencies to 0.001 mm⁻¹ with trailing zeros kept (a
+    column lines up, and 0.170 is not shown as 0.17), angles to a degree; a number without
+    a unit keeps 4 significant digits."""
     from reconaudit.checker.report.html import fmt_measured
 
     assert fmt_measured(value, unit) == shown
+
+
+def test_streak_index_shows_two_decimals():
+    from reconaudit.checker.report.html import fmt_metric
+
+    assert fmt_metric("streaks.index", 1.629, "") == "1.63"
+    assert fmt_metric("streaks.index", 2.0, "") == "2"
+    assert fmt_metric("nps.f_av_per_mm", 0.17, "mm⁻¹") == "0.170"
