@@ -155,6 +155,36 @@ def finite_number(value: Any) -> float | None:
     return f if math.isfinite(f) else None
 
 
+#: decimals a measured value is shown with, by unit, in the report and the viewer
+#: (common practice, no source): CT numbers to 0.01 HU (0.1 HU from 100 HU up), spatial
+#: frequencies to 0.001 cycles/mm (finer than the NPS and TTF curves' sample spacing),
+#: angles to 1 degree. Fixed decimals, so a column lines up and 0.170 does not read as
+#: the less precise 0.17.
+DECIMALS_BY_UNIT: dict[str, int] = {"HU": 2, "mm⁻¹": 3, "cycles/mm": 3, "deg": 0, "°": 0}
+
+
+def fixed_decimals(value: float, decimals: int) -> str:
+    """``value`` with ``decimals`` decimals; a whole number as it is (``-1000``, ``30``)."""
+    if value == int(value) and abs(value) < 1e6:
+        return str(int(value))
+    return f"{value:.{decimals}f}"
+
+
+def display_number(value: Any, unit: str) -> str | None:
+    """A measured number as the report and the viewer show it: :data:`DECIMALS_BY_UNIT`
+    for the units it lists, else 4 significant digits; None when ``value`` is no finite
+    number."""
+    f = finite_number(value)
+    if f is None:
+        return None
+    decimals = DECIMALS_BY_UNIT.get(unit)
+    if decimals is None:
+        return str(int(f)) if f == int(f) and abs(f) < 1e6 else f"{f:.4g}"
+    if unit == "HU" and abs(f) >= 100:
+        decimals = 1
+    return fixed_decimals(f, decimals)
+
+
 def _compact(value: Any) -> str:
     """One value as strict JSON on one line; numpy values, enums and non-finite floats
     are converted (``to_jsonable``) only when the value needs it."""

@@ -241,7 +241,7 @@ def texture_rows(record: Mapping[str, Any]) -> list[TableRow]:
             rows.append(TableRow(COMPARE, what, format_value(item["ratio"]), what + " (test / reference)", unit="ratio"))
     sd = (record.get("difference_statistics") or {}).get("sd_diff_hu")
     if sd is not None:
-        rows.append(TableRow(COMPARE, "difference noise", format_value(sd), "SD of the smoothed difference image (inside the body)", unit="HU"))
+        rows.append(TableRow(COMPARE, "difference noise", format_value(sd, "HU"), "SD of the smoothed difference image (inside the body)", unit="HU"))
     return rows
 
 

@@ -16,7 +16,7 @@ import numpy as np
 from scipy import ndimage
 
 from reconaudit.checker.analyses.air import KIND_WORDS
-from reconaudit.checker.results import AnalysisResult, Point, Roi, Segment, Severity
+from reconaudit.checker.results import AnalysisResult, Point, Roi, Segment, Severity, display_number
 
 from ._geometry import LayerGeometry
 
@@ -114,8 +114,9 @@ def _meta(role: str, analysis: str, source: str, z_offset: int, **extra: Any) ->
     return {ROLE_KEY: role, "reconaudit_analysis": analysis, SOURCE_KEY: source, OFFSET_KEY: int(z_offset), **extra}
 
 
-def format_value(value: Any) -> str:
-    """A number as a short readable string (4 significant digits); yes/no; '—' for no value."""
+def format_value(value: Any, unit: str = "") -> str:
+    """A value as the table shows it: a number as the report shows it (fixed decimals by
+    ``unit``, e.g. 0.01 HU; else 4 significant digits); yes/no; '—' for no value."""
     if value is None:
         return "—"
     if isinstance(value, (bool, np.bool_)):
@@ -126,7 +127,7 @@ def format_value(value: Any) -> str:
         v = float(value)
         if not math.isfinite(v):
             return "n/a"
-        return f"{v:.4g}"
+        return display_number(v, unit)
     return str(value)
 
 
@@ -304,8 +305,8 @@ def record_rows(analysis: str, record: dict[str, Any]) -> list[TableRow]:
                 continue
             if key == "applicable" and value is True:
                 continue
-            text = format_value(value)
             name, unit = split_unit(key)
+            text = format_value(value, unit)
             if len(text) > 16:  # long text reads better in the wide column
                 rows.append(TableRow(analysis, name, "", text))
             else:
@@ -329,7 +330,7 @@ def overlay_rows(analysis: str, result: AnalysisResult, z_offset: int, centroids
         rows.append(TableRow(analysis, r.label or f"ROI {i}", "", note, shift_zyx(centre, z_offset)))
     for i, p in enumerate(ov.points, start=1):
         what, unit = POINT_MEANINGS.get(analysis, ("centre", ""))
-        rows.append(TableRow(analysis, p.label or f"point {i}", format_value(p.value), what, shift_zyx(p.zyx_vox, z_offset), unit=unit))
+        rows.append(TableRow(analysis, p.label or f"point {i}", format_value(p.value, unit), what, shift_zyx(p.zyx_vox, z_offset), unit=unit))
     return rows
 
 

@@ -24,7 +24,7 @@ from .. import SAFETY_NOTICE
 from ..history import flatten_metrics
 from ..identifiers import WITHHELD
 from ..volume import IDENTIFIER_KEYS, SAFE_METADATA_KEYS
-from ..results import finite_number
+from ..results import display_number, finite_number, fixed_decimals
 
 _TEMPLATES = Path(__file__).with_name("templates")
 
@@ -83,12 +83,6 @@ def fmt(value: Any, digits: int = 4) -> str:
     return f"{f:.{digits}g}"
 
 
-#: decimals a measured value is shown with, by unit (common practice, no source): CT
-#: numbers to 0.01 HU (0.1 HU from 100 HU up), spatial frequencies to 0.001 mm⁻¹ (finer
-#: than the NPS and TTF curves' sample spacing), angles to 1 degree; a number without a
-#: unit as :data:`DECIMALS_BY_METRIC` says (the streak index to 0.01). Fixed decimals, so a column of values lines up and
-#: 0.170 does not read as the less precise 0.17.
-DECIMALS_BY_UNIT: dict[str, int] = {"HU": 2, "mm⁻¹": 3, "deg": 0}
 #: decimals of measured values without a unit, by metric key (others: 4 significant digits)
 DECIMALS_BY_METRIC: dict[str, int] = {"streaks.index": 2}
 
@@ -96,24 +90,15 @@ DECIMALS_BY_METRIC: dict[str, int] = {"streaks.index": 2}
 def fmt_fixed(value: Any, decimals: int) -> str:
     """A number with ``decimals`` decimals (whole numbers as they are), or an en dash when missing."""
     f = finite_number(value)
-    if f is None:
-        return "–"
-    if f == int(f) and abs(f) < 1e6:
-        return str(int(f))
-    return f"{f:.{decimals}f}"
+    return "–" if f is None else fixed_decimals(f, decimals)
 
 
 def fmt_measured(value: Any, unit: str) -> str:
-    """A measured value as the report shows it: fixed decimals by unit
-    (:data:`DECIMALS_BY_UNIT`; CT numbers from 100 HU up to 0.1 HU), so a water value near
-    0 does not show noise digits; a unit not listed with 4 significant digits (:func:`fmt`)."""
-    f = finite_number(value)
-    if unit not in DECIMALS_BY_UNIT or f is None:
-        return fmt(value)
-    decimals = DECIMALS_BY_UNIT[unit]
-    if unit == "HU" and abs(f) >= 100:
-        decimals = 1
-    return fmt_fixed(f, decimals)
+    """A measured value as the report shows it (:func:`~reconaudit.checker.results.display_number`:
+    fixed decimals by unit, e.g. CT numbers to 0.01 HU, so a water value near 0 does not
+    show noise digits), or an en dash when missing."""
+    text = display_number(value, unit)
+    return "–" if text is None else text
 
 
 def fmt_metric(key: str, value: Any, unit: str) -> str:

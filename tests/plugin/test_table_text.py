@@ -25,6 +25,17 @@ def test_record_rows_carry_units_and_readable_values():
     assert format_value(float("nan")) == "n/a" and format_value(True) == "yes"
 
 
+def test_table_values_have_the_reports_decimals():
+    """The viewer's table shows a value as the report does (fixed decimals by unit)."""
+    from reconaudit.checker.report.html import fmt_measured
+
+    rows = {r.item: r for r in record_rows("air", {"noise_hu": 7.2634, "mean_hu": -999.96, "f50_per_mm": 0.17})}
+    assert rows["noise"].value == "7.26" and rows["mean"].value == "-1000.0" and rows["f50"].value == "0.170"
+    for value, unit in ((7.2634, "HU"), (0.17, "mm⁻¹"), (0.08363, "cycles/mm"), (12.5, "")):
+        report_unit = "mm⁻¹" if unit == "cycles/mm" else unit
+        assert format_value(value, unit) == fmt_measured(value, report_unit)
+
+
 def test_layer_tags_are_short():
     assert short_source("Torso FH-T1, 120 deg arc (series 4)") == "series 4"
     assert short_source("Torso FH-T1, 120 deg arc (series 4) [2/3]") == "series 4 [2/3]"
