@@ -14,7 +14,14 @@ alone over the volume's tasks (slab binning, slab masks, texture, FFT and cell s
 one thread and on ``--threads`` threads, alternating stages and thread counts so that a
 load change does not skew one stage; the stage inputs are formed once beforehand.
 
+``--flagged`` times the localisation of flagged slices alone (:func:`streaks.localise`,
+after one screen), on one thread: the committed demo series with streaks (limited angle,
+metal) and the synthetic volume with two added streaks on every slice (all slices
+flagged). It prints the median CPU ms per flagged slice and the localisation's share of
+the whole analysis's CPU time.
+
 Run: python benchmarks/bench_streaks.py [--slices 400] [--repeats 3] [--threads 2] [--torso] [--stages]
+     [--flagged]
 """
 from __future__ import annotations
 
@@ -30,6 +37,7 @@ import numpy as np
 
 from reconaudit.checker.analyses import streaks
 from reconaudit.checker.regions import find_regions
+from reconaudit.checker.results import Overlays
 from reconaudit.checker.volume import Volume
 
 
@@ -182,6 +190,70 @@ def print_stages(vol: Volume, regions, threads: int, repeats: int) -> None:
         print(f"first-screen stages, {th} thread(s), median of {repeats}, wall/CPU ms: {parts}")
 
 
+DEMO_STREAK_SERIES = ("torso_limited_angle", "torso_metal")
+
+
+def streaked_volume(nz: int, n: int = 512) -> Volume:
+    """:func:`synthetic_volume` with two thin straight streaks (30 and 115 deg, +-40 HU) on every slice."""
+    vol = synthetic_volume(nz, n)
+    yy, xx = np.mgrid[0:n, 0:n].astype(np.float32)
+    c = (n - 1) / 2.0
+    for angle, offset, contrast in [(30.0, 20.0, 40.0), (115.0, -35.0, -40.0)]:
+        a = np.radians(angle)
+        on = np.abs((yy - c) * np.cos(a) + (xx - c) * np.sin(a) - offset) < 1.0
+        vol.hu[:, on & (vol.hu[0] > -2000.0)] += np.float32(contrast)
+    return vol
+
+
+def localisation_inputs(vol: Volume, regions) -> tuple:
+    """What :func:`streaks.localise` needs, from one screen (as :func:`streaks.summarise` forms it)."""
+    cfg = streaks.resolve_settings(None)
+    screen = streaks.screen_volume(vol, regions, cfg)
+    flagged = [z for z in screen.valid_slices if screen.indices[z] > cfg["tolerance_index"]]
+    mean = np.mean([screen.profiles[z] for z in screen.valid_slices], axis=0)
+    wedge = streaks.missing_wedge(mean, float(cfg["angle_bin_deg"]), float(cfg["wedge_level"]), float(cfg["wedge_min_deg"]))
+    pairs = {z: streaks.dense_pair_lines(streaks.bin_slice(vol.hu[z], screen.factor), cfg) for z in flagged}
+    return screen, flagged, wedge, cfg, pairs
+
+
+def print_flagged(name: str, vol: Volume, repeats: int) -> None:
+    """Median CPU time of the localisation per flagged slice and its share of the whole analysis (one thread)."""
+    regions = find_regions(vol)
+    screen, flagged, wedge, cfg, pairs = localisation_inputs(vol, regions)
+    if not flagged:
+        print(f"{name}: no flagged slice")
+        return
+
+    def localise() -> None:
+        overlays = Overlays(maps={"streak_strength": np.zeros(vol.shape, dtype=np.float32)})
+        streaks.localise(vol, regions, screen, flagged, wedge, cfg, overlays, pairs)
+
+    cpu_loc, cpu_all = [], []
+    for _ in range(max(1, repeats)):  # alternating, so that a change of the machine's load hits both
+        c0 = time.process_time()
+        localise()
+        cpu_loc.append(time.process_time() - c0)
+        c0 = time.process_time()
+        streaks.analyse(vol, regions)
+        cpu_all.append(time.process_time() - c0)
+    loc, whole = statistics.median(cpu_loc), statistics.median(cpu_all)
+    n = min(len(flagged), int(cfg["max_localised_slices"]))
+    print(f"{name} {vol.shape}: {n} slices localised, CPU {loc * 1e3:.1f} ms ({loc / n * 1e3:.2f} ms per slice), "
+          f"{loc / whole:.2f} of the whole analysis ({whole * 1e3:.1f} ms), median of {repeats}, 1 thread")
+
+
+def flagged_benchmarks(slices: int, repeats: int) -> None:
+    """:func:`print_flagged` for the demo series with streaks and the streaked synthetic volume."""
+    from reconaudit.checker.load import load_path
+
+    streaks.SCREEN_THREADS = 1
+    root = Path(__file__).resolve().parents[1] / "sample_volumes" / "fernhollow" / "20240611"
+    for name in DEMO_STREAK_SERIES:
+        if (root / name).is_dir():
+            print_flagged(name, load_path(root / name)[0], repeats)
+    print_flagged("synthetic with streaks", streaked_volume(slices), repeats)
+
+
 def main() -> None:
     parser = argparse.ArgumentParser(description=__doc__)
     parser.add_argument("--slices", type=int, default=400)
@@ -189,7 +261,12 @@ def main() -> None:
     parser.add_argument("--threads", type=int, default=None, help="threads of the screen (default: the module's)")
     parser.add_argument("--torso", action="store_true", help="the harness's torso-like volume instead of the ellipse")
     parser.add_argument("--stages", action="store_true", help="also time the first screen's stages alone")
+    parser.add_argument("--flagged", action="store_true",
+                        help="only time the localisation of flagged slices (demo series, streaked volume of --slices)")
     args = parser.parse_args()
+    if args.flagged:
+        flagged_benchmarks(args.slices, max(args.repeats, 7))
+        return
     if args.threads is not None:
         streaks.SCREEN_THREADS = max(1, args.threads)
     vol = torso_volume(args.slices) if args.torso else synthetic_volume(args.slices)

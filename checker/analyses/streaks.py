@@ -1573,24 +1573,99 @@ def pool_pair_lines(per_slice: dict[int, list[tuple[float, float]]], tol_deg: fl
 
 
 # --------------------------------------------------------------------------- localisation
-def directional_component(texture: SliceTexture, bins: SpectralBins, angle_deg: float, window_deg: float) -> tuple[np.ndarray, float]:
-    """Back-transform of the residual's spectrum in a Gaussian angular window at ``angle_deg``.
+# A flagged slice is localised along 2-4 directions. What does not depend on the
+# direction is computed once per slice (the ring means of the spectrum, the weighted
+# pixels' coordinates), the angular windows once per volume and angle
+# (:class:`AngularWindows`), and the directions go through together: one inverse FFT and
+# one blur (:func:`banded_blur`) over the stack of components.
+class AngularWindows:
+    """Gaussian angular windows on the rfft2 grid of ``bins``, made once per angle.
 
-    Returns the component and its expected variance under isotropic texture of the
-    measured ring levels (Parseval), used to make strengths dimensionless.
+    The window at ``angle_deg`` is ``exp(-d^2 / (2 w^2))`` inside the band of ``bins``
+    (0 outside), with ``d`` the distance (deg, period 180) between the orientation of
+    the lines a frequency carries and ``angle_deg``. The slices of a volume share the
+    angles of its missing wedge and, rounded to 0.1 deg, most peaks, and series of one
+    scanner share them too: :func:`angular_windows` keeps one instance per grid, which
+    holds the last :data:`KEPT_WINDOWS` angles' windows (threads may share it: a window
+    computed twice is the same).
     """
-    d = np.abs(bins.line_angle_deg - np.float32(angle_deg)) % 180.0
-    d = np.minimum(d, 180.0 - d)
-    band = (bins.radius >= bins.radius.ravel()[bins.sample].min()) & (bins.radius <= bins.radius.ravel()[bins.sample].max())
-    window = (np.exp(-0.5 * (d / window_deg) ** 2) * band).astype(np.float32)
-    component = sfft.irfft2(texture.spectrum * window, s=texture.residual.shape)
-    p = power(texture.spectrum).ravel()[bins.sample].astype(np.float64)
-    ring_mean = np.bincount(bins.ring, weights=p, minlength=bins.n_rings) / np.maximum(bins.ring_count, 1)
-    w2 = window.ravel()[bins.sample].astype(np.float64) ** 2
+
+    def __init__(self, bins: SpectralBins, window_deg: float) -> None:
+        self.bins = bins
+        self.window_deg = float(window_deg)
+        band_radius = bins.radius.ravel()[bins.sample]
+        self._band = (bins.radius >= band_radius.min()) & (bins.radius <= band_radius.max())
+        self._made: dict[float, np.ndarray] = {}
+
+    def window(self, angle_deg: float) -> np.ndarray:
+        """The window at ``angle_deg`` (float32, rfft2 grid, read-only)."""
+        found = self._made.get(angle_deg)
+        if found is None:
+            if len(self._made) >= KEPT_WINDOWS:
+                self._made.clear()
+            found = self._made[angle_deg] = self._compute(angle_deg)
+        return found
+
+    def _compute(self, angle_deg: float) -> np.ndarray:
+        d = np.abs(self.bins.line_angle_deg - np.float32(angle_deg)) % 180.0
+        d = np.minimum(d, 180.0 - d)
+        window = (np.exp(-0.5 * (d / self.window_deg) ** 2) * self._band).astype(np.float32)
+        window.flags.writeable = False
+        return window
+
+
+#: angular windows kept per grid (about 130 kB each on a 256 x 256 grid)
+KEPT_WINDOWS = 24
+
+
+@functools.lru_cache(maxsize=4)
+def angular_windows(shape: tuple[int, int], band: tuple[float, float], bin_deg: float,
+                    window_deg: float) -> AngularWindows:
+    """The :class:`AngularWindows` of the grid of :func:`spectral_bins` ``(shape, band, bin_deg)``
+    (cached: one per grid and window width)."""
+    return AngularWindows(spectral_bins(shape, band, bin_deg), window_deg)
+
+
+def ring_mean_power(spectrum: np.ndarray, bins: SpectralBins) -> np.ndarray:
+    """Mean power ``|F|^2`` of each frequency ring of the band (float64): the level an
+    isotropic texture of the measured spectrum puts at each frequency."""
+    p = power(spectrum.ravel()[bins.sample]).astype(np.float64)
+    return np.bincount(bins.ring, weights=p, minlength=bins.n_rings) / np.maximum(bins.ring_count, 1)
+
+
+def directional_components(texture: SliceTexture, bins: SpectralBins, angles: list[float],
+                           windows: AngularWindows) -> tuple[np.ndarray, np.ndarray]:
+    """Back-transforms of the residual's spectrum in the angular windows at ``angles``.
+
+    Returns the components, a float32 ``(len(angles), ny, nx)`` stack (one inverse FFT
+    over the windowed spectra), and their expected variances under isotropic texture of
+    the measured ring levels (Parseval), used to make strengths dimensionless.
+
+    References
+    ----------
+    .. [1] Kak & Slaney (1988), ch. 3 (Fourier slice theorem: lines of one orientation
+       keep their energy on the frequency line perpendicular to it).
+    """
     ny, nx = texture.residual.shape
-    # rfft2 holds half the plane: every sample except kx = 0 (and Nyquist) counts twice.
-    expected = 2.0 * float(np.sum(ring_mean[bins.ring] * w2)) / (ny * nx) ** 2
-    return component.astype(np.float32), max(expected, 1e-12)
+    ring_level = ring_mean_power(texture.spectrum, bins)[bins.ring]
+    windowed = np.empty((len(angles),) + texture.spectrum.shape, dtype=texture.spectrum.dtype)
+    expected = np.empty(len(angles), dtype=np.float64)
+    for k, angle in enumerate(angles):
+        window = windows.window(angle)
+        np.multiply(texture.spectrum, window, out=windowed[k])
+        w2 = window.ravel()[bins.sample].astype(np.float64) ** 2
+        # rfft2 holds half the plane: every sample except kx = 0 (and Nyquist) counts twice.
+        expected[k] = max(2.0 * float(np.sum(ring_level * w2)) / (ny * nx) ** 2, 1e-12)
+    components = sfft.irfft2(windowed, s=(ny, nx), axes=(-2, -1), overwrite_x=True)
+    return components.astype(np.float32, copy=False), expected
+
+
+def streak_strengths(components: np.ndarray, expected: np.ndarray, smooth_px: float) -> np.ndarray:
+    """Local RMS of each component over a Gaussian of SD ``smooth_px``, in units of its
+    expected RMS under isotropic noise (float32 stack; the blur is :func:`banded_blur`)."""
+    local = banded_blur(components * components, smooth_px, 3.0)
+    local /= expected.astype(np.float32)[:, None, None]
+    return np.sqrt(local, out=local)
 
 
 @dataclass
@@ -1602,33 +1677,63 @@ class SliceStreaks:
     # (angle_deg, start_yx, end_yx, z-score) in binned pixel coordinates
 
 
-def localise_slice(texture: SliceTexture, bins: SpectralBins, angles: list[float], cfg: dict[str, Any]) -> SliceStreaks:
-    """Streak-strength map and line segments of one slice for the given directions."""
-    shape = texture.residual.shape
-    strength = np.zeros(shape, dtype=np.float32)
-    lines = []
+@dataclass(frozen=True)
+class WeightedPixels:
+    """The pixels of a slice that carry weight, in raster order: their flat indices and
+    their row and column offsets (float32) from the slice centre."""
+
+    flat: np.ndarray
+    yy: np.ndarray
+    xx: np.ndarray
+    centre: tuple[float, float]
+
+    @classmethod
+    def of(cls, weight: np.ndarray) -> "WeightedPixels":
+        """The pixels where the boolean ``weight`` is True (gathered once for all directions)."""
+        yy, xx = centred_grid(tuple(weight.shape))
+        flat = np.flatnonzero(weight)
+        centre = ((weight.shape[0] - 1) / 2.0, (weight.shape[1] - 1) / 2.0)
+        return cls(flat=flat, yy=yy.ravel()[flat], xx=xx.ravel()[flat], centre=centre)
+
+
+def localise_slice(texture: SliceTexture, bins: SpectralBins, angles: list[float], cfg: dict[str, Any],
+                   windows: AngularWindows | None = None) -> SliceStreaks:
+    """Streak-strength map and line segments of one slice for the given directions.
+
+    The strength map is the largest strength over the directions, on the weighted
+    pixels (0 elsewhere); the segments are the strongest ``max_segments_per_slice``
+    lines of all directions. ``windows`` (made here if not given) may be shared by
+    the slices of a volume.
+    """
+    strength = np.zeros(texture.residual.shape, dtype=np.float32)
+    if not angles:
+        return SliceStreaks(strength=strength)
+    if windows is None:
+        windows = AngularWindows(bins, float(cfg["direction_window_deg"]))
+    components, expected = directional_components(texture, bins, angles, windows)
     smooth_px = max(2.0, 2.0 * float(cfg["highpass_sigma_px"]))
-    for angle in angles:
-        comp, expected = directional_component(texture, bins, angle, float(cfg["direction_window_deg"]))
-        local = np.sqrt(gaussian_blur(comp * comp, smooth_px, 3.0) / np.float32(expected))
-        np.maximum(strength, local * texture.weight, out=strength)
-        lines += lines_at_angle(comp, texture.weight, angle, cfg)
+    # the strengths are >= 0, so the largest over the directions times the 0/1 weight is
+    # the largest of the weighted strengths
+    np.multiply(streak_strengths(components, expected, smooth_px).max(axis=0), texture.weight, out=strength)
+    pixels = WeightedPixels.of(texture.weight)
+    lines = []
+    for comp, angle in zip(components, angles):
+        lines += lines_at_angle(comp.ravel()[pixels.flat].astype(np.float64), pixels, angle, cfg)
     lines.sort(key=lambda ln: -ln[3])
     return SliceStreaks(strength=strength, lines=lines[: int(cfg["max_segments_per_slice"])])
 
 
-def line_frame(shape: tuple[int, int], angle_deg: float) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray, tuple[float, float]]:
-    """Offset ``t`` across and position ``s`` along lines of ``angle_deg`` for every pixel.
+def line_frame(pixels: WeightedPixels, angle_deg: float) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
+    """Offset ``t`` across and position ``s`` along lines of ``angle_deg`` for the weighted pixels.
 
     The line direction in array terms is u = (-sin a, cos a) (so ``atan2(-uy, ux) = a``);
-    the normal is n = (cos a, sin a). Returns t, s, u, n and the centre (y, x).
+    the normal is n = (cos a, sin a); both are measured from the slice centre
+    (``pixels.centre``). Returns t, s (float64), u and n.
     """
     a = math.radians(angle_deg)
     u = np.array([-math.sin(a), math.cos(a)])
     n = np.array([math.cos(a), math.sin(a)])
-    cy, cx = (shape[0] - 1) / 2.0, (shape[1] - 1) / 2.0
-    yy, xx = centred_grid(tuple(shape))
-    return yy * n[0] + xx * n[1], yy * u[0] + xx * u[1], u, n, (cy, cx)
+    return pixels.yy * n[0] + pixels.xx * n[1], pixels.yy * u[0] + pixels.xx * u[1], u, n
 
 
 @functools.lru_cache(maxsize=4)
@@ -1642,15 +1747,25 @@ def centred_grid(shape: tuple[int, int]) -> tuple[np.ndarray, np.ndarray]:
     return yy, xx
 
 
-def lines_at_angle(comp: np.ndarray, weight: np.ndarray, angle_deg: float, cfg: dict[str, Any]) -> list:
-    """Streak lines of one direction: outlying line means of the directional component."""
-    t, s, u, n, (cy, cx) = line_frame(comp.shape, angle_deg)
-    off = np.rint(t[weight]).astype(np.int64)
+def lines_at_angle(values: np.ndarray, pixels: WeightedPixels, angle_deg: float, cfg: dict[str, Any]) -> list:
+    """Streak lines of one direction: outlying line means of the directional component.
+
+    ``values`` holds the component (float64) at the weighted ``pixels``. Line sums
+    across offsets are a discrete Radon transform at ``angle_deg``; offsets whose
+    robust z-score exceeds ``segment_z`` (local maxima across offsets) are lines, each
+    cut to its :func:`line_extent`.
+
+    References
+    ----------
+    .. [1] Kak & Slaney (1988), ch. 3 (line integrals at one angle: a projection).
+    """
+    t, s, u, n = line_frame(pixels, angle_deg)
+    cy, cx = pixels.centre
+    off = np.rint(t).astype(np.int64)
     base = off.min()
     idx = off - base
-    vals = comp[weight].astype(np.float64)
     count = np.bincount(idx)
-    means = np.bincount(idx, weights=vals) / np.maximum(count, 1)
+    means = np.bincount(idx, weights=values) / np.maximum(count, 1)
     enough = count >= int(cfg["segment_min_px"])
     if enough.sum() < 8:
         return []
@@ -1665,7 +1780,7 @@ def lines_at_angle(comp: np.ndarray, weight: np.ndarray, angle_deg: float, cfg: 
             break
         if abs(z[i]) < np.abs(z[max(0, i - 2) : i + 3]).max():
             continue  # not the local maximum across offsets
-        extent = line_extent(comp, weight, t, s, float(i + base), float(means[i] - centre), cfg)
+        extent = line_extent(values, t, s, float(i + base), float(means[i] - centre), cfg)
         if extent is None:
             continue
         s0, s1 = extent
@@ -1676,33 +1791,40 @@ def lines_at_angle(comp: np.ndarray, weight: np.ndarray, angle_deg: float, cfg: 
     return out
 
 
-def line_extent(comp: np.ndarray, weight: np.ndarray, t: np.ndarray, s: np.ndarray, offset: float, amplitude: float, cfg: dict[str, Any]) -> tuple[float, float] | None:
-    """Longest run along a line where the running mean keeps the line's sign and level."""
-    on_line = weight & (np.abs(t - offset) <= 0.5)
+def line_extent(values: np.ndarray, t: np.ndarray, s: np.ndarray, offset: float, amplitude: float,
+                cfg: dict[str, Any]) -> tuple[float, float] | None:
+    """Longest run along a line where the running mean keeps the line's sign and level.
+
+    ``values``, ``t`` and ``s`` are the component, the offset across and the position
+    along the lines at the weighted pixels; the line holds those within half a pixel of
+    ``offset``. The run's ends are positions along the line (pixels); the first of
+    equally long runs is taken.
+    """
+    on_line = np.abs(t - offset) <= 0.5
     pos = np.rint(s[on_line]).astype(np.int64)
     if pos.size < int(cfg["segment_min_px"]):
         return None
     base = pos.min()
-    sums = np.bincount(pos - base, weights=comp[on_line].astype(np.float64))
+    sums = np.bincount(pos - base, weights=values[on_line])
     counts = np.bincount(pos - base)
     run = max(5, int(cfg["segment_min_px"]) // 2)
     local_count = ndimage.uniform_filter1d(counts.astype(float), run, mode="constant")
     mean = ndimage.uniform_filter1d(sums, run, mode="constant") / np.maximum(local_count, 1e-9)
     keep = (np.sign(amplitude) * mean >= float(cfg["segment_keep"]) * abs(amplitude)) & (local_count > 0.2)
-    best, i = (0, -1), 0
-    while i < keep.size:
-        if keep[i]:
-            j = i
-            while j < keep.size and keep[j]:
-                j += 1
-            if j - i > best[1] - best[0] + 1:
-                best = (i, j - 1)
-            i = j
-        else:
-            i += 1
-    if best[1] - best[0] + 1 < int(cfg["segment_min_px"]):
+    first, last = longest_run(keep)
+    if last - first + 1 < int(cfg["segment_min_px"]):
         return None
-    return float(best[0] + base), float(best[1] + base)
+    return float(first + base), float(last + base)
+
+
+def longest_run(keep: np.ndarray) -> tuple[int, int]:
+    """First and last index of the first longest run of True in ``keep`` ((0, -1) if none)."""
+    edges = np.diff(np.concatenate(([0], keep.view(np.int8), [0])))
+    starts, stops = np.flatnonzero(edges == 1), np.flatnonzero(edges == -1)
+    if starts.size == 0:
+        return 0, -1
+    k = int(np.argmax(stops - starts))
+    return int(starts[k]), int(stops[k]) - 1
 
 
 # --------------------------------------------------------------------------- volume
@@ -2531,26 +2653,31 @@ def localise(volume: Volume, regions: Regions | None, screen: Screen, flagged: l
     """Streak map and segments on the flagged slices (the strongest ones first, capped).
 
     The slices are localised by :data:`SCREEN_THREADS` threads; overlays are written in
-    slice order afterwards, so they do not depend on the thread count.
+    slice order afterwards, so they do not depend on the thread count. The mask of the
+    FOV and border and the angular windows are made once for all slices.
     """
-    bins = spectral_bins(screen.shape_b, tuple(float(v) for v in cfg["band_cycles_per_px"]), float(cfg["angle_bin_deg"]))
+    band, bin_deg = tuple(float(v) for v in cfg["band_cycles_per_px"]), float(cfg["angle_bin_deg"])
+    bins = spectral_bins(screen.shape_b, band, bin_deg)
+    windows = angular_windows(screen.shape_b, band, bin_deg, float(cfg["direction_window_deg"]))
     order = sorted(flagged, key=lambda z: -screen.indices[z])[: int(cfg["max_localised_slices"])]
     f = screen.factor
     ny, nx = volume.shape[1:]
     chosen = sorted(order)
+    base = base_allowed_mask(regions, f, screen.shape_b, cfg)
 
     def one(i: int) -> SliceStreaks | None:
         z = chosen[i]
-        texture = slice_texture(bin_slice(volume.hu[z], f), allowed_mask(regions, z, f, screen.shape_b, cfg), cfg)
+        allowed = allowed_mask(regions, z, f, screen.shape_b, cfg, base)
+        texture = slice_texture(bin_slice(volume.hu[z], f), allowed, cfg)
         if texture is None:
             return None
         angles = dominant_angles(screen.profiles[z], wedge, cfg, [a for a, _ in (pair_lines or {}).get(z, [])])
-        return localise_slice(texture, bins, angles, cfg)
+        return localise_slice(texture, bins, angles, cfg, windows)
 
     for z, found in zip(chosen, map_slices(one, len(chosen), SCREEN_THREADS)):
         if found is None:
             continue
-        full = np.repeat(np.repeat(found.strength, f, axis=0), f, axis=1)
+        full = found.strength if f == 1 else np.repeat(np.repeat(found.strength, f, axis=0), f, axis=1)
         overlays.maps["streak_strength"][z, : full.shape[0], : full.shape[1]] = full[:ny, :nx]
         for angle, (y0, x0), (y1, x1), zscore in found.lines:
             overlays.segments.append(

@@ -6,6 +6,8 @@ import math
 
 import numpy as np
 import pytest
+import scipy.fft as sfft
+from scipy import ndimage
 
 from reconaudit.checker.analyses import REGISTRY, streaks
 from reconaudit.checker.errors import ProfileError
@@ -817,3 +819,237 @@ def test_slab_outcomes_do_not_depend_on_the_stack_they_are_screened_in(monkeypat
         part = streaks.screen_slab_stack(vol.hu[z0:z0 + 4], masks.slab_stack(z0, z0 + 4, 4), 1, bins, cfg, 4,
                                          per_slab=True)
         assert all(np.array_equal(a, b) for a, b in zip(part, whole[z0:z0 + 4]))
+
+
+# --------------------------------------------------------------------------- localisation
+# The localisation computes the directions of a slice together (one inverse FFT and one
+# blur over the stack of components, the ring means and the pixels' coordinates once).
+# The reference below is the straightforward per-direction code path it replaced: every
+# direction's window, ring means, component, blur and full-image line masks computed
+# alone. The components, hence the lines, must be the same; the strength map equal up to
+# float32 rounding (its blur sums the taps in another order).
+def reference_directional_component(texture, bins, angle_deg, window_deg):
+    d = np.abs(bins.line_angle_deg - np.float32(angle_deg)) % 180.0
+    d = np.minimum(d, 180.0 - d)
+    band = (bins.radius >= bins.radius.ravel()[bins.sample].min()) & (bins.radius <= bins.radius.ravel()[bins.sample].max())
+    window = (np.exp(-0.5 * (d / window_deg) ** 2) * band).astype(np.float32)
+    component = sfft.irfft2(texture.spectrum * window, s=texture.residual.shape)
+    p = streaks.power(texture.spectrum).ravel()[bins.sample].astype(np.float64)
+    ring_mean = np.bincount(bins.ring, weights=p, minlength=bins.n_rings) / np.maximum(bins.ring_count, 1)
+    w2 = window.ravel()[bins.sample].astype(np.float64) ** 2
+    ny, nx = texture.residual.shape
+    expected = 2.0 * float(np.sum(ring_mean[bins.ring] * w2)) / (ny * nx) ** 2
+    return component.astype(np.float32), max(expected, 1e-12)
+
+
+def reference_line_extent(comp, weight, t, s, offset, amplitude, cfg):
+    on_line = weight & (np.abs(t - offset) <= 0.5)
+    pos = np.rint(s[on_line]).astype(np.int64)
+    if pos.size < int(cfg["segment_min_px"]):
+        return None
+    base = pos.min()
+    sums = np.bincount(pos - base, weights=comp[on_line].astype(np.float64))
+    counts = np.bincount(pos - base)
+    run = max(5, int(cfg["segment_min_px"]) // 2)
+    local_count = ndimage.uniform_filter1d(counts.astype(float), run, mode="constant")
+    mean = ndimage.uniform_filter1d(sums, run, mode="constant") / np.maximum(local_count, 1e-9)
+    keep = (np.sign(amplitude) * mean >= float(cfg["segment_keep"]) * abs(amplitude)) & (local_count > 0.2)
+    best, i = (0, -1), 0
+    while i < keep.size:
+        if keep[i]:
+            j = i
+            while j < keep.size and keep[j]:
+                j += 1
+            if j - i > best[1] - best[0] + 1:
+                best = (i, j - 1)
+            i = j
+        else:
+            i += 1
+    if best[1] - best[0] + 1 < int(cfg["segment_min_px"]):
+        return None
+    return float(best[0] + base), float(best[1] + base)
+
+
+def reference_lines_at_angle(comp, weight, angle_deg, cfg):
+    a = math.radians(angle_deg)
+    u = np.array([-math.sin(a), math.cos(a)])
+    n = np.array([math.cos(a), math.sin(a)])
+    cy, cx = (comp.shape[0] - 1) / 2.0, (comp.shape[1] - 1) / 2.0
+    yy, xx = np.mgrid[0 : comp.shape[0], 0 : comp.shape[1]].astype(np.float32)
+    yy -= np.float32(cy)
+    xx -= np.float32(cx)
+    t, s = yy * n[0] + xx * n[1], yy * u[0] + xx * u[1]
+    off = np.rint(t[weight]).astype(np.int64)
+    base = off.min()
+    idx = off - base
+    vals = comp[weight].astype(np.float64)
+    count = np.bincount(idx)
+    means = np.bincount(idx, weights=vals) / np.maximum(count, 1)
+    enough = count >= int(cfg["segment_min_px"])
+    if enough.sum() < 8:
+        return []
+    centre = float(np.median(means[enough]))
+    spread = 1.4826 * float(np.median(np.abs(means[enough] - centre)))
+    if not spread > 0:
+        return []
+    z = np.where(enough, (means - centre) / spread, 0.0)
+    out = []
+    for i in np.argsort(-np.abs(z)):
+        if abs(z[i]) < float(cfg["segment_z"]) or len(out) >= int(cfg["max_segments_per_slice"]):
+            break
+        if abs(z[i]) < np.abs(z[max(0, i - 2) : i + 3]).max():
+            continue
+        extent = reference_line_extent(comp, weight, t, s, float(i + base), float(means[i] - centre), cfg)
+        if extent is None:
+            continue
+        s0, s1 = extent
+        offset = float(i + base)
+        start = (cy + offset * n[0] + s0 * u[0], cx + offset * n[1] + s0 * u[1])
+        end = (cy + offset * n[0] + s1 * u[0], cx + offset * n[1] + s1 * u[1])
+        out.append((angle_deg, start, end, float(abs(z[i]))))
+    return out
+
+
+def reference_localise_slice(texture, bins, angles, cfg):
+    strength = np.zeros(texture.residual.shape, dtype=np.float32)
+    lines = []
+    smooth_px = max(2.0, 2.0 * float(cfg["highpass_sigma_px"]))
+    for angle in angles:
+        comp, expected = reference_directional_component(texture, bins, angle, float(cfg["direction_window_deg"]))
+        local = np.sqrt(streaks.gaussian_blur(comp * comp, smooth_px, 3.0) / np.float32(expected))
+        np.maximum(strength, local * texture.weight, out=strength)
+        lines += reference_lines_at_angle(comp, texture.weight, angle, cfg)
+    lines.sort(key=lambda ln: -ln[3])
+    return strength, lines[: int(cfg["max_segments_per_slice"])]
+
+
+def streaked_disc(n: int = 192, seed: int = 11, lines=((25.0, 12.0, 25.0), (110.0, -20.0, -30.0))) -> np.ndarray:
+    """A 40 HU disc in air with noise (SD 10 HU) and thin streaks (angle, offset, contrast)
+    across it, by default at 25 and 110 deg."""
+    rng = np.random.default_rng(seed)
+    yy, xx = np.mgrid[0:n, 0:n]
+    c = (n - 1) / 2.0
+    img = np.where((yy - c) ** 2 + (xx - c) ** 2 <= (0.4 * n) ** 2, 40.0, -1000.0).astype(np.float32)
+    img += rng.normal(0.0, 10.0, (n, n)).astype(np.float32)
+    for angle, offset, contrast in lines:
+        a = math.radians(angle)
+        t = (yy - c) * math.cos(a) + (xx - c) * math.sin(a)
+        img[np.abs(t - offset) < 0.7] += contrast
+    return img
+
+
+def limited_angle_like(n: int = 160, seed: int = 12) -> np.ndarray:
+    """Noise with no content at line orientations 60-100 deg and extra energy along the wedge's
+    two boundaries, on a disc, with a thin streak along each boundary (as limited angular
+    coverage leaves them)."""
+    rng = np.random.default_rng(seed)
+    ky = np.fft.fftfreq(n)[:, None]
+    kx = np.fft.rfftfreq(n)[None, :]
+    angle = streaks.line_angle_of_frequency(ky, kx)
+    gain = np.where((angle > 60.0) & (angle < 100.0), 0.0, 1.0)
+    gain[(np.abs(angle - 60.0) < 1.5) | (np.abs(angle - 100.0) < 1.5)] = 4.0
+    noise = np.fft.irfft2(np.fft.rfft2(rng.normal(0.0, 10.0, (n, n))) * gain, s=(n, n))
+    yy, xx = np.mgrid[0:n, 0:n]
+    c = (n - 1) / 2.0
+    disc = np.where((yy - c) ** 2 + (xx - c) ** 2 <= (0.35 * n) ** 2, 60.0, 0.0)
+    for angle, offset, contrast in [(60.0, -9.0, 35.0), (60.0, 25.0, 30.0), (100.0, 15.0, -35.0)]:
+        a = math.radians(angle)
+        disc[np.abs((yy - c) * math.cos(a) + (xx - c) * math.sin(a) - offset) < 0.7] += contrast
+    return (disc + noise).astype(np.float32)
+
+
+def texture_of(image: np.ndarray, cfg):
+    shape = image.shape
+    bins = streaks.spectral_bins(shape, tuple(float(v) for v in cfg["band_cycles_per_px"]), float(cfg["angle_bin_deg"]))
+    allowed = streaks.base_allowed_mask(None, 1, shape, cfg)
+    return streaks.slice_texture(image, allowed, cfg), bins
+
+
+@pytest.mark.parametrize("image,angles", [
+    (streaked_disc(), [25.0, 110.0, 70.3]),
+    (streaked_disc(n=128, seed=4), [110.0, 25.0]),
+    # along the rows and columns of an even grid every pixel lies half a pixel from two
+    # line offsets: both lines count it
+    (streaked_disc(n=128, seed=5, lines=((0.0, 10.5, 30.0), (90.0, -6.5, -30.0))), [0.0, 90.0]),
+    (limited_angle_like(), [60.0, 100.0]),
+    (limited_angle_like(n=96, seed=3), [100.0, 60.0, 151.5, 8.0]),
+])
+def test_localise_slice_equals_the_per_direction_reference(image, angles):
+    """The directions localised together give the per-direction code path's lines (the same
+    components: angles, ends, z-scores) and its strength map up to float32 rounding."""
+    cfg = streaks.resolve_settings(None)
+    texture, bins = texture_of(image, cfg)
+    got = streaks.localise_slice(texture, bins, angles, cfg)
+    strength, lines = reference_localise_slice(texture, bins, angles, cfg)
+    assert lines  # the images carry streaks: the comparison has lines to compare
+    assert len(got.lines) == len(lines)
+    for (a, s0, e0, z0), (b, s1, e1, z1) in zip(got.lines, lines):
+        assert a == b and round(z0, 2) == round(z1, 2) and z0 == z1
+        assert s0 == s1 and e0 == e1
+    assert np.array_equal(got.strength == 0, strength == 0)
+    on = strength > 0
+    assert on.any()
+    assert np.max(np.abs(got.strength[on] - strength[on]) / strength[on]) <= 1e-5
+
+
+def test_localise_slice_without_directions_is_empty():
+    cfg = streaks.resolve_settings(None)
+    texture, bins = texture_of(streaked_disc(n=96), cfg)
+    got = streaks.localise_slice(texture, bins, [], cfg)
+    assert got.lines == [] and not got.strength.any()
+
+
+def test_a_direction_does_not_depend_on_the_others_localised_with_it():
+    """One inverse FFT over the stack of windowed spectra gives each direction the
+    component and expected variance it has alone, bit for bit."""
+    cfg = streaks.resolve_settings(None)
+    texture, bins = texture_of(streaked_disc(), cfg)
+    windows = streaks.AngularWindows(bins, float(cfg["direction_window_deg"]))
+    together, expected = streaks.directional_components(texture, bins, [25.0, 110.0, 47.5], windows)
+    for k, angle in enumerate([25.0, 110.0, 47.5]):
+        alone, exp_alone = streaks.directional_components(texture, bins, [angle], windows)
+        assert np.array_equal(together[k], alone[0]) and expected[k] == exp_alone[0]
+        ref, exp_ref = reference_directional_component(texture, bins, angle, float(cfg["direction_window_deg"]))
+        assert np.array_equal(together[k], ref) and expected[k] == exp_ref
+
+
+def test_angular_windows_kept_and_remade_alike(monkeypatch):
+    """A window served from the cache, or made again after the cache was emptied, is the
+    one a fresh instance makes; the cache holds at most KEPT_WINDOWS angles."""
+    monkeypatch.setattr(streaks, "KEPT_WINDOWS", 2)
+    cfg = streaks.resolve_settings(None)
+    bins = streaks.spectral_bins((64, 64), tuple(cfg["band_cycles_per_px"]), float(cfg["angle_bin_deg"]))
+    windows = streaks.AngularWindows(bins, 3.0)
+    first = windows.window(30.0)
+    assert windows.window(30.0) is first
+    for angle in (10.0, 170.0, 30.0):
+        windows.window(angle)
+        assert len(windows._made) <= 2
+    fresh = streaks.AngularWindows(bins, 3.0)
+    for angle in (30.0, 10.0, 170.0):
+        assert np.array_equal(windows.window(angle), fresh.window(angle))
+    assert not windows.window(30.0).flags.writeable
+
+
+def loop_longest_run(keep):
+    best, i = (0, -1), 0
+    while i < keep.size:
+        if keep[i]:
+            j = i
+            while j < keep.size and keep[j]:
+                j += 1
+            if j - i > best[1] - best[0] + 1:
+                best = (i, j - 1)
+            i = j
+        else:
+            i += 1
+    return best
+
+
+def test_longest_run_is_the_first_longest_run():
+    rng = np.random.default_rng(21)
+    cases = [np.zeros(0, bool), np.zeros(7, bool), np.ones(9, bool), np.array([1, 1, 0, 1, 1, 0, 1], bool)]
+    cases += [rng.random(int(rng.integers(1, 80))) < p for p in (0.3, 0.6, 0.9) for _ in range(30)]
+    for keep in cases:
+        assert streaks.longest_run(keep) == loop_longest_run(keep)
+    assert streaks.longest_run(np.array([1, 1, 0, 1, 1], bool)) == (0, 1)
