@@ -307,6 +307,111 @@ def test_slice_choice(phantom_and_results):
     assert choose_slice(vol, {}) == (vol.shape[0] // 2, "middle slice")
 
 
+# ------------------------------------------------- figures reused within a thread
+def _pixels(folder: Path, figs: dict[str, str]) -> dict[str, np.ndarray]:
+    from PIL import Image
+
+    return {name: np.asarray(Image.open(folder / rel)) for name, rel in figs.items()}
+
+
+def _in_new_thread(draw):
+    """Run ``draw`` in a thread of its own: it starts with no figures built."""
+    from concurrent.futures import ThreadPoolExecutor
+
+    with ThreadPoolExecutor(max_workers=1) as pool:
+        return pool.submit(draw).result()
+
+
+def _other_series() -> tuple[Volume, dict[str, AnalysisResult], dict]:
+    """A second series unlike the fixture's: larger, other curves, a baseline, a tolerance."""
+    vol = make_phantom(nz=8, n=128)
+    results = synthetic_results(vol)
+    results["nps"].record["nps_1d_hu2mm2"] = [3.0 * v for v in results["nps"].record["nps_1d_hu2mm2"]]
+    results["streaks"].record["slice_index"] = [0.9, 0.1, 0.2, 0.7, 0.3, 0.2, 0.1, 0.05]
+    results["streaks"].record["angular_profile"] = {"angles_deg": list(range(0, 180, 10)),
+                                                    "relative_energy": [1.0 + (a % 30) / 30 for a in range(0, 180, 10)]}
+    base = {"nps": results["nps"].record, "ttf_edges": results["ttf"].record["edges"]}
+    return vol, results, base
+
+
+def test_a_reused_figure_keeps_nothing_of_the_series_before(tmp_path, phantom_and_results):
+    """Series A then B on this thread's figures give B the same pixels as B drawn on
+    fresh figures (a new thread), for every figure kind."""
+    from reconaudit.checker.report import figures
+
+    vol_b, results_b = phantom_and_results
+    vol_a, results_a, base_a = _other_series()
+    fresh = _in_new_thread(lambda: render_series_figures(vol_b, None, results_b, tmp_path / "fresh", "b"))
+    figs_a = render_series_figures(vol_a, None, results_a, tmp_path / "reused", "a", baseline=base_a,
+                                   tolerances={"streaks": {"index_tolerance": 0.5}})
+    built = dict(figures._THREAD_FIGURES.__dict__)
+    figs_b = render_series_figures(vol_b, None, results_b, tmp_path / "reused", "b")
+    assert set(figs_a) == set(figs_b) == set(fresh) == {"axial", "axial_air", "nps", "ttf", "streak_polar",
+                                                         "streak_profile"}
+    assert all(figures._THREAD_FIGURES.__dict__[k][0] is built[k][0] for k in figs_b), "figures were not reused"
+    pixels_a, pixels_b = _pixels(tmp_path / "reused", figs_a), _pixels(tmp_path / "reused", figs_b)
+    pixels_fresh = _pixels(tmp_path / "fresh", fresh)
+    for name in fresh:
+        assert not np.array_equal(pixels_a[name], pixels_b[name]), f"{name}: A and B alike, the test proves nothing"
+        assert np.array_equal(pixels_b[name], pixels_fresh[name]), f"{name}: series A shows in series B"
+
+
+def test_a_figure_that_failed_to_save_leaves_nothing_behind(tmp_path, phantom_and_results, monkeypatch):
+    """Every figure of A fails at writing (its artists are all on the axes by then); B
+    drawn next on the same figures equals B on fresh ones."""
+    from reconaudit.checker.report import figures
+
+    vol_b, results_b = phantom_and_results
+    vol_a, results_a, base_a = _other_series()
+    fresh = _in_new_thread(lambda: render_series_figures(vol_b, None, results_b, tmp_path / "fresh", "b"))
+    save = figures._save
+
+    def failing_save(fig, path):
+        raise ValueError("invented failure while writing")
+
+    monkeypatch.setattr(figures, "_save", failing_save)
+    assert render_series_figures(vol_a, None, results_a, tmp_path / "reused", "a", baseline=base_a) == {}
+    monkeypatch.setattr(figures, "_save", save)
+    figs_b = render_series_figures(vol_b, None, results_b, tmp_path / "reused", "b")
+    pixels_b, pixels_fresh = _pixels(tmp_path / "reused", figs_b), _pixels(tmp_path / "fresh", fresh)
+    assert set(pixels_b) == set(pixels_fresh)
+    for name in fresh:
+        assert np.array_equal(pixels_b[name], pixels_fresh[name]), f"{name}: the failed series shows"
+
+
+def test_figures_drawn_by_two_threads_at_once_match_those_drawn_alone(tmp_path, phantom_and_results):
+    """Each thread draws on figures of its own: two series drawn over and over by two
+    threads at the same time give the pixels each gives drawn alone."""
+    from concurrent.futures import ThreadPoolExecutor
+
+    vol_b, results_b = phantom_and_results
+    vol_a, results_a, base_a = _other_series()
+    series = {"a": (vol_a, results_a, base_a), "b": (vol_b, results_b, None)}
+
+    def draw(key: str, folder: Path) -> dict[str, np.ndarray]:
+        vol, results, base = series[key]
+        return _pixels(folder, render_series_figures(vol, None, results, folder, key, baseline=base))
+
+    alone = {key: _in_new_thread(lambda key=key: draw(key, tmp_path / "alone")) for key in series}
+    jobs = [(key, tmp_path / f"busy{i}") for i in range(3) for key in series]
+    with ThreadPoolExecutor(max_workers=2) as pool:
+        drawn = list(pool.map(lambda job: (job[0], draw(*job)), jobs))
+    for key, pixels in drawn:
+        assert set(pixels) == set(alone[key])
+        for name, img in pixels.items():
+            assert np.array_equal(img, alone[key][name]), f"series {key}, {name}: differs when drawn in parallel"
+
+
+def test_figures_are_opaque_rgb_pngs(tmp_path, phantom_and_results):
+    """The PNGs carry no alpha channel (every figure is drawn on an opaque background)."""
+    from PIL import Image
+
+    vol, results = phantom_and_results
+    for rel in render_series_figures(vol, None, results, tmp_path, "a").values():
+        with Image.open(tmp_path / rel) as img:
+            assert (img.format, img.mode) == ("PNG", "RGB")
+
+
 # ------------------------------------------------------------- a real analysis run
 def test_real_render_through_the_analyses(tmp_path):
     """A small invented phantom through every analysis that is available, then figures
