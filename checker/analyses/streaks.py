@@ -2661,7 +2661,6 @@ def localise(volume: Volume, regions: Regions | None, screen: Screen, flagged: l
     windows = angular_windows(screen.shape_b, band, bin_deg, float(cfg["direction_window_deg"]))
     order = sorted(flagged, key=lambda z: -screen.indices[z])[: int(cfg["max_localised_slices"])]
     f = screen.factor
-    ny, nx = volume.shape[1:]
     chosen = sorted(order)
     base = base_allowed_mask(regions, f, screen.shape_b, cfg)
 
@@ -2677,8 +2676,7 @@ def localise(volume: Volume, regions: Regions | None, screen: Screen, flagged: l
     for z, found in zip(chosen, map_slices(one, len(chosen), SCREEN_THREADS)):
         if found is None:
             continue
-        full = found.strength if f == 1 else np.repeat(np.repeat(found.strength, f, axis=0), f, axis=1)
-        overlays.maps["streak_strength"][z, : full.shape[0], : full.shape[1]] = full[:ny, :nx]
+        write_upsampled(overlays.maps["streak_strength"][z], found.strength, f)
         for angle, (y0, x0), (y1, x1), zscore in found.lines:
             overlays.segments.append(
                 Segment(
@@ -2688,6 +2686,18 @@ def localise(volume: Volume, regions: Regions | None, screen: Screen, flagged: l
                     value=round(float(zscore), 2),
                 )
             )
+
+
+def write_upsampled(target: np.ndarray, binned: np.ndarray, factor: int) -> None:
+    """Each value of ``binned`` into its ``factor`` x ``factor`` block of the full-resolution
+    ``target`` (the rows and columns past the last whole block are left as they are).
+
+    One strided assignment per place in the block, straight into ``target``.
+    """
+    ny, nx = binned.shape
+    for dy in range(factor):
+        for dx in range(factor):
+            target[dy : ny * factor : factor, dx : nx * factor : factor] = binned
 
 
 def _unbin(coord: float, factor: int) -> float:
