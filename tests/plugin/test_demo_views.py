@@ -114,4 +114,7 @@ def test_limited_angle_series(make_napari_viewer, qtbot):
             assert "slice" in ax.get_xlabel() and ax.get_ylabel()
             assert any("tolerance" in t.get_text() for t in ax.get_legend().get_texts())
     assert caution_is_visible(panel)
+    busiest = max(line_slices, key=lambda z: sum(int(round(np.asarray(d)[:, 0].mean())) == z for d in lines.data))
+    viewer.dims.set_current_step(0, busiest)  # the picture shows a slice with streak lines
+    assert panel.current_slice(image) == busiest
     screenshot(viewer, qtbot, "demo_torso_limited_angle.png")
