@@ -854,17 +854,7 @@ def reference_line_extent(comp, weight, t, s, offset, amplitude, cfg):
     local_count = ndimage.uniform_filter1d(counts.astype(float), run, mode="constant")
     mean = ndimage.uniform_filter1d(sums, run, mode="constant") / np.maximum(local_count, 1e-9)
     keep = (np.sign(amplitude) * mean >= float(cfg["segment_keep"]) * abs(amplitude)) & (local_count > 0.2)
-    best, i = (0, -1), 0
-    while i < keep.size:
-        if keep[i]:
-            j = i
-            while j < keep.size and keep[j]:
-                j += 1
-            if j - i > best[1] - best[0] + 1:
-                best = (i, j - 1)
-            i = j
-        else:
-            i += 1
+    best = loop_longest_run(keep)
     if best[1] - best[0] + 1 < int(cfg["segment_min_px"]):
         return None
     return float(best[0] + base), float(best[1] + base)
