@@ -185,10 +185,10 @@ def _summary_text(doc: dict[str, Any], out: Path, skipped: int) -> str:
             lines.append(f"  {key:<7}{counts[key]}")
     for r in doc["series"]:
         if r.get("status") == "error":
-            lines.append(f"  ! {r['id']}: {r['error']['kind']}: {r['error']['message']}")
+            lines.append(f"  not checked  {r['id']}: {r['error']['kind']}: {r['error']['message']}")
         elif r.get("verdict") in ("review", "fail"):
             worst = [f["message"] for f in r.get("findings", []) if f["severity"] in ("review", "fail")]
-            lines.append(f"  ? {r['id']}: {worst[0] if worst else r['verdict']}")
+            lines.append(f"  {r['verdict']:<11}  {r['id']}: {worst[0] if worst else r['verdict']}")
     lines += [f"results: {out / 'results.json'}", f"report:  {out / 'report.html'}", "", SAFETY_NOTICE]
     return "\n".join(lines)
 
@@ -319,7 +319,7 @@ def cmd_compare(args: argparse.Namespace) -> int:
         print(f"  body surface shift: max {shift['max']:+.1f} mm at LPS {shift['max_at_mm']} mm, p95 {shift['p95']:.1f} mm")
     print(f"  only in test: {len(result.record['only_in_test'])}; only in reference: {len(result.record['only_in_reference'])}")
     for f in result.findings:
-        print(f"  ? {f.message}")
+        print(f"  {f.severity.value}: {f.message}")
     print(f"results: {out / 'comparison.json'}\nreport:  {page}\n\n{SAFETY_NOTICE}")
     return EXIT_REVIEW if result.findings else EXIT_PASS
 

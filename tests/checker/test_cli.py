@@ -242,3 +242,21 @@ def test_series_of_about_the_same_size_keep_the_discovery_order(tmp_path):
         tasks.append(SimpleNamespace(name=name, size_bytes=fingerprint_and_bytes([f])[1]))
     assert [t.size_bytes for t in tasks] == [1000, 1040, 5000, 990]
     assert [t.name for t in largest_first(tasks)] == ["c", "a", "b", "d"]
+
+
+def test_summary_names_each_verdict_in_words():
+    """The terminal summary says 'review', 'fail' or 'not checked' beside each series that
+    needs a look (not a bare symbol), and the counts of each verdict."""
+    from reconaudit.checker.cli import _summary_text
+
+    doc = {"series": [
+        {"id": "s-ok", "status": "ok", "verdict": "pass", "findings": []},
+        {"id": "s-look", "status": "ok", "verdict": "review",
+         "findings": [{"analysis": "streaks", "severity": "review", "message": "streaks: index 3.4 exceeds 2.0"}]},
+        {"id": "s-bad", "status": "error", "verdict": None, "error": {"kind": "unreadable_file", "message": "truncated"}},
+    ]}
+    text = _summary_text(doc, Path("out"), skipped=0)
+    assert "  review       s-look: streaks: index 3.4 exceeds 2.0" in text
+    assert "  not checked  s-bad: unreadable_file: truncated" in text
+    assert "s-ok" not in text and "  pass   1" in text
+    assert "?" not in text
