@@ -342,6 +342,14 @@ def _not_measured(series: Mapping[str, Any]) -> list[tuple[str, str]]:
     return out
 
 
+def _said_under_not_measured(finding: Mapping[str, Any], not_measured: list[tuple[str, str]]) -> bool:
+    """Whether ``finding`` is an analysis' "not applicable" note that the series' "Not
+    measured" list gives already (with the same reason): shown once, not twice."""
+    return finding["severity"] == "info" and any(
+        finding["analysis"] == name and finding["message"] == f"not applicable: {why}" for name, why in not_measured
+    )
+
+
 def _findings(series: Mapping[str, Any]) -> list[dict[str, Any]]:
     items = []
     for f in series.get("findings") or []:
@@ -390,6 +398,7 @@ def series_context(
     meta = series.get("metadata") if isinstance(series.get("metadata"), Mapping) else {}
     verdict = _verdict_key(series)
     error = series.get("error") if isinstance(series.get("error"), Mapping) else None
+    not_measured = _not_measured(series) if verdict != "error" else []
     ctx = {
         "anchor": f"s{index}",
         "id": str(series.get("id") or f"series {index}"),
@@ -405,8 +414,8 @@ def series_context(
         "measurements": _measurement_rows(series) if verdict != "error" else [],
         "edges": _edge_rows(series) if verdict != "error" else [],
         "baseline_note": _baseline_note(series.get("baseline")),
-        "not_measured": _not_measured(series) if verdict != "error" else [],
-        "findings": _findings(series),
+        "not_measured": not_measured,
+        "findings": [f for f in _findings(series) if not _said_under_not_measured(f, not_measured)],
         "figures": _figures(figures),
         "has_baseline": isinstance(series.get("baseline"), Mapping) and bool(series.get("baseline")),
     }

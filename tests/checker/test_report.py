@@ -523,3 +523,18 @@ def test_streak_index_shows_two_decimals():
     assert fmt_metric("streaks.index", 1.629, "") == "1.63"
     assert fmt_metric("streaks.index", 2.0, "") == "2"
     assert fmt_metric("nps.f_av_per_mm", 0.17, "mm⁻¹") == "0.170"
+
+
+def test_a_not_applicable_analysis_is_said_once(tmp_path):
+    """An analysis that does not apply is listed under "Not measured" with its reason, and
+    its "not applicable" note is not repeated under the findings; other notes stay."""
+    from reconaudit.checker.report.html import series_context
+
+    reason = "no water cylinder found"
+    series = {"id": "t", "status": "ok", "verdict": "pass", "metadata": {},
+              "uniformity": {"applicable": False, "reason": reason},
+              "findings": [{"analysis": "uniformity", "severity": "info", "message": f"not applicable: {reason}"},
+                           {"analysis": "air", "severity": "info", "message": "air -1000.0 HU"}]}
+    ctx = series_context(series, 1, None, include_identifiers=False)
+    assert ("uniformity", reason) in ctx["not_measured"]
+    assert [f["message"] for f in ctx["findings"]] == ["air -1000.0 HU"]
