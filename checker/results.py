@@ -161,6 +161,8 @@ def finite_number(value: Any) -> float | None:
 #: angles to 1 degree. Fixed decimals, so a column lines up and 0.170 does not read as
 #: the less precise 0.17.
 DECIMALS_BY_UNIT: dict[str, int] = {"HU": 2, "mm⁻¹": 3, "cycles/mm": 3, "deg": 0, "°": 0}
+#: decimals of measured values without a unit, by ``analysis.key`` (the streak index to 0.01)
+DECIMALS_BY_METRIC: dict[str, int] = {"streaks.index": 2}
 
 
 def fixed_decimals(value: float, decimals: int) -> str:
@@ -170,13 +172,15 @@ def fixed_decimals(value: float, decimals: int) -> str:
     return f"{value:.{decimals}f}"
 
 
-def display_number(value: Any, unit: str) -> str | None:
-    """A measured number as the report and the viewer show it: :data:`DECIMALS_BY_UNIT`
-    for the units it lists, else 4 significant digits; None when ``value`` is no finite
-    number."""
+def display_number(value: Any, unit: str, metric: str = "") -> str | None:
+    """A measured number as the report and the viewer show it: :data:`DECIMALS_BY_METRIC`
+    for the metric (``analysis.key``) it lists, else :data:`DECIMALS_BY_UNIT` for the
+    units it lists, else 4 significant digits; None when ``value`` is no finite number."""
     f = finite_number(value)
     if f is None:
         return None
+    if metric in DECIMALS_BY_METRIC:
+        return fixed_decimals(f, DECIMALS_BY_METRIC[metric])
     decimals = DECIMALS_BY_UNIT.get(unit)
     if decimals is None:
         return str(int(f)) if f == int(f) and abs(f) < 1e6 else f"{f:.4g}"

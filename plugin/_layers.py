@@ -114,9 +114,10 @@ def _meta(role: str, analysis: str, source: str, z_offset: int, **extra: Any) ->
     return {ROLE_KEY: role, "reconaudit_analysis": analysis, SOURCE_KEY: source, OFFSET_KEY: int(z_offset), **extra}
 
 
-def format_value(value: Any, unit: str = "") -> str:
+def format_value(value: Any, unit: str = "", metric: str = "") -> str:
     """A value as the table shows it: a number as the report shows it (fixed decimals by
-    ``unit``, e.g. 0.01 HU; else 4 significant digits); yes/no; '—' for no value."""
+    ``metric``, ``analysis.key``, or by ``unit``, e.g. 0.01 HU; else 4 significant
+    digits); yes/no; '—' for no value."""
     if value is None:
         return "—"
     if isinstance(value, (bool, np.bool_)):
@@ -127,7 +128,7 @@ def format_value(value: Any, unit: str = "") -> str:
         v = float(value)
         if not math.isfinite(v):
             return "n/a"
-        return display_number(v, unit)
+        return display_number(v, unit, metric)
     return str(value)
 
 
@@ -306,7 +307,7 @@ def record_rows(analysis: str, record: dict[str, Any]) -> list[TableRow]:
             if key == "applicable" and value is True:
                 continue
             name, unit = split_unit(key)
-            text = format_value(value, unit)
+            text = format_value(value, unit, f"{analysis}.{key}")
             if len(text) > 16:  # long text reads better in the wide column
                 rows.append(TableRow(analysis, name, "", text))
             else:

@@ -24,7 +24,7 @@ from .. import SAFETY_NOTICE
 from ..history import flatten_metrics
 from ..identifiers import WITHHELD
 from ..volume import IDENTIFIER_KEYS, SAFE_METADATA_KEYS
-from ..results import display_number, finite_number, fixed_decimals
+from ..results import display_number, finite_number
 
 _TEMPLATES = Path(__file__).with_name("templates")
 
@@ -83,16 +83,6 @@ def fmt(value: Any, digits: int = 4) -> str:
     return f"{f:.{digits}g}"
 
 
-#: decimals of measured values without a unit, by metric key (others: 4 significant digits)
-DECIMALS_BY_METRIC: dict[str, int] = {"streaks.index": 2}
-
-
-def fmt_fixed(value: Any, decimals: int) -> str:
-    """A number with ``decimals`` decimals (whole numbers as they are), or an en dash when missing."""
-    f = finite_number(value)
-    return "–" if f is None else fixed_decimals(f, decimals)
-
-
 def fmt_measured(value: Any, unit: str) -> str:
     """A measured value as the report shows it (:func:`~reconaudit.checker.results.display_number`:
     fixed decimals by unit, e.g. CT numbers to 0.01 HU, so a water value near 0 does not
@@ -102,11 +92,11 @@ def fmt_measured(value: Any, unit: str) -> str:
 
 
 def fmt_metric(key: str, value: Any, unit: str) -> str:
-    """Measured value ``key`` as the report shows it (:data:`DECIMALS_BY_METRIC`, else
-    :func:`fmt_measured`)."""
-    if key in DECIMALS_BY_METRIC:
-        return fmt_fixed(value, DECIMALS_BY_METRIC[key])
-    return fmt_measured(value, unit)
+    """Measured value ``key`` (``analysis.key``) as the report shows it
+    (:func:`~reconaudit.checker.results.display_number` with the metric's own decimals
+    where it has them), or an en dash when missing."""
+    text = display_number(value, unit, key)
+    return "–" if text is None else text
 
 
 def _metric_label(key: str) -> tuple[str, str]:

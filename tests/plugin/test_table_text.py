@@ -34,6 +34,10 @@ def test_table_values_have_the_reports_decimals():
     for value, unit in ((7.2634, "HU"), (0.17, "mm⁻¹"), (0.08363, "cycles/mm"), (12.5, "")):
         report_unit = "mm⁻¹" if unit == "cycles/mm" else unit
         assert format_value(value, unit) == fmt_measured(value, report_unit)
+    from reconaudit.checker.report.html import fmt_metric
+
+    index = {r.item: r for r in record_rows("streaks", {"index": 7.1864})}["index"]
+    assert index.value == "7.19" == fmt_metric("streaks.index", 7.1864, "")
 
 
 def test_layer_tags_are_short():
