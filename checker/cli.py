@@ -180,9 +180,9 @@ def _summary_text(doc: dict[str, Any], out: Path, skipped: int) -> str:
         counts[key] = counts.get(key, 0) + 1
     lines = [f"reconaudit {__version__}: {len(doc['series'])} series checked"
              + (f", {skipped} already in the history (skipped; --force re-checks)" if skipped else "")]
-    for key in ("pass", "review", "fail", "error"):
+    for key, word in (("pass", "pass"), ("review", "review"), ("fail", "fail"), ("error", "not checked")):
         if counts.get(key):
-            lines.append(f"  {key:<7}{counts[key]}")
+            lines.append(f"  {word:<13}{counts[key]}")
     for r in doc["series"]:
         if r.get("status") == "error":
             lines.append(f"  not checked  {r['id']}: {r['error']['kind']}: {r['error']['message']}")
