@@ -180,9 +180,10 @@ def _summary_text(doc: dict[str, Any], out: Path, skipped: int) -> str:
         counts[key] = counts.get(key, 0) + 1
     lines = [f"reconaudit {__version__}: {len(doc['series'])} series checked"
              + (f", {skipped} already in the history (skipped; --force re-checks)" if skipped else "")]
-    for key, word in (("pass", "pass"), ("review", "review"), ("fail", "fail"), ("error", "not checked")):
-        if counts.get(key):
-            lines.append(f"  {word:<13}{counts[key]}")
+    words = (("pass", "pass"), ("review", "review"), ("fail", "fail"), ("error", "not checked"))
+    tally = ", ".join(f"{counts[key]} {word}" for key, word in words if counts.get(key))
+    if tally:
+        lines.append(f"  {tally}")
     for r in doc["series"]:
         if r.get("status") == "error":
             lines.append(f"  not checked  {r['id']}: {r['error']['kind']}: {r['error']['message']}")

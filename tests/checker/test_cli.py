@@ -258,5 +258,5 @@ def test_summary_names_each_verdict_in_words():
     text = _summary_text(doc, Path("out"), skipped=0)
     assert "  review       s-look: streaks: index 3.4 exceeds 2.0" in text
     assert "  not checked  s-bad: unreadable_file: truncated" in text
-    assert "s-ok" not in text and "  pass         1" in text and "  not checked  1" in text
+    assert "s-ok" not in text and "  1 pass, 1 review, 1 not checked\n" in text
     assert "?" not in text
